@@ -1,0 +1,101 @@
+"""The daemon's settings as typed values.
+
+Every field here is a configuration key: the TOML table is the dataclass name's section
+(``[smtp]``, ``[next_hop]``, ``[policy]``, ``[model]``, ``[http]``, ``[log]``) and the key is the
+field name.  Loading, environment overrides and validation live in ``config.py``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Literal
+
+Band = Literal["ham", "suspect", "spam"]
+Action = Literal["pass", "tag", "reroute", "reject"]
+
+
+@dataclass(frozen=True)
+class HostPort:
+    host: str
+    port: int
+
+    def __str__(self) -> str:
+        return f"[{self.host}]:{self.port}" if ":" in self.host else f"{self.host}:{self.port}"
+
+
+@dataclass(frozen=True)
+class SmtpSettings:
+    listen: HostPort = HostPort("127.0.0.1", 7125)
+    hostname: str = ""  # empty: the machine's FQDN
+    max_message_bytes: int = 64 * 1024 * 1024
+    max_recipients: int = 1000
+    max_connections: int = 200
+    # RFC 5321 section 4.5.3.2 asks servers to wait at least 5 minutes for a command.
+    command_timeout: float = 300.0
+    tls_cert: Path | None = None
+    tls_key: Path | None = None
+
+
+@dataclass(frozen=True)
+class NextHopSettings:
+    address: HostPort = HostPort("127.0.0.1", 7126)
+    connect_timeout: float = 30.0
+    command_timeout: float = 60.0
+    # RFC 5321 section 4.5.3.2: 10 minutes for the reply to the end of DATA.
+    data_timeout: float = 600.0
+    helo_name: str = ""  # empty: same as smtp.hostname
+
+
+@dataclass(frozen=True)
+class PolicySettings:
+    mode: Literal["observe", "enforce"] = "observe"
+    position: Literal["after-queue", "before-queue"] = "after-queue"
+    suspect_cutoff: float = 0.5
+    spam_cutoff: float = 0.99
+    ham_action: Action = "pass"
+    suspect_action: Action = "tag"
+    spam_action: Action = "tag"
+    subject_prefix: str = ""
+    quarantine_mailbox: str = ""
+    min_trained: int = 50  # messages per class before any verdict acts (cold-start guard)
+    on_scoring_failure: Literal["pass", "tempfail"] = "pass"
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    database: str = ""  # URL or SQLite path; empty: <state_dir>/model.sqlite3
+    method: str = "fisher"
+    cache_tokens: int = 1_000_000
+    staleness_seconds: float = 5.0
+    scoring_workers: int = 2
+    max_concurrent_scoring: int = 16
+
+
+@dataclass(frozen=True)
+class HttpSettings:
+    listen: HostPort = HostPort("127.0.0.1", 7180)
+    token: str = ""  # bearer token for POST endpoints; empty: those endpoints are closed
+
+
+@dataclass(frozen=True)
+class LogSettings:
+    verdict_retention_days: int = 30
+    verdict_batch_seconds: float = 0.5
+    level: str = "info"
+    format: Literal["text", "json"] = "text"
+
+
+@dataclass(frozen=True)
+class Settings:
+    state_dir: Path = Path("/var/lib/mailweir")
+    smtp: SmtpSettings = field(default_factory=SmtpSettings)
+    next_hop: NextHopSettings = field(default_factory=NextHopSettings)
+    policy: PolicySettings = field(default_factory=PolicySettings)
+    model: ModelSettings = field(default_factory=ModelSettings)
+    http: HttpSettings = field(default_factory=HttpSettings)
+    log: LogSettings = field(default_factory=LogSettings)
+
+    @property
+    def database(self) -> str:
+        return self.model.database or str(self.state_dir / "model.sqlite3")
