@@ -1,0 +1,395 @@
+"""The ``mailweir`` command line: one plain verb per job.
+
+Every command that prints a report also takes ``--json`` for scripts, and ``--db`` to point at
+a database URL or SQLite path.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+from mailweir.daemon import learning
+from mailweir.daemon.settings import PolicySettings
+from mailweir.daemon.sources import SourceError, read_corpus
+from mailweir.model.hashing import token_hash
+from mailweir.model.types import HAM, SPAM
+
+DEFAULT_DB_ENV = "MAILWEIR_DB"
+DEFAULT_DB = "/var/lib/mailweir/model.sqlite3"
+
+Handler = Callable[[argparse.Namespace], int]
+
+
+def _db_argument(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--db",
+        default=os.environ.get(DEFAULT_DB_ENV, DEFAULT_DB),
+        help=f"database URL or SQLite path (default: ${DEFAULT_DB_ENV} or {DEFAULT_DB})",
+    )
+
+
+def _json_argument(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--json", action="store_true", help="print the report as JSON")
+
+
+def _print_report(args: argparse.Namespace, report: dict[str, object], lines: list[str]) -> None:
+    if args.json:
+        print(json.dumps(report, indent=2, sort_keys=True, default=str))
+    else:
+        print("\n".join(lines))
+
+
+# -- train / untrain ----------------------------------------------------------------------
+
+
+def cmd_train(args: argparse.Namespace) -> int:
+    label = SPAM if args.spam else HAM
+    model = learning.open_model(args.db, bigrams=args.bigrams, method=args.method)
+    try:
+        progress = learning.Progress("trained", None if not args.json else False)
+        summary = learning.train_from(
+            model, args.sources, label, source=args.source, progress=progress
+        )
+        seconds = progress.done()
+    finally:
+        model.close()
+    return _summary(args, "train", summary, seconds)
+
+
+def cmd_untrain(args: argparse.Namespace) -> int:
+    model = learning.open_model(args.db)
+    try:
+        progress = learning.Progress("untrained", None if not args.json else False)
+        summary = learning.untrain_from(model, args.sources, progress)
+        seconds = progress.done()
+    finally:
+        model.close()
+    return _summary(args, "untrain", summary, seconds)
+
+
+def _summary(args: argparse.Namespace, verb: str, summary: dict[str, int], seconds: float) -> int:
+    total = sum(n for k, n in summary.items() if k != "unreadable")
+    report: dict[str, object] = {
+        "command": verb,
+        "messages": total,
+        "seconds": round(seconds, 3),
+        "messages_per_second": round(total / seconds, 1) if seconds > 0 else None,
+        **{k: v for k, v in sorted(summary.items())},
+    }
+    lines = [f"{verb}: {total} messages in {seconds:.1f} s"]
+    lines += [f"  {key.replace('_', ' ')}: {value}" for key, value in sorted(summary.items())]
+    _print_report(args, report, lines)
+    return 1 if summary.get("unreadable") and total == 0 else 0
+
+
+def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    train = sub.add_parser(
+        "train",
+        help="learn messages as spam or ham",
+        description="Learn messages from mbox files, Maildir folders, folders of .eml files, "
+        "single files or standard input (-). A message trained before is skipped; one trained "
+        "the other way is moved.",
+    )
+    kind = train.add_mutually_exclusive_group(required=True)
+    kind.add_argument("--spam", action="store_true", help="the messages are spam")
+    kind.add_argument("--ham", action="store_true", help="the messages are wanted mail")
+    train.add_argument("sources", nargs="+", help="files, folders, mboxes, Maildirs or -")
+    train.add_argument("--source", default="import", help="label for the ledger (default import)")
+    train.add_argument(
+        "--bigrams",
+        action=argparse.BooleanOptionalAction,
+        default=None,
+        help="orthogonal sparse bigrams; fixed when a model is created",
+    )
+    train.add_argument("--method", help="scoring method to stamp on a new model")
+    _db_argument(train)
+    _json_argument(train)
+    train.set_defaults(handler=cmd_train)
+
+    untrain = sub.add_parser(
+        "untrain",
+        help="forget messages learned earlier",
+        description="Remove messages from the counts; exact inverse of train.",
+    )
+    untrain.add_argument("sources", nargs="+", help="files, folders, mboxes, Maildirs or -")
+    _db_argument(untrain)
+    _json_argument(untrain)
+    untrain.set_defaults(handler=cmd_untrain)
+
+
+# -- score --------------------------------------------------------------------------------
+
+
+def cmd_score(args: argparse.Namespace) -> int:
+    raw = sys.stdin.buffer.read() if args.message == "-" else Path(args.message).read_bytes()
+    model = learning.open_model(args.db)
+    try:
+        score, words = learning.score_message(model, raw, args.explain)
+        classes = model.store.class_count()
+    finally:
+        model.close()
+    text = {token_hash(w): w for w in words}
+    p = score.spam_probability
+    band = "spam" if p >= args.spam_cutoff else "suspect" if p >= args.suspect_cutoff else "ham"
+    evidence = [
+        {"token": text.get(e.token_hash, f"#{e.token_hash:x}"), "weight": round(e.weight, 4)}
+        for e in score.evidence
+    ]
+    report = {
+        "message": args.message,
+        "spam_probability": p,
+        "band": band,
+        "method": model.scorer.name,
+        "suspect_cutoff": args.suspect_cutoff,
+        "spam_cutoff": args.spam_cutoff,
+        "trained_ham": int(classes[HAM]),
+        "trained_spam": int(classes[SPAM]),
+        "evidence": evidence,
+    }
+    lines = [
+        f"{args.message}: {band} (spam probability {p:.4f}, method {model.scorer.name})",
+        f"  cut-offs: suspect {args.suspect_cutoff:g}, spam {args.spam_cutoff:g}; "
+        f"trained on {classes[HAM]} ham and {classes[SPAM]} spam",
+    ]
+    for side, sign in (("toward spam", 1), ("toward ham", -1)):
+        picked = [e for e in evidence if sign * float(e["weight"]) > 0]  # type: ignore[arg-type]
+        if picked:
+            lines.append(f"  {side}:")
+            lines += [f"    {e['weight']:+8.3f}  {e['token']}" for e in picked]
+    _print_report(args, report, lines)
+    return 0
+
+
+def _add_score_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    policy = PolicySettings()
+    score = sub.add_parser(
+        "score",
+        help="score one message and explain the verdict",
+        description="Print the spam probability, the band at the cut-offs and the tokens that "
+        "pushed hardest each way.",
+    )
+    score.add_argument("message", help="a message file, or - for standard input")
+    score.add_argument("--suspect-cutoff", type=float, default=policy.suspect_cutoff)
+    score.add_argument("--spam-cutoff", type=float, default=policy.spam_cutoff)
+    score.add_argument("--explain", type=int, default=8, help="tokens to show each way")
+    _db_argument(score)
+    _json_argument(score)
+    score.set_defaults(handler=cmd_score)
+
+
+# -- replay -------------------------------------------------------------------------------
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    from mailweir.daemon import replay
+
+    corpus = read_corpus(args.corpus)
+    if args.limit:
+        corpus = corpus[: args.limit]
+    plan = replay.ReplayPlan(
+        methods=args.method or [learning.DEFAULT_METHOD],
+        protocol=args.protocol,
+        train_fraction=args.train_fraction,
+        bigrams=args.bigrams,
+        ignore_headers=tuple(p.lower() for p in args.ignore_header),
+        database=args.replay_db,
+        train_only_on_errors_margin=args.thick_threshold,
+    )
+    progress = learning.Progress("replayed", None if not args.json else False)
+    result = replay.replay(corpus, plan, progress=progress)
+    for item in result.results:
+        item.warmup = min(args.warmup, len(item.labels) - 1)
+    cutoffs = args.cutoff or [PolicySettings().suspect_cutoff, PolicySettings().spam_cutoff]
+    figures = [item.figures(cutoffs, args.target_fpr) for item in result.results]
+    if args.scores:
+        replay.write_scores(Path(args.scores), result.results[0], max(cutoffs))
+    if args.roc:
+        replay.write_roc(Path(args.roc), result.results)
+    report: dict[str, object] = {
+        "corpus": args.corpus,
+        "protocol": args.protocol,
+        "messages": len(corpus),
+        "trained": result.trained,
+        "seconds": round(result.seconds, 2),
+        "messages_per_second": round(len(corpus) / max(result.seconds, 1e-9), 1),
+        "tokens": result.tokens,
+        "database_bytes": result.database_bytes,
+        "bigrams": args.bigrams,
+        "warmup": args.warmup,
+        "methods": figures,
+    }
+    _print_report(args, report, _replay_lines(report, figures))
+    return 0
+
+
+def _replay_lines(report: dict[str, object], figures: list[dict[str, object]]) -> list[str]:
+    lines = [
+        f"replay ({report['protocol']}) of {report['messages']} messages from {report['corpus']}:"
+        f" {report['seconds']} s, {report['messages_per_second']} msg/s, "
+        f"{report['tokens']} tokens, {report['database_bytes']} database bytes",
+        f"{'method':<12} {'(1-AUC)%':>9} {'caught@tgt':>10} {'cutoff@tgt':>10}  at cut-offs",
+    ]
+    for f in figures:
+        at = "; ".join(
+            f"{c}: FP {r['false_positive_rate']:.4%} FN {r['false_negative_rate']:.4%}"  # type: ignore[index]
+            for c, r in f["at_cutoffs"].items()  # type: ignore[attr-defined]
+        )
+        lines.append(
+            f"{f['method']:<12} {f['one_minus_auc_percent']:>9.4f} "
+            f"{f['spam_caught_at_target']:>10.2%} {f['cutoff_for_target']:>10.6f}  {at}"
+        )
+    target = figures[0]["target_false_positive_rate"] if figures else 0
+    lines.append(
+        f"(target false-positive rate {target:g}; figures skip the first "
+        f"{report['warmup']} messages)"
+    )
+    return lines
+
+
+def _add_replay_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    rp = sub.add_parser(
+        "replay",
+        help="measure a model on a labelled corpus",
+        description="Replay a corpus (a folder or .tar.gz with ham/ and spam/, ordered by "
+        "index.tsv when present) and print ROC AUC, (1-AUC)%%, error rates at the cut-offs and "
+        "the cut-off for a target false-positive rate.",
+    )
+    rp.add_argument("corpus", help="folder or .tar.gz holding ham/ and spam/")
+    rp.add_argument(
+        "--method",
+        action="append",
+        choices=("bernoulli", "multinomial", "fisher"),
+        help="scoring method; repeat to compare several in one pass",
+    )
+    rp.add_argument("--protocol", choices=("online", "split"), default="online")
+    rp.add_argument("--train-fraction", type=float, default=0.5, help="for --protocol split")
+    rp.add_argument("--bigrams", action=argparse.BooleanOptionalAction, default=False)
+    rp.add_argument(
+        "--ignore-header",
+        action="append",
+        default=[],
+        metavar="PREFIX",
+        help="drop header fields whose name starts with PREFIX before tokenizing (repeatable)",
+    )
+    rp.add_argument(
+        "--thick-threshold",
+        type=float,
+        default=None,
+        metavar="LOGODDS",
+        help="online: train only on errors and messages within this log-odds margin",
+    )
+    rp.add_argument("--cutoff", type=float, action="append", help="cut-offs to report")
+    rp.add_argument("--target-fpr", type=float, default=0.001)
+    rp.add_argument("--warmup", type=int, default=0, help="leave the first N out of figures")
+    rp.add_argument("--limit", type=int, default=0, help="replay only the first N messages")
+    rp.add_argument("--scores", help="write file, label, score, verdict per message (TSV)")
+    rp.add_argument("--roc", help="write the ROC curve as an SVG image")
+    rp.add_argument("--replay-db", help="keep the replay's model in this database")
+    _json_argument(rp)
+    rp.set_defaults(handler=cmd_replay)
+
+
+# -- stats / prune ------------------------------------------------------------------------
+
+
+def cmd_stats(args: argparse.Namespace) -> int:
+    model = learning.open_model(args.db)
+    try:
+        stats = model.store.stats()
+    finally:
+        model.close()
+    report = dict(vars(stats))
+    report["bytes_per_token"] = (
+        round(stats.database_bytes / stats.tokens, 1) if stats.tokens else None
+    )
+    lines = [f"{key.replace('_', ' ')}: {value}" for key, value in report.items()]
+    _print_report(args, report, lines)
+    return 0
+
+
+def cmd_prune(args: argparse.Namespace) -> int:
+    model = learning.open_model(args.db)
+    try:
+        before = model.store.stats().tokens
+        removed = model.store.prune(max_count=args.max_count, unseen_days=args.unseen_days)
+    finally:
+        model.close()
+    report = {"tokens_before": before, "removed": removed, "tokens_after": before - removed}
+    lines = [
+        f"pruned {removed} of {before} tokens "
+        f"(seen in at most {args.max_count} messages, unseen for {args.unseen_days} days)"
+    ]
+    _print_report(args, report, lines)
+    return 0
+
+
+def _add_model_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    stats = sub.add_parser(
+        "stats",
+        help="show model size and class totals",
+        description="Print the model's size, class totals and settings.",
+    )
+    _db_argument(stats)
+    _json_argument(stats)
+    stats.set_defaults(handler=cmd_stats)
+    prune = sub.add_parser(
+        "prune",
+        help="drop rare tokens not seen for a while",
+        description="Delete tokens seen in few messages and not seen recently; they carry "
+        "little evidence and most of the rows.",
+    )
+    prune.add_argument("--max-count", type=int, default=1, help="messages containing the token")
+    prune.add_argument("--unseen-days", type=int, default=60)
+    _db_argument(prune)
+    _json_argument(prune)
+    prune.set_defaults(handler=cmd_prune)
+
+
+# -- entry point --------------------------------------------------------------------------
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="mailweir",
+        description="An SMTP content filter that learns spam from your own mail.",
+    )
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    _add_run_command(sub)
+    _add_learning_commands(sub)
+    _add_score_command(sub)
+    _add_replay_command(sub)
+    _add_model_commands(sub)
+    return parser
+
+
+def _add_run_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    from mailweir.daemon import service
+
+    run = sub.add_parser(
+        "run",
+        help="run the filter daemon",
+        description="Start the SMTP filter from a TOML configuration file.",
+    )
+    service.add_run_arguments(run)
+    run.set_defaults(handler=service.run_command)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    handler: Handler = args.handler
+    try:
+        return handler(args)
+    except (SourceError, learning.ModelMismatch) as exc:
+        print(f"mailweir: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())
