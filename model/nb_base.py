@@ -1,0 +1,241 @@
+"""The shared frame of every scoring method: inputs, the posterior step and the evidence list.
+
+Each method overrides two kernels, :meth:`NaiveBayes.joint_log_likelihood` (one message's
+class scores) and :meth:`NaiveBayes.token_weights` (each token's signed share of the log-odds);
+:meth:`NaiveBayes.score` is built on them here, as scikit-learn's ``_BaseNB`` builds ``predict*``
+on ``_joint_log_likelihood``.
+
+Conventions shared by all methods
+---------------------------------
+- A token with zero counts in both classes is unknown to the model: it is not in the
+  vocabulary, so it contributes nothing (Robinson-Fisher with ``assumed != 0.5`` is the one
+  documented exception, see :class:`~mailweir.model.fisher.RobinsonFisher`).
+- A model with no trained message in either class is untrained: ``score`` answers 0.5 and no
+  evidence, and the kernels refuse with ``ValueError`` because no posterior is defined.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass, fields
+from typing import ClassVar
+
+import numpy as np
+import numpy.typing as npt
+from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
+
+FloatArray = npt.NDArray[np.float64]
+
+UNTRAINED_PROBABILITY = 0.5
+
+
+@dataclass(frozen=True)
+class Evidence:
+    """One token's signed share of the verdict.
+
+    Attributes
+    ----------
+    token_hash : int
+        The token's 64-bit hash (signed, as stored).
+    weight : float
+        Contribution to the log-odds of spam, natural log; > 0 pushes toward spam.
+    """
+
+    token_hash: int
+    weight: float
+
+
+@dataclass(frozen=True)
+class Score:
+    """One message's verdict from a scoring method.
+
+    Attributes
+    ----------
+    spam_probability : float
+        In [0, 1]; 0.5 when the model is untrained.
+    evidence : tuple of Evidence
+        Up to ``n_evidence`` tokens pushing toward spam, then up to ``n_evidence`` pushing
+        toward ham, each side sorted by ``abs(weight)`` descending (ties by hash).
+    """
+
+    spam_probability: float
+    evidence: tuple[Evidence, ...]
+
+
+def is_trained(class_count: ClassCounts) -> bool:
+    """True when both classes have at least one trained message."""
+    return bool(np.all(np.asarray(class_count) > 0))
+
+
+def check_counts(
+    token_count: TokenCounts, class_count: ClassCounts
+) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64]]:
+    """Validate one message's counts; return them as int64 arrays of shape (n, 2) and (2,)."""
+    counts = np.asarray(token_count)
+    classes = np.asarray(class_count)
+    if counts.ndim != 2 or counts.shape[1] != 2:
+        raise ValueError(f"token_count must have shape (n, 2), got {counts.shape}")
+    if classes.shape != (2,):
+        raise ValueError(f"class_count must have shape (2,), got {classes.shape}")
+    if counts.size and counts.min() < 0:
+        raise ValueError(f"token_count must be non-negative, got minimum {counts.min()}")
+    if classes.min() < 0:
+        raise ValueError(f"class_count must be non-negative, got {classes.tolist()}")
+    return counts.astype(np.int64, copy=False), classes.astype(np.int64, copy=False)
+
+
+def check_frequency(frequency: npt.ArrayLike | None, n_tokens: int) -> FloatArray:
+    """Validate term frequencies of shape (n,); ``None`` means every token once."""
+    if frequency is None:
+        return np.ones(n_tokens)
+    values = np.asarray(frequency, dtype=np.float64)
+    if values.shape != (n_tokens,):
+        raise ValueError(f"frequency must have shape ({n_tokens},), got {values.shape}")
+    if not np.all(np.isfinite(values)) or (values.size and values.min() < 0):
+        raise ValueError("frequency must be finite and non-negative")
+    return values
+
+
+def require_trained(class_count: npt.NDArray[np.int64], method: str) -> None:
+    """Refuse kernels on an untrained model, where no posterior is defined."""
+    if not is_trained(class_count):
+        raise ValueError(
+            f"{method}: untrained model (class_count={class_count.tolist()}); "
+            "both classes need a trained message before a likelihood is defined"
+        )
+
+
+def class_log_prior(class_count: npt.NDArray[np.int64]) -> FloatArray:
+    """Shape (2,): log P(c) estimated from message counts, as scikit-learn's fit_prior."""
+    counts = class_count.astype(np.float64)
+    return np.log(counts) - np.log(counts.sum())
+
+
+def known_tokens(token_count: npt.NDArray[np.int64]) -> npt.NDArray[np.bool_]:
+    """Shape (n,): tokens with a count in either class, i.e. members of the vocabulary."""
+    return np.asarray((token_count > 0).any(axis=1))
+
+
+def posterior_spam(joint_log_likelihood: FloatArray) -> float:
+    """P(spam | message) = exp(jll[spam] - logsumexp(jll)), stable for any magnitude."""
+    log_total = np.logaddexp(joint_log_likelihood[HAM], joint_log_likelihood[SPAM])
+    return float(np.exp(joint_log_likelihood[SPAM] - log_total))
+
+
+def strongest_evidence(
+    token_hashes: TokenHashes, weights: FloatArray, n_evidence: int
+) -> tuple[Evidence, ...]:
+    """Up to ``n_evidence`` tokens each way, spam side first, each by ``abs(weight)`` desc."""
+    if n_evidence < 0:
+        raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
+    hashes = np.asarray(token_hashes, dtype=np.int64)
+    # lexsort keys run last-primary: strongest first, ties broken by hash for a stable list.
+    order = np.lexsort((hashes, -np.abs(weights)))
+    ranked = weights[order]
+    chosen = np.concatenate([order[ranked > 0][:n_evidence], order[ranked < 0][:n_evidence]])
+    return tuple(Evidence(int(hashes[i]), float(weights[i])) for i in chosen)
+
+
+class NaiveBayes(ABC):
+    """Base of every scoring method: ``score`` built on two kernels.
+
+    Subclasses are frozen dataclasses whose fields are the method's parameters, and set the
+    class attribute ``name`` (the key in :data:`mailweir.model.nb.METHODS`).
+    """
+
+    name: ClassVar[str]
+
+    @abstractmethod
+    def joint_log_likelihood(
+        self,
+        token_count: TokenCounts,
+        class_count: ClassCounts,
+        vocabulary: Vocabulary,
+        frequency: npt.ArrayLike | None = None,
+    ) -> FloatArray:
+        """Shape (2,): log P(c) + log P(d | c) for ham and spam.
+
+        Parameters
+        ----------
+        token_count : TokenCounts, shape (n, 2)
+            Trained ham and spam messages containing each of the message's tokens.
+        class_count : ClassCounts, shape (2,)
+            Trained ham and spam messages.
+        vocabulary : Vocabulary
+            Summary of the whole model.
+        frequency : array_like of float, shape (n,), optional
+            Term frequencies of the message's tokens (default: each once).  Only the
+            multinomial model counts repeats; presence models treat ``frequency > 0`` as
+            present and ``frequency == 0`` as absent.
+
+        Raises
+        ------
+        ValueError
+            On malformed inputs, or when either class has no trained message.
+        """
+
+    @abstractmethod
+    def token_weights(
+        self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
+    ) -> FloatArray:
+        """Shape (n,): each token's signed log-odds contribution (> 0 toward spam)."""
+
+    def spam_probability(
+        self,
+        token_count: TokenCounts,
+        class_count: ClassCounts,
+        vocabulary: Vocabulary,
+        frequency: npt.ArrayLike | None = None,
+    ) -> float:
+        """P(spam | message) in [0, 1]; 0.5 when the model is untrained."""
+        _, classes = check_counts(token_count, class_count)
+        if not is_trained(classes):
+            return UNTRAINED_PROBABILITY
+        return posterior_spam(
+            self.joint_log_likelihood(token_count, class_count, vocabulary, frequency)
+        )
+
+    def score(
+        self,
+        token_hashes: TokenHashes,
+        token_count: TokenCounts,
+        class_count: ClassCounts,
+        vocabulary: Vocabulary,
+        n_evidence: int = 8,
+    ) -> Score:
+        """Score one message: spam probability and the strongest evidence both ways.
+
+        Parameters
+        ----------
+        token_hashes : TokenHashes, shape (n,)
+            The message's unique token hashes, aligned with ``token_count`` rows.
+        token_count : TokenCounts, shape (n, 2)
+        class_count : ClassCounts, shape (2,)
+        vocabulary : Vocabulary
+        n_evidence : int
+            Most tokens listed per direction.
+
+        Returns
+        -------
+        Score
+            Probability 0.5 and no evidence when the model is untrained.
+        """
+        counts, classes = check_counts(token_count, class_count)
+        hashes = np.asarray(token_hashes)
+        if hashes.shape != (len(counts),):
+            raise ValueError(
+                f"token_hashes must have shape ({len(counts)},) to match token_count, "
+                f"got {hashes.shape}"
+            )
+        if n_evidence < 0:
+            raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
+        if not is_trained(classes):
+            return Score(UNTRAINED_PROBABILITY, ())
+        probability = posterior_spam(self.joint_log_likelihood(counts, classes, vocabulary))
+        weights = self.token_weights(counts, classes, vocabulary)
+        return Score(probability, strongest_evidence(hashes, weights, n_evidence))
+
+    @classmethod
+    def parameter_names(cls) -> tuple[str, ...]:
+        """The method's parameter names, as accepted by ``make_scorer``."""
+        return tuple(f.name for f in fields(cls))  # type: ignore[arg-type]
