@@ -1,0 +1,197 @@
+"""Judging one message: tokenize, look up counts, score, and place the score in a band.
+
+The pipeline is tokenize (CPU) -> ``store.lookup`` (database) -> ``scorer.score`` (CPU).  None of
+it runs on the event loop: CPU steps go to the executor the service hands in, database calls to
+the loop's default thread pool, and an ``asyncio.Semaphore`` caps how many messages are in the
+pipeline at once (``model.max_concurrent_scoring``) so a burst queues instead of piling up
+memory.
+
+Pool choice (measured with ``bench/bench_pool.py``; figures in its docstring): POOL_CHOICE_NOTE
+
+``Judge.judge`` never raises.  Any exception, a locked database included, becomes band
+``"failed"``; the traceback is logged with the tracking id and the failure counted, and the SMTP
+side then passes the message on untagged (or answers 4xx, by setting).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import base64
+import concurrent.futures
+import functools
+import logging
+import os
+import time
+from collections import Counter
+from dataclasses import dataclass
+from typing import Any, Literal
+
+import numpy as np
+from mailweir.daemon.settings import PolicySettings, Settings
+from mailweir.model.hashing import hash_tokens, token_hash
+from mailweir.model.nb import NaiveBayes, Score, make_scorer
+from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
+from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
+
+log = logging.getLogger("mailweir.judge")
+
+JudgedBand = Literal["ham", "suspect", "spam", "unjudged", "failed"]
+POOL_KIND: Literal["thread", "process"] = "thread"  # see the module docstring
+N_EVIDENCE = 4  # tokens listed each way, for the header and the log
+META_TOKENIZER = "tokenizer"
+META_METHOD = "method"
+
+
+@dataclass(frozen=True)
+class Judgement:
+    """What the daemon decided about one message.
+
+    ``evidence`` holds (token text, signed log-odds weight) pairs, strongest first; a positive
+    weight pushes toward spam.  ``score`` and ``token_hashes`` are None when nothing could be
+    computed (``"failed"``); an ``"unjudged"`` message still carries its token hashes so that
+    feedback on it can train the model later.
+    """
+
+    tracking_id: str
+    band: JudgedBand
+    score: float | None
+    evidence: tuple[tuple[str, float], ...]
+    token_hashes: TokenHashes | None
+
+
+def new_tracking_id() -> str:
+    """16 characters: 48 bits of milliseconds, then 32 random bits, in RFC 4648 base32hex.
+
+    base32hex keeps byte order in character order, so ids sort by arrival time.
+    """
+    stamp = (time.time_ns() // 1_000_000).to_bytes(6, "big")
+    return base64.b32hexencode(stamp + os.urandom(4)).decode("ascii").lower()
+
+
+def band_for(probability: float, policy: PolicySettings) -> Literal["ham", "suspect", "spam"]:
+    """Place a spam probability in its band; a score equal to a cut-off belongs above it."""
+    if probability >= policy.spam_cutoff:
+        return "spam"
+    if probability >= policy.suspect_cutoff:
+        return "suspect"
+    return "ham"
+
+
+# -- CPU steps: module-level functions, so a process pool can run them too ------------------
+
+
+def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, list[str]]:
+    """Return the message's unique sorted hashes and one token text per hash (same order)."""
+    words = tokens(raw, options)
+    hashes = hash_tokens(words)
+    by_hash = {token_hash(word): word for word in set(words)}
+    return hashes, [by_hash[int(h)] for h in hashes]
+
+
+def score_step(
+    scorer: NaiveBayes,
+    hashes: TokenHashes,
+    counts: TokenCounts,
+    class_count: ClassCounts,
+    vocabulary: Vocabulary,
+) -> Score:
+    return scorer.score(hashes, counts, class_count, vocabulary, N_EVIDENCE)
+
+
+@dataclass(frozen=True)
+class _ModelView:
+    class_count: ClassCounts
+    counts: TokenCounts | None  # None when the cold-start guard holds
+    vocabulary: Vocabulary | None
+
+
+class Judge:
+    """Scores messages for the SMTP handler; safe to share across every connection."""
+
+    def __init__(
+        self,
+        store: Any,
+        settings: Settings,
+        executor: concurrent.futures.Executor | None = None,
+    ) -> None:
+        self._store = store
+        self._executor = executor
+        self._semaphore = asyncio.Semaphore(settings.model.max_concurrent_scoring)
+        self._policy = settings.policy
+        self.options, self.scorer = _model_identity(store, settings)
+        self.counts: Counter[str] = Counter()  # judgements by band, for metrics and tests
+
+    @property
+    def policy(self) -> PolicySettings:
+        return self._policy
+
+    def reload(self, settings: Settings) -> None:
+        """Take new cut-offs and guard; judgements already running finish with the old ones."""
+        self._policy = settings.policy
+
+    async def judge(self, raw: bytes) -> Judgement:
+        tracking_id = new_tracking_id()
+        policy = self._policy  # one policy for the whole message, even across a reload
+        try:
+            async with self._semaphore:
+                judgement = await self._judge(tracking_id, raw, policy)
+        except Exception:
+            log.exception("scoring failed for message %s", tracking_id)
+            judgement = Judgement(tracking_id, "failed", None, (), None)
+        self.counts[judgement.band] += 1
+        return judgement
+
+    async def _judge(self, tracking_id: str, raw: bytes, policy: PolicySettings) -> Judgement:
+        loop = asyncio.get_running_loop()
+        hashes, texts = await loop.run_in_executor(self._executor, tokenize_step, raw, self.options)
+        view = await asyncio.to_thread(self._read_model, hashes, policy.min_trained)
+        if view.counts is None or view.vocabulary is None:
+            return Judgement(tracking_id, "unjudged", None, (), hashes)
+        score = await loop.run_in_executor(
+            self._executor,
+            functools.partial(
+                score_step, self.scorer, hashes, view.counts, view.class_count, view.vocabulary
+            ),
+        )
+        probability = float(score.spam_probability)
+        evidence = _evidence_text(score, hashes, texts)
+        return Judgement(tracking_id, band_for(probability, policy), probability, evidence, hashes)
+
+    def _read_model(self, hashes: TokenHashes, min_trained: int) -> _ModelView:
+        """Database step (worker thread): class totals, and counts unless the guard holds."""
+        class_count = np.asarray(self._store.class_count(), dtype=np.int64)
+        # An empty class leaves no posterior at all, so the guard holds even with min_trained 0.
+        if class_count.min() < max(min_trained, 1):
+            return _ModelView(class_count, None, None)
+        return _ModelView(class_count, self._store.lookup(hashes), self._store.vocabulary())
+
+
+def _evidence_text(
+    score: Score, hashes: TokenHashes, texts: list[str]
+) -> tuple[tuple[str, float], ...]:
+    """Name each evidence hash by its token text, strongest first across both directions."""
+    named = []
+    for item in sorted(score.evidence, key=lambda e: (-abs(e.weight), e.token_hash)):
+        index = int(np.searchsorted(hashes, item.token_hash))
+        found = index < len(hashes) and int(hashes[index]) == item.token_hash
+        text = texts[index] if found else f"#{item.token_hash & 0xFFFFFFFFFFFFFFFF:016x}"
+        named.append((text, float(item.weight)))
+    return tuple(named)
+
+
+def _model_identity(store: Any, settings: Settings) -> tuple[TokenizerOptions, NaiveBayes]:
+    """The tokenizer options and method the model was built with (store meta), else defaults.
+
+    Hashes made with other tokenizer options would silently miss every stored count, so the
+    store's stamp wins over the configuration.
+    """
+    options = DEFAULT_OPTIONS
+    stamped = store.get_meta(META_TOKENIZER)
+    if stamped:
+        from mailweir.daemon.learning import options_from_json
+
+        options = options_from_json(stamped)
+    method = store.get_meta(META_METHOD) or settings.model.method
+    if method != settings.model.method:
+        log.info("model database was built for method %r; using it over model.method", method)
+    return options, make_scorer(method)

@@ -1,0 +1,336 @@
+"""The judge: bands at the cut-offs, the cold-start guard, failures, evidence, a free loop."""
+
+from __future__ import annotations
+
+import asyncio
+import concurrent.futures
+import dataclasses
+import multiprocessing
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from mailweir.daemon import judge as judge_module
+from mailweir.daemon.judge import Judge, band_for, new_tracking_id
+from mailweir.daemon.settings import ModelSettings, PolicySettings, Settings
+from mailweir.model.hashing import message_digest
+from mailweir.model.tokenize import tokenize
+from mailweir.model.types import HAM, SPAM, Vocabulary
+
+try:
+    from mailweir.store import ModelStore
+    from mailweir.store.errors import StoreBusy
+except ImportError:  # the store lands in parallel; these tests wait for it
+    ModelStore = None  # type: ignore[assignment,misc]
+    StoreBusy = RuntimeError  # type: ignore[assignment,misc]
+
+needs_store = pytest.mark.skipif(ModelStore is None, reason="mailweir.store.ModelStore missing")
+
+
+def message(sender: str, subject: str, body: str) -> bytes:
+    head = (
+        f"From: {sender}\r\nTo: Priya Raman <priya.raman@harbourlane.example>\r\n"
+        f"Subject: {subject}\r\nMIME-Version: 1.0\r\n"
+        "Content-Type: text/plain; charset=utf-8\r\n\r\n"
+    )
+    return (head + body.replace("\n", "\r\n") + "\r\n").encode("utf-8")
+
+
+HAM_MAIL = [
+    message(
+        "Alma Fitzgerald <alma.fitz@mail.example>",
+        "Biscuit's vaccination booster",
+        "Hello Priya, could we move Biscuit's booster appointment to Thursday afternoon?\n"
+        "Thanks, Alma",
+    ),
+    message(
+        "VetSupply Orders <orders@vetsupply.example>",
+        "Delivery note for order 5521",
+        "Your order of surgical gloves and suture kits will be delivered to the practice "
+        "on Tuesday morning. Delivery note attached.",
+    ),
+    message(
+        "Tobias Lindqvist <tobias.lindqvist@harbourlane.example>",
+        "Reception rota next week",
+        "Priya, the reception rota for next week is on the shared drive. Dr. Okafor is in "
+        "surgery on Wednesday, so please keep her appointments light.",
+    ),
+    message(
+        "Northgate Diagnostics Lab <results@northgate-lab.example>",
+        "Blood test results for Mango",
+        "The blood test results for Mango (patient 3381) are ready for Dr. Maren Okafor. "
+        "All values within the normal range.",
+    ),
+]
+SPAM_MAIL = [
+    message(
+        "Lottery Claims Office <claims@prize-winners.example.com>",
+        "You are a WINNER claim your prize now",
+        "Congratulations winner! Claim your cash prize now, send your bank details today. "
+        "Guaranteed prize, act now!",
+    ),
+    message(
+        "Pharmacy Deals <offers@cheap-meds.example.org>",
+        "Cheap pills discount guaranteed",
+        "Cheap pills with no prescription, discount guaranteed, act now and claim your "
+        "exclusive offer today!",
+    ),
+    message(
+        "Account Security <security@verify-login.example.com>",
+        "Verify your account password now",
+        "Your account will be closed. Verify your password now at our secure login page, "
+        "act now to claim continued access!",
+    ),
+    message(
+        "Crypto Growth Fund <advisor@fast-returns.example.net>",
+        "Guaranteed returns claim your bonus",
+        "Guaranteed crypto returns, claim your bonus today, send your bank details now!",
+    ),
+]
+NEW_SPAM = message(
+    "Prize Desk <desk@prize-winners.example.com>",
+    "WINNER: claim your guaranteed cash prize now",
+    "Winner! Claim your guaranteed cash prize now, send bank details today, act now!",
+)
+NEW_HAM = message(
+    "Greta Holm <greta.holm@mail.example>",
+    "Appointment for Pepper on Thursday",
+    "Hello Priya, Pepper needs a dental check. Is Thursday afternoon free at the practice?",
+)
+
+
+def settings(**policy: Any) -> Settings:
+    base = {"min_trained": 4, "suspect_cutoff": 0.5, "spam_cutoff": 0.99}
+    return Settings(policy=PolicySettings(**{**base, **policy}))
+
+
+@pytest.fixture
+def store(tmp_path: Path) -> Iterator[Any]:
+    if ModelStore is None:
+        pytest.skip("mailweir.store.ModelStore missing")
+    opened = ModelStore.open(str(tmp_path / "model.sqlite3"))
+    batch = []
+    for label, mails in ((HAM, HAM_MAIL), (SPAM, SPAM_MAIL)):
+        for raw in mails:
+            hashes = tokenize(raw)
+            batch.append((hashes, label, message_digest(hashes), "test"))
+    opened.train_many(batch)
+    yield opened
+    opened.close()
+
+
+class FakeStore:
+    """A model with fixed counts: every token seen once as ham, nothing as spam."""
+
+    def __init__(self, class_count: tuple[int, int] = (10, 10), fail: Exception | None = None):
+        self._class_count = np.array(class_count, dtype=np.int64)
+        self.fail = fail
+        self.lookup_threads: set[int] = set()
+        self.meta: dict[str, str] = {}
+
+    def get_meta(self, key: str) -> str | None:
+        return self.meta.get(key)
+
+    def class_count(self) -> np.ndarray:
+        return self._class_count
+
+    def lookup(self, hashes: np.ndarray) -> np.ndarray:
+        self.lookup_threads.add(threading.get_ident())
+        if self.fail is not None:
+            raise self.fail
+        return np.tile(np.array([[1, 0]], dtype=np.int64), (len(hashes), 1))
+
+    def vocabulary(self) -> Vocabulary:
+        return Vocabulary.from_token_counts(np.array([[1, 0], [0, 1]], dtype=np.int64))
+
+
+@pytest.mark.parametrize(
+    ("probability", "band"),
+    [(0.0, "ham"), (0.4999, "ham"), (0.5, "suspect"), (0.98, "suspect"), (0.99, "spam")],
+)
+def test_judge_band_for_cutoffs(probability: float, band: str) -> None:
+    assert band_for(probability, PolicySettings(suspect_cutoff=0.5, spam_cutoff=0.99)) == band
+
+
+def test_judge_tracking_ids_unique_and_time_ordered() -> None:
+    ids = [new_tracking_id() for _ in range(200)]
+    assert len(set(ids)) == 200
+    assert all(len(i) == 16 and i.isalnum() for i in ids)
+    assert new_tracking_id()[:9] >= ids[0][:9]  # the millisecond prefix never goes back
+
+
+@needs_store
+async def test_judge_spam_and_ham_scored_apart(store: Any) -> None:
+    judge = Judge(store, settings())
+    spam, ham = await judge.judge(NEW_SPAM), await judge.judge(NEW_HAM)
+    assert spam.score is not None and ham.score is not None
+    assert spam.score > 0.5 > ham.score
+    assert ham.band == "ham"
+    assert spam.token_hashes is not None and len(spam.token_hashes) > 10
+
+
+@needs_store
+async def test_judge_bands_at_cutoffs_after_reload(store: Any) -> None:
+    judge = Judge(store, settings())
+    score = (await judge.judge(NEW_SPAM)).score
+    assert score is not None
+    judge.reload(settings(suspect_cutoff=0.0, spam_cutoff=score))
+    assert (await judge.judge(NEW_SPAM)).band == "spam"  # equal to the cut-off: above it
+    judge.reload(settings(suspect_cutoff=score, spam_cutoff=min(1.0, score + 1e-9)))
+    assert (await judge.judge(NEW_SPAM)).band == "suspect"
+    judge.reload(settings(suspect_cutoff=min(1.0, score + 1e-9), spam_cutoff=1.0))
+    assert (await judge.judge(NEW_SPAM)).band == "ham"
+
+
+@needs_store
+async def test_judge_unjudged_below_min_trained(store: Any) -> None:
+    judge = Judge(store, settings(min_trained=5))  # four of each class were trained
+    judgement = await judge.judge(NEW_SPAM)
+    assert judgement.band == "unjudged"
+    assert judgement.score is None and judgement.evidence == ()
+    assert judgement.token_hashes is not None  # kept so feedback can train on it later
+
+
+async def test_judge_unjudged_when_a_class_is_empty_even_without_guard() -> None:
+    judge = Judge(FakeStore((0, 30)), settings(min_trained=0))
+    assert (await judge.judge(NEW_HAM)).band == "unjudged"
+
+
+@needs_store
+async def test_judge_evidence_names_tokens(store: Any) -> None:
+    judgement = await Judge(store, settings()).judge(NEW_SPAM)
+    texts = [text for text, _ in judgement.evidence]
+    weights = [weight for _, weight in judgement.evidence]
+    assert 0 < len(texts) <= 2 * judge_module.N_EVIDENCE
+    assert not any(text.startswith("#") for text in texts)  # every hash found its text
+    assert any("prize" in text.lower() or "claim" in text.lower() for text in texts)
+    assert weights == sorted(weights, key=abs, reverse=True)
+    assert max(weights) > 0
+
+
+@needs_store
+async def test_judge_uses_method_stamped_in_store(store: Any) -> None:
+    store.set_meta("method", "bernoulli")
+    judge = Judge(store, settings())
+    assert judge.scorer.name == "bernoulli"
+
+
+@pytest.mark.parametrize("error", [StoreBusy("database is locked"), RuntimeError("bug")])
+async def test_judge_failed_when_store_raises(
+    error: Exception, caplog: pytest.LogCaptureFixture
+) -> None:
+    judge = Judge(FakeStore(fail=error), settings())
+    judgement = await judge.judge(NEW_HAM)
+    assert judgement.band == "failed"
+    assert judgement.score is None and judgement.token_hashes is None
+    assert judge.counts["failed"] == 1
+    assert judgement.tracking_id in caplog.text
+    assert "Traceback" in caplog.text
+
+
+async def test_judge_failed_when_scorer_raises(monkeypatch: pytest.MonkeyPatch) -> None:
+    def broken(*_: Any) -> None:
+        raise ValueError("counts of the wrong shape")
+
+    monkeypatch.setattr(judge_module, "score_step", broken)
+    judgement = await Judge(FakeStore(), settings()).judge(NEW_HAM)
+    assert judgement.band == "failed"
+
+
+async def test_judge_scores_with_fake_counts() -> None:
+    judgement = await Judge(FakeStore(), settings()).judge(NEW_HAM)
+    assert judgement.band == "ham"  # every token was only ever seen in ham
+    assert judgement.score is not None and judgement.score < 0.5
+
+
+async def test_judge_cpu_and_database_work_leave_the_loop_free(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # The tokenizer is held until the event loop itself releases it: if tokenizing ran on the
+    # loop, the loop could never reach release.set() and the wait would time out.
+    release = threading.Event()
+    seen: dict[str, Any] = {}
+    real_tokens = judge_module.tokens
+
+    def held_tokens(raw: bytes, options: Any) -> list[str]:
+        seen["thread"] = threading.get_ident()
+        seen["released"] = release.wait(10)
+        return real_tokens(raw, options)
+
+    monkeypatch.setattr(judge_module, "tokens", held_tokens)
+    store = FakeStore()
+    task = asyncio.create_task(Judge(store, settings()).judge(NEW_HAM))
+    for _ in range(1000):
+        if "thread" in seen:
+            break
+        await asyncio.sleep(0.005)
+    release.set()
+    judgement = await task
+    assert seen["released"], "the tokenizer ran on the event loop"
+    assert seen["thread"] != threading.get_ident()
+    assert threading.get_ident() not in store.lookup_threads
+    assert judgement.band == "ham"
+
+
+async def test_judge_concurrency_capped_by_semaphore(monkeypatch: pytest.MonkeyPatch) -> None:
+    gate = threading.Event()
+    lock = threading.Lock()
+    state = {"now": 0, "most": 0}
+    real_tokens = judge_module.tokens
+
+    def counting_tokens(raw: bytes, options: Any) -> list[str]:
+        with lock:
+            state["now"] += 1
+            state["most"] = max(state["most"], state["now"])
+        gate.wait(10)
+        with lock:
+            state["now"] -= 1
+        return real_tokens(raw, options)
+
+    monkeypatch.setattr(judge_module, "tokens", counting_tokens)
+    capped = dataclasses.replace(settings(), model=ModelSettings(max_concurrent_scoring=2))
+    with concurrent.futures.ThreadPoolExecutor(8) as pool:
+        judge = Judge(FakeStore(), capped, pool)
+        tasks = [asyncio.create_task(judge.judge(NEW_HAM)) for _ in range(6)]
+        for _ in range(1000):
+            if state["now"] == 2:
+                break
+            await asyncio.sleep(0.005)
+        for _ in range(20):
+            await asyncio.sleep(0)  # room for a third to slip in, were the cap broken
+        gate.set()
+        bands = [j.band for j in await asyncio.gather(*tasks)]
+    assert state["most"] == 2
+    assert bands == ["ham"] * 6
+
+
+@pytest.mark.slow
+async def test_judge_runs_in_a_process_pool() -> None:
+    context = multiprocessing.get_context("forkserver")
+    with concurrent.futures.ProcessPoolExecutor(2, mp_context=context) as pool:
+        judgement = await Judge(FakeStore(), settings(), pool).judge(NEW_HAM)
+    assert judgement.band == "ham"
+    assert any(text for text, _ in judgement.evidence)
+
+
+async def test_judge_never_lets_cancellation_pass_as_failure() -> None:
+    # Shutdown cancels judgements; that must stay a cancellation, not a "failed" verdict.
+    started = asyncio.Event()
+
+    class SlowStore(FakeStore):
+        def class_count(self) -> np.ndarray:
+            started_loop.call_soon_threadsafe(started.set)
+            threading.Event().wait(0.2)
+            return super().class_count()
+
+    started_loop = asyncio.get_running_loop()
+    judge = Judge(SlowStore(), settings())
+    task = asyncio.create_task(judge.judge(NEW_HAM))
+    await started.wait()
+    task.cancel()
+    with pytest.raises(asyncio.CancelledError):
+        await task
+    assert judge.counts["failed"] == 0
