@@ -1,0 +1,371 @@
+"""ModelStore: token counts, class totals, ledger, meta, verdict and feedback logs.
+
+In-memory state (count cache, class totals, vocabulary summary) is tagged with the database
+revision it reflects.  Every write transaction advances the revision by two (one per class
+row) and learns the value it produced, so after commit it can update the memory in place
+exactly when nothing else wrote in between, and otherwise drops it.  Other processes'
+writes are noticed by re-reading the revision once ``staleness_seconds`` have passed.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections import Counter
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
+from mailweir.store import schema, verdicts
+from mailweir.store.cache import CountCache
+from mailweir.store.engine import NO_BEGIN, READ_ONLY, make_engine
+from mailweir.store.errors import store_errors
+from mailweir.store.lookup import CountReader
+from mailweir.store.meta import database_bytes, get_meta, row_count, set_meta
+from mailweir.store.migrations import migrate
+from mailweir.store.training import (
+    Plan,
+    TrainItem,
+    TrainResult,
+    apply_counts,
+    bump_totals,
+    resolve_training,
+    resolve_untraining,
+)
+from mailweir.store.verdicts import FeedbackRecord, VerdictRecord
+from mailweir.store.vocab import VocabularyTracker
+from sqlalchemy import Connection, Engine, delete, func, select
+
+# Bulk training flushes a batch once it holds this many token occurrences.
+_BATCH_TOKENS = 300_000
+
+
+@dataclass(frozen=True)
+class ModelStats:
+    tokens: int
+    ham_messages: int
+    spam_messages: int
+    ledger_rows: int
+    verdict_rows: int
+    database_bytes: int
+    backend: str
+    tokenizer: str | None
+    method: str | None
+
+
+def day_number() -> int:
+    """Day number (days since 1970-01-01 UTC), the unit of ``last_seen``."""
+    return int(time.time() // 86400)
+
+
+class ModelStore:
+    """The naive Bayes model's counts and the logs around them, on SQLite or PostgreSQL."""
+
+    def __init__(self, engine: Engine, *, cache_tokens: int, staleness_seconds: float) -> None:
+        self._engine = engine
+        self._reader = CountReader(engine.dialect.name)
+        self._cache = CountCache(cache_tokens)
+        self._staleness = staleness_seconds
+        self._lock = threading.RLock()
+        self._local = threading.local()
+        self._vocab: VocabularyTracker | None = None
+        self._totals = np.zeros(2, dtype=np.int64)
+        self._revision = -1
+        self._checked = float("-inf")
+        self._epoch = 0  # advances on every in-memory change; guards cache fills
+        self._writers = 0  # write transactions in flight in this process
+
+    @classmethod
+    def open(
+        cls,
+        target: str,
+        *,
+        cache_tokens: int = 1_000_000,
+        staleness_seconds: float = 5.0,
+        create: bool = True,
+    ) -> ModelStore:
+        """Open (and migrate) the store at a SQLAlchemy URL or a SQLite file path."""
+        with store_errors():
+            engine = make_engine(target, create=create)
+            try:
+                migrate(engine, create=create)
+            except BaseException:
+                engine.dispose()
+                raise
+        store = cls(engine, cache_tokens=cache_tokens, staleness_seconds=staleness_seconds)
+        store._check_fresh(force=True)
+        return store
+
+    def close(self) -> None:
+        self._engine.dispose()
+
+    @property
+    def engine(self) -> Engine:
+        return self._engine
+
+    # -- transactions --------------------------------------------------------------------------
+
+    @contextmanager
+    def transaction(self) -> Iterator[Connection]:
+        """A write transaction; nested use opens a savepoint on the same connection."""
+        local = self._local
+        conn: Connection | None = getattr(local, "conn", None)
+        with store_errors():
+            if conn is not None:
+                yield from self._nested(conn)
+                return
+            conn = self._engine.connect()
+            local.conn, local.after = conn, [[]]
+            with self._lock:
+                self._writers += 1
+                self._epoch += 1
+            committed = False
+            try:
+                with conn.begin():
+                    yield conn
+                committed = True
+            finally:
+                after = local.after[0]
+                local.conn, local.after = None, None
+                conn.close()
+                with self._lock:
+                    if committed:
+                        for step in after:
+                            step()
+                    self._writers -= 1
+                    self._epoch += 1
+
+    def _nested(self, conn: Connection) -> Iterator[Connection]:
+        after = self._local.after
+        after.append([])
+        try:
+            with conn.begin_nested():
+                yield conn
+        except BaseException:
+            after.pop()
+            raise
+        after[-2].extend(after.pop())
+
+    def _after_commit(self, step: Callable[[], None]) -> None:
+        self._local.after[-1].append(step)
+
+    @contextmanager
+    def _reading(self, *, snapshot: bool = False) -> Iterator[Connection]:
+        """A connection for reads: autocommit, or one consistent snapshot when asked."""
+        postgres = self._engine.dialect.name == "postgresql"
+        options: dict[str, Any]
+        if snapshot:
+            options = {"isolation_level": "REPEATABLE READ"} if postgres else {READ_ONLY: True}
+        else:
+            options = {"isolation_level": "AUTOCOMMIT"} if postgres else {NO_BEGIN: True}
+        with store_errors(), self._engine.connect() as conn:
+            yield conn.execution_options(**options)
+
+    # -- freshness -----------------------------------------------------------------------------
+
+    def _check_fresh(self, *, force: bool = False) -> None:
+        now = time.monotonic()
+        if not force and now - self._checked < self._staleness:
+            return
+        ct = schema.class_total
+        with self._reading() as conn:
+            rows = conn.execute(select(ct.c.label, ct.c.messages, ct.c.revision)).all()
+        totals = np.zeros(2, dtype=np.int64)
+        for label, messages, _ in rows:
+            totals[label] = messages
+        revision = sum(int(row[2]) for row in rows)
+        with self._lock:
+            if revision != self._revision:
+                self._reset(revision, totals)
+            self._checked = now
+
+    def _reset(self, revision: int, totals: ClassCounts) -> None:
+        self._cache.clear()
+        self._vocab = None
+        self._totals = totals
+        self._revision = revision
+        self._epoch += 1
+
+    def _committed(
+        self,
+        revision: int,
+        hashes: TokenHashes,
+        delta: TokenCounts,
+        old: TokenCounts | None,
+        messages: ClassCounts,
+    ) -> None:
+        """Bring memory up to *revision* after our own commit (lock held)."""
+        if self._revision >= revision:
+            return  # memory was reloaded after our commit and already includes it
+        if self._revision != revision - 2:
+            self._checked = float("-inf")  # someone else wrote too: reload on next read
+            self._reset(-1, self._totals)
+            return
+        self._cache.add(hashes, delta)
+        self._totals = self._totals + messages
+        if self._vocab is not None:
+            if old is None:
+                self._vocab = None
+            else:
+                self._vocab.apply(old, np.maximum(old + delta, 0))
+        self._revision = revision
+
+    # -- scoring side --------------------------------------------------------------------------
+
+    def lookup(self, hashes: TokenHashes) -> TokenCounts:
+        """Counts, shape (n, 2), for *hashes*; zeros for unknown tokens."""
+        hashes = np.asarray(hashes, dtype=np.int64)
+        self._check_fresh()
+        with self._lock:
+            counts, found = self._cache.get(hashes)
+            epoch, writers = self._epoch, self._writers
+        if found.all():
+            return counts
+        missing = hashes[~found]
+        unique = np.unique(missing)
+        with self._reading() as conn:
+            fetched = self._reader.fetch(conn, unique)
+        with self._lock:
+            # A write committing meanwhile may or may not be in what we read: don't cache it.
+            if writers == 0 and epoch == self._epoch:
+                self._cache.put(unique, fetched)
+        counts[~found] = fetched[np.searchsorted(unique, missing)]
+        return counts
+
+    def class_count(self) -> ClassCounts:
+        """Trained ham and spam messages, shape (2,)."""
+        self._check_fresh()
+        with self._lock:
+            return self._totals.copy()
+
+    def vocabulary(self) -> Vocabulary:
+        """Size, token totals and count histogram of the whole vocabulary."""
+        self._check_fresh()
+        with self._lock:
+            if self._vocab is not None:
+                return self._vocab.snapshot()
+        while True:
+            with self._reading(snapshot=True) as conn, conn.begin():
+                revision = conn.execute(select(func.sum(schema.class_total.c.revision))).scalar()
+                tracker = VocabularyTracker.load(conn)
+            with self._lock:
+                if int(revision) < self._revision:
+                    continue  # our own commit landed after the snapshot: read again
+                if int(revision) > self._revision:
+                    self._checked = float("-inf")
+                    self._reset(int(revision), self._totals)
+                self._vocab = tracker
+                return tracker.snapshot()
+
+    # -- learning side -------------------------------------------------------------------------
+
+    def train(self, hashes: TokenHashes, label: int, *, digest: bytes, source: str) -> TrainResult:
+        """Count one message under *label* unless the ledger already has it so."""
+        return self._write(
+            lambda conn: resolve_training(conn, [(hashes, label, digest, source)], time.time())
+        )[0]
+
+    def untrain(self, hashes: TokenHashes, *, digest: bytes) -> TrainResult:
+        """Take a trained message back out of the counts and the ledger."""
+        return self._write(lambda conn: resolve_untraining(conn, hashes, digest))[0]
+
+    def train_many(self, items: Iterable[TrainItem]) -> Counter[TrainResult]:
+        """Bulk training in large transactions, one upsert per distinct token per batch."""
+        results: Counter[TrainResult] = Counter()
+        batch: list[TrainItem] = []
+        pending = 0
+        for item in items:
+            batch.append(item)
+            pending += len(item[0])
+            if pending >= _BATCH_TOKENS:
+                results.update(self._write_batch(batch))
+                batch, pending = [], 0
+        if batch:
+            results.update(self._write_batch(batch))
+        return results
+
+    def _write_batch(self, batch: list[TrainItem]) -> list[TrainResult]:
+        return self._write(lambda conn: resolve_training(conn, batch, time.time()))
+
+    def _write(self, resolve: Callable[[Connection], Plan]) -> list[TrainResult]:
+        with self.transaction() as conn:
+            plan = resolve(conn)
+            if plan.messages.any() or len(plan.hashes):
+                old = self._reader.fetch(conn, plan.hashes) if self._vocab is not None else None
+                apply_counts(conn, plan.hashes, plan.delta, day_number())
+                revision = bump_totals(conn, plan.messages)
+                self._after_commit(
+                    lambda: self._committed(revision, plan.hashes, plan.delta, old, plan.messages)
+                )
+        return plan.results
+
+    def prune(self, *, max_count: int = 1, unseen_days: int = 60, today: int | None = None) -> int:
+        """Delete rare tokens (ham + spam <= max_count) not trained for *unseen_days* days."""
+        day = day_number() if today is None else today
+        t = schema.token
+        with self.transaction() as conn:
+            rows = conn.execute(
+                delete(t)
+                .where(t.c.ham + t.c.spam <= max_count, t.c.last_seen < day - unseen_days)
+                .returning(t.c.hash, t.c.ham, t.c.spam)
+            ).all()
+            if not rows:
+                return 0
+            gone = np.array(rows, dtype=np.int64).reshape(-1, 3)
+            hashes, old = gone[:, 0], gone[:, 1:]
+            revision = bump_totals(conn, np.zeros(2, dtype=np.int64))
+            self._after_commit(
+                lambda: self._committed(revision, hashes, -old, old, np.zeros(2, np.int64))
+            )
+        return len(rows)
+
+    # -- bookkeeping ---------------------------------------------------------------------------
+
+    def stats(self) -> ModelStats:
+        with self._reading() as conn:
+            totals = dict(
+                conn.execute(
+                    select(schema.class_total.c.label, schema.class_total.c.messages)
+                ).all()
+            )
+            return ModelStats(
+                tokens=row_count(conn, schema.token),
+                ham_messages=int(totals.get(0, 0)),
+                spam_messages=int(totals.get(1, 0)),
+                ledger_rows=row_count(conn, schema.ledger),
+                verdict_rows=row_count(conn, schema.verdict),
+                database_bytes=database_bytes(conn),
+                backend=conn.dialect.name,
+                tokenizer=get_meta(conn, "tokenizer"),
+                method=get_meta(conn, "method"),
+            )
+
+    def get_meta(self, key: str) -> str | None:
+        with self._reading() as conn:
+            return get_meta(conn, key)
+
+    def set_meta(self, key: str, value: str) -> None:
+        with self.transaction() as conn:
+            set_meta(conn, key, value)
+
+    # -- verdict and feedback logs -------------------------------------------------------------
+
+    def record_verdicts(self, records: Sequence[VerdictRecord]) -> None:
+        with self.transaction() as conn:
+            verdicts.record_verdicts(conn, records)
+
+    def find_verdict(self, tracking_id: str) -> VerdictRecord | None:
+        with self._reading() as conn:
+            return verdicts.find_verdict(conn, tracking_id)
+
+    def expire_verdict_tokens(self, older_than: float) -> int:
+        """Drop the token hashes of verdicts received before *older_than*; keep the rows."""
+        with self.transaction() as conn:
+            return verdicts.expire_verdict_tokens(conn, older_than)
+
+    def record_feedback(self, entry: FeedbackRecord) -> None:
+        with self.transaction() as conn:
+            verdicts.record_feedback(conn, entry)

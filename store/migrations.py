@@ -1,0 +1,87 @@
+"""Named, ordered schema migrations, each applied in its own transaction and recorded.
+
+A migration's name is recorded in ``weir_schema`` in the same transaction as its changes,
+so a crash leaves either both or neither.  Several processes may open one PostgreSQL
+database at once: each migration transaction takes an advisory lock and re-checks the log.
+On SQLite the write transaction (BEGIN IMMEDIATE) serialises them the same way.
+
+Once released, a migration never changes: a later change to ``schema.py`` comes with a
+new migration that alters the tables (and the initial migration then keeps its own copy of
+the original table definitions).
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+
+from mailweir.store import schema
+from mailweir.store.errors import SchemaTooNew, StoreUnavailable
+from sqlalchemy import Connection, Engine, insert, inspect, select, text
+
+Migration = tuple[str, Callable[[Connection], None]]
+
+# Arbitrary constant naming our advisory lock on PostgreSQL ("weir" in ASCII).
+_PG_LOCK_KEY = 0x77656972
+
+
+def _initial(conn: Connection) -> None:
+    tables = [
+        schema.token,
+        schema.class_total,
+        schema.ledger,
+        schema.meta,
+        schema.verdict,
+        schema.feedback,
+    ]
+    schema.metadata.create_all(conn, tables=tables)
+    conn.execute(
+        insert(schema.class_total),
+        [{"label": label, "messages": 0, "revision": 0} for label in (0, 1)],
+    )
+    conn.execute(insert(schema.meta).values(key="created", value=f"{time.time():.0f}"))
+
+
+MIGRATIONS: tuple[Migration, ...] = (("0001_initial", _initial),)
+
+
+def _lock(conn: Connection) -> None:
+    if conn.dialect.name == "postgresql":
+        conn.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _PG_LOCK_KEY})
+
+
+def applied_migrations(conn: Connection) -> list[str]:
+    """Names recorded in ``weir_schema``, in the order they were applied."""
+    rows = conn.execute(
+        select(schema.schema_log.c.name).order_by(
+            schema.schema_log.c.applied_at, schema.schema_log.c.name
+        )
+    )
+    return [row[0] for row in rows]
+
+
+def migrate(engine: Engine, *, create: bool = True) -> list[str]:
+    """Apply every pending migration; return the names applied now."""
+    with engine.begin() as conn:
+        _lock(conn)
+        if not inspect(conn).has_table(schema.schema_log.name):
+            if not create:
+                raise StoreUnavailable("database has no mailweir schema (create=False)")
+            schema.schema_log.create(conn)
+        done = set(applied_migrations(conn))
+    known = {name for name, _ in MIGRATIONS}
+    unknown = sorted(done - known)
+    if unknown:
+        raise SchemaTooNew(unknown)
+    applied = []
+    for name, step in MIGRATIONS:
+        if name in done:
+            continue
+        with engine.begin() as conn:
+            _lock(conn)
+            if name in applied_migrations(conn):  # another process got here first
+                continue
+            step(conn)
+            conn.execute(insert(schema.schema_log).values(name=name, applied_at=time.time()))
+        applied.append(name)
+    return applied

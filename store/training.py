@@ -1,0 +1,241 @@
+"""Training arithmetic in SQL: ledger resolution, count upserts, class totals.
+
+Every count change is an increment computed by the database (``ham = ham + :delta``), never
+a value read and written back from Python, so concurrent trainers on PostgreSQL lose no
+count.  The ledger row and the counts change in the same transaction, and the ledger's
+primary key decides when two processes train the same message at once.  Rows are touched
+in sorted key order (ledger, then tokens, then class totals) so concurrent transactions
+queue behind each other instead of deadlocking.
+"""
+
+from __future__ import annotations
+
+import enum
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+import numpy.typing as npt
+from mailweir.model.types import TokenCounts, TokenHashes
+from mailweir.store import schema
+from mailweir.store.engine import sqlite_variable_limit
+from mailweir.store.errors import StoreBusy
+from sqlalchemy import Connection, bindparam, delete, func, select, update
+from sqlalchemy.dialects import postgresql, sqlite
+
+TrainItem = tuple[TokenHashes, int, bytes, str]  # hashes, label, digest, source
+_LEDGER_ROUNDS = 10
+
+
+class TrainResult(enum.Enum):
+    TRAINED = "trained"  # new message, counted
+    ALREADY_KNOWN = "already_known"  # same digest already trained with this label
+    MOVED = "moved"  # trained before with the other label; counts moved over
+    UNTRAINED = "untrained"  # removed from the counts and the ledger
+    NOT_KNOWN = "not_known"  # untrain of a message that was never trained
+
+
+@dataclass
+class Plan:
+    """What one batch does to the counts once the ledger has decided."""
+
+    results: list[TrainResult]
+    hashes: TokenHashes = field(default_factory=lambda: np.empty(0, dtype=np.int64))
+    delta: TokenCounts = field(default_factory=lambda: np.zeros((0, 2), dtype=np.int64))
+    messages: npt.NDArray[np.int64] = field(default_factory=lambda: np.zeros(2, np.int64))
+
+
+def chunk_size(conn: Connection) -> int:
+    return sqlite_variable_limit() // 2 if conn.dialect.name == "sqlite" else 20000
+
+
+def _chunks(values: list, size: int) -> list[list]:
+    return [values[i : i + size] for i in range(0, len(values), size)]
+
+
+# -- ledger ----------------------------------------------------------------------------------
+
+
+def _lock_ledger(conn: Connection, digests: list[bytes]) -> dict[bytes, int]:
+    """Labels of the digests already in the ledger, row-locked until commit (PostgreSQL)."""
+    led = schema.ledger
+    known: dict[bytes, int] = {}
+    for part in _chunks(sorted(digests), chunk_size(conn)):
+        query = (
+            select(led.c.digest, led.c.label)
+            .where(led.c.digest.in_(part))
+            .order_by(led.c.digest)
+            .with_for_update()
+        )
+        known.update((bytes(d), int(label)) for d, label in conn.execute(query))
+    return known
+
+
+def _insert_new(conn: Connection, rows: list[dict]) -> set[bytes]:
+    """Insert ledger rows unless present; return the digests this transaction inserted."""
+    if not rows:
+        return set()
+    dialect_insert = postgresql.insert if conn.dialect.name == "postgresql" else sqlite.insert
+    stmt = dialect_insert(schema.ledger).on_conflict_do_nothing(index_elements=["digest"])
+    got: set[bytes] = set()
+    for part in _chunks(sorted(rows, key=lambda r: r["digest"]), 2000):
+        result = conn.execute(stmt.returning(schema.ledger.c.digest), part)
+        got.update(bytes(row[0]) for row in result)
+    return got
+
+
+def _simulate(
+    items: Sequence[TrainItem], known: dict[bytes, int]
+) -> tuple[list[TrainResult], npt.NDArray[np.int64], dict[bytes, tuple[int, str]]]:
+    """Replay the batch one message at a time: results, per-item deltas, final labels."""
+    state = dict(known)
+    results: list[TrainResult] = []
+    deltas = np.zeros((len(items), 2), dtype=np.int64)
+    final: dict[bytes, tuple[int, str]] = {}
+    for i, (_, label, digest, source) in enumerate(items):
+        before = state.get(digest)
+        if before is None:
+            results.append(TrainResult.TRAINED)
+            deltas[i, label] = 1
+        elif before == label:
+            results.append(TrainResult.ALREADY_KNOWN)
+            continue
+        else:
+            results.append(TrainResult.MOVED)
+            deltas[i, before] = -1
+            deltas[i, label] = 1
+        state[digest] = label
+        final[digest] = (label, source)
+    return results, deltas, final
+
+
+def resolve_training(conn: Connection, items: Sequence[TrainItem], now: float) -> Plan:
+    """Write the ledger for *items* and return the count changes they imply."""
+    for _, label, digest, _ in items:
+        if label not in (0, 1):
+            raise ValueError(f"label must be 0 (ham) or 1 (spam), got {label!r}")
+        if not isinstance(digest, bytes) or not digest:
+            raise ValueError("digest must be non-empty bytes")
+    known = _lock_ledger(conn, list({d for _, _, d, _ in items}))
+    inserted: set[bytes] = set()
+    for _ in range(_LEDGER_ROUNDS):
+        results, deltas, final = _simulate(items, known)
+        rows = [
+            {"digest": d, "label": label, "trained_at": now, "source": source}
+            for d, (label, source) in final.items()
+            if d not in known and d not in inserted
+        ]
+        got = _insert_new(conn, rows)
+        inserted |= got
+        lost = [r["digest"] for r in rows if r["digest"] not in got]
+        if not lost:
+            break
+        # Another process trained these between our read and our insert: read and retry.
+        known.update(_lock_ledger(conn, lost))
+    else:
+        raise StoreBusy("ledger kept changing under concurrent training; try again")
+    moved = [
+        {"d": d, "label": label, "source": source}
+        for d, (label, source) in final.items()
+        if d in known and known[d] != label
+    ]
+    if moved:
+        led = schema.ledger
+        stmt = (
+            update(led)
+            .where(led.c.digest == bindparam("d"))
+            .values(label=bindparam("label"), source=bindparam("source"), trained_at=now)
+        )
+        conn.execute(stmt, sorted(moved, key=lambda r: r["d"]))
+    return _plan(items, results, deltas)
+
+
+def resolve_untraining(conn: Connection, hashes: TokenHashes, digest: bytes) -> Plan:
+    """Remove *digest* from the ledger; return the count changes (none if it was unknown)."""
+    led = schema.ledger
+    row = conn.execute(delete(led).where(led.c.digest == digest).returning(led.c.label)).first()
+    if row is None:
+        return Plan([TrainResult.NOT_KNOWN])
+    deltas = np.zeros((1, 2), dtype=np.int64)
+    deltas[0, int(row[0])] = -1
+    return _plan([(hashes, int(row[0]), digest, "")], [TrainResult.UNTRAINED], deltas)
+
+
+def _plan(
+    items: Sequence[TrainItem], results: list[TrainResult], deltas: npt.NDArray[np.int64]
+) -> Plan:
+    active = np.flatnonzero(deltas.any(axis=1))
+    if not active.size:
+        return Plan(results)
+    parts = [np.unique(np.asarray(items[i][0], dtype=np.int64)) for i in active]
+    lengths = np.array([len(p) for p in parts])
+    every = np.concatenate(parts) if parts else np.empty(0, dtype=np.int64)
+    weights = np.repeat(deltas[active], lengths, axis=0)
+    hashes, inverse = np.unique(every, return_inverse=True)
+    delta = np.stack(
+        [np.bincount(inverse, weights=weights[:, c], minlength=len(hashes)) for c in (0, 1)],
+        axis=1,
+    ).astype(np.int64)
+    changed = delta.any(axis=1)
+    return Plan(results, hashes[changed], delta[changed], deltas.sum(axis=0))
+
+
+# -- counts ----------------------------------------------------------------------------------
+
+
+def _token_upsert(conn: Connection):  # type: ignore[no-untyped-def]
+    t = schema.token
+    if conn.dialect.name == "postgresql":
+        stmt, greatest = postgresql.insert(t), func.greatest
+    else:
+        stmt, greatest = sqlite.insert(t), func.max  # SQLite's two-argument max() is scalar
+    stmt = stmt.values(
+        hash=bindparam("h"), ham=bindparam("ih"), spam=bindparam("is"), last_seen=bindparam("day")
+    )
+    return stmt.on_conflict_do_update(
+        index_elements=[t.c.hash],
+        set_={
+            "ham": greatest(t.c.ham + bindparam("dh"), 0),
+            "spam": greatest(t.c.spam + bindparam("ds"), 0),
+            "last_seen": stmt.excluded.last_seen,
+        },
+    )
+
+
+def apply_counts(conn: Connection, hashes: TokenHashes, delta: TokenCounts, day: int) -> None:
+    """Add *delta* (shape (n, 2)) to the tokens' counts; delete rows that reach 0/0.
+
+    Counts never go below zero: untraining a token that ``prune`` already removed is a no-op.
+    """
+    if not len(hashes):
+        return
+    inserted = np.maximum(delta, 0)
+    rows = [
+        {"h": h, "ih": ih, "is": is_, "dh": dh, "ds": ds, "day": day}
+        for h, (ih, is_), (dh, ds) in zip(
+            hashes.tolist(), inserted.tolist(), delta.tolist(), strict=True
+        )
+    ]
+    conn.execute(_token_upsert(conn), rows)
+    shrinking = hashes[(delta < 0).any(axis=1)].tolist()
+    t = schema.token
+    for part in _chunks(shrinking, chunk_size(conn)):
+        conn.execute(delete(t).where(t.c.hash.in_(part), t.c.ham == 0, t.c.spam == 0))
+
+
+def bump_totals(conn: Connection, messages: npt.NDArray[np.int64]) -> int:
+    """Add to the class totals and advance both rows' revision (label order: no deadlock).
+
+    Returns the database revision (sum over both rows) as of this transaction's commit:
+    the rows stay locked until then, so no other writer can slip in between.
+    """
+    ct = schema.class_total
+    revision = 0
+    for label in (0, 1):
+        revision += conn.execute(
+            update(ct)
+            .where(ct.c.label == label)
+            .values(messages=ct.c.messages + int(messages[label]), revision=ct.c.revision + 1)
+            .returning(ct.c.revision)
+        ).scalar_one()
+    return revision

@@ -1,0 +1,120 @@
+"""The verdict log and the feedback log.
+
+A verdict row holds what the rates and the retraining need and nothing personal: sizes,
+score, band, action and, for a retention window, the message's token hashes (so feedback
+quoting the tracking id can retrain without the original text).
+"""
+
+from __future__ import annotations
+
+import enum
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from mailweir.model.types import TokenHashes
+from mailweir.store import schema
+from sqlalchemy import Connection, insert, select, update
+
+
+class FeedbackKind(enum.StrEnum):
+    FALSE_POSITIVE = "false_positive"  # filed as spam, was wanted mail
+    FALSE_NEGATIVE = "false_negative"  # passed as ham, was spam
+    CONFIRMATION = "confirmation"  # the verdict was right
+
+
+class FeedbackChannel(enum.StrEnum):
+    MAIL = "mail"
+    HTTP = "http"
+
+
+@dataclass(frozen=True)
+class VerdictRecord:
+    tracking_id: str
+    received_at: float  # unix time
+    recipients: int
+    size: int  # message bytes
+    score: float | None  # None when the message was not scored (model too small, failure)
+    band: str
+    action: str
+    token_hashes: TokenHashes | None
+
+
+@dataclass(frozen=True)
+class FeedbackRecord:
+    kind: FeedbackKind
+    channel: FeedbackChannel
+    received_at: float  # unix time
+    tracking_id: str | None = None
+    digest: bytes | None = None  # message_digest of the reported message, when it came along
+
+
+def pack_hashes(hashes: TokenHashes | None) -> bytes | None:
+    """Little-endian int64 bytes, the same on every platform."""
+    if hashes is None:
+        return None
+    return np.asarray(hashes, dtype="<i8").tobytes()
+
+
+def unpack_hashes(blob: bytes | None) -> TokenHashes | None:
+    if blob is None:
+        return None
+    return np.frombuffer(blob, dtype="<i8").astype(np.int64)
+
+
+def record_verdicts(conn: Connection, records: Sequence[VerdictRecord]) -> None:
+    if not records:
+        return
+    rows = [
+        {
+            "tracking_id": r.tracking_id,
+            "received_at": r.received_at,
+            "recipients": r.recipients,
+            "size": r.size,
+            "score": r.score,
+            "band": r.band,
+            "action": r.action,
+            "token_hashes": pack_hashes(r.token_hashes),
+        }
+        for r in records
+    ]
+    conn.execute(insert(schema.verdict), rows)
+
+
+def find_verdict(conn: Connection, tracking_id: str) -> VerdictRecord | None:
+    v = schema.verdict
+    row = conn.execute(select(v).where(v.c.tracking_id == tracking_id)).mappings().first()
+    if row is None:
+        return None
+    return VerdictRecord(
+        tracking_id=row["tracking_id"],
+        received_at=row["received_at"],
+        recipients=row["recipients"],
+        size=row["size"],
+        score=row["score"],
+        band=row["band"],
+        action=row["action"],
+        token_hashes=unpack_hashes(row["token_hashes"]),
+    )
+
+
+def expire_verdict_tokens(conn: Connection, older_than: float) -> int:
+    v = schema.verdict
+    result = conn.execute(
+        update(v)
+        .where(v.c.received_at < older_than, v.c.token_hashes.is_not(None))
+        .values(token_hashes=None)
+    )
+    return int(result.rowcount)
+
+
+def record_feedback(conn: Connection, entry: FeedbackRecord) -> None:
+    conn.execute(
+        insert(schema.feedback).values(
+            tracking_id=entry.tracking_id,
+            digest=entry.digest,
+            kind=FeedbackKind(entry.kind).value,
+            received_at=entry.received_at,
+            channel=FeedbackChannel(entry.channel).value,
+        )
+    )
