@@ -1,0 +1,51 @@
+"""Helpers shared by the store tests (fixtures live in conftest.py)."""
+
+from __future__ import annotations
+
+import hashlib
+
+import numpy as np
+from mailweir.model.types import Vocabulary
+from mailweir.store import ModelStore
+from sqlalchemy import text
+
+
+def digest_of(name: str) -> bytes:
+    """A 16-byte stand-in for a message digest."""
+    return hashlib.blake2b(name.encode(), digest_size=16).digest()
+
+
+def hashes_of(*tokens: int) -> np.ndarray:
+    return np.unique(np.array(tokens, dtype=np.int64))
+
+
+def dump_model(store: ModelStore) -> dict[str, object]:
+    """Everything that defines the model: token rows, class totals, ledger (minus times)."""
+    with store.engine.connect() as conn:
+        tokens = conn.execute(text("SELECT hash, ham, spam FROM weir_token ORDER BY hash")).all()
+        totals = conn.execute(
+            text("SELECT label, messages FROM weir_class_total ORDER BY label")
+        ).all()
+        ledger = conn.execute(text("SELECT digest, label FROM weir_ledger ORDER BY digest")).all()
+    return {
+        "tokens": [tuple(r) for r in tokens],
+        "totals": [tuple(r) for r in totals],
+        "ledger": [(bytes(d), label) for d, label in ledger],
+    }
+
+
+def empty_model(store: ModelStore) -> None:
+    """Delete all training (keeping the schema) and advance the revision so caches notice."""
+    with store.engine.begin() as conn:
+        conn.execute(text("DELETE FROM weir_token"))
+        conn.execute(text("DELETE FROM weir_ledger"))
+        conn.execute(text("UPDATE weir_class_total SET messages = 0, revision = revision + 2"))
+
+
+def vocabulary_parts(vocabulary: Vocabulary) -> tuple[int, list[int], list[list[int]]]:
+    """Plain values for comparing (the dataclass holds arrays, so == is ambiguous)."""
+    return (
+        vocabulary.size,
+        np.asarray(vocabulary.token_total).tolist(),
+        np.asarray(vocabulary.count_histogram).tolist(),
+    )

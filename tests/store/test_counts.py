@@ -1,0 +1,269 @@
+"""ModelStore unit tests, run on SQLite and (when configured) PostgreSQL."""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+import pytest
+from mailweir.model.types import HAM, SPAM, Vocabulary
+from mailweir.store import ModelStore, StoreUnavailable, TrainResult
+from sqlalchemy import text
+from store_helpers import digest_of, dump_model, hashes_of, vocabulary_parts
+
+
+def token_rows(store: ModelStore) -> dict[int, tuple[int, int]]:
+    return {h: (ham, spam) for h, ham, spam in dump_model(store)["tokens"]}  # type: ignore[misc]
+
+
+def test_lookup_unknown_tokens_are_zero(store: ModelStore) -> None:
+    counts = store.lookup(hashes_of(1, 2, 3))
+    assert counts.shape == (3, 2)
+    assert counts.dtype == np.int64
+    assert not counts.any()
+
+
+def test_lookup_empty_input(store: ModelStore) -> None:
+    assert store.lookup(np.empty(0, dtype=np.int64)).shape == (0, 2)
+
+
+def test_train_counts_presence_and_class_total(store: ModelStore) -> None:
+    assert store.train(hashes_of(1, 2, 3), SPAM, digest=digest_of("a"), source="t") is (
+        TrainResult.TRAINED
+    )
+    assert store.train(hashes_of(2, 3, 4), HAM, digest=digest_of("b"), source="t") is (
+        TrainResult.TRAINED
+    )
+    assert store.lookup(hashes_of(1, 2, 3, 4, 5)).tolist() == [
+        [0, 1],
+        [1, 1],
+        [1, 1],
+        [1, 0],
+        [0, 0],
+    ]
+    assert store.class_count().tolist() == [1, 1]
+
+
+def test_train_duplicate_hashes_count_once(store: ModelStore) -> None:
+    store.train(np.array([7, 7, 7], dtype=np.int64), SPAM, digest=digest_of("a"), source="t")
+    assert token_rows(store) == {7: (0, 1)}
+
+
+def test_train_extreme_int64_hashes(store: ModelStore) -> None:
+    edges = hashes_of(-(2**63), -1, 0, 2**63 - 1)
+    store.train(edges, HAM, digest=digest_of("a"), source="t")
+    assert store.lookup(edges).tolist() == [[1, 0]] * 4
+
+
+def test_train_same_label_again_is_already_known(store: ModelStore) -> None:
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    before = dump_model(store)
+    result = store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    assert result is TrainResult.ALREADY_KNOWN
+    assert dump_model(store) == before
+
+
+def test_train_other_label_moves_counts(store: ModelStore) -> None:
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(2, 3), SPAM, digest=digest_of("b"), source="t")
+    result = store.train(hashes_of(1, 2), HAM, digest=digest_of("a"), source="feedback")
+    assert result is TrainResult.MOVED
+    assert token_rows(store) == {1: (1, 0), 2: (1, 1), 3: (0, 1)}
+    assert store.class_count().tolist() == [1, 1]
+    assert dict(dump_model(store)["ledger"]) == {digest_of("a"): HAM, digest_of("b"): SPAM}
+
+
+def test_train_rejects_bad_label(store: ModelStore) -> None:
+    with pytest.raises(ValueError, match="label"):
+        store.train(hashes_of(1), 2, digest=digest_of("a"), source="t")
+    assert dump_model(store)["ledger"] == []
+
+
+def test_untrain_is_inverse_and_deletes_empty_rows(store: ModelStore) -> None:
+    store.train(hashes_of(1, 2), HAM, digest=digest_of("a"), source="t")
+    before = dump_model(store)
+    store.train(hashes_of(2, 3), SPAM, digest=digest_of("b"), source="t")
+    assert store.untrain(hashes_of(2, 3), digest=digest_of("b")) is TrainResult.UNTRAINED
+    assert dump_model(store) == before
+    assert 3 not in token_rows(store)
+
+
+def test_untrain_unknown_digest_is_not_known(store: ModelStore) -> None:
+    store.train(hashes_of(1), HAM, digest=digest_of("a"), source="t")
+    before = dump_model(store)
+    assert store.untrain(hashes_of(1), digest=digest_of("zzz")) is TrainResult.NOT_KNOWN
+    assert dump_model(store) == before
+
+
+def test_train_many_reports_each_outcome(store: ModelStore) -> None:
+    store.train(hashes_of(1), SPAM, digest=digest_of("old"), source="t")
+    items = [
+        (hashes_of(1, 2), HAM, digest_of("new"), "import"),
+        (hashes_of(1, 2), HAM, digest_of("new"), "import"),  # same message twice
+        (hashes_of(1), SPAM, digest_of("old"), "import"),
+        (hashes_of(1), HAM, digest_of("old"), "import"),
+    ]
+    results = store.train_many(items)
+    assert results == Counter(
+        {
+            TrainResult.TRAINED: 1,
+            TrainResult.ALREADY_KNOWN: 2,
+            TrainResult.MOVED: 1,
+        }
+    )
+    assert token_rows(store) == {1: (2, 0), 2: (1, 0)}
+    assert store.class_count().tolist() == [2, 0]
+
+
+def test_train_many_moves_back_and_forth_in_one_batch(store: ModelStore) -> None:
+    items = [(hashes_of(5), label, digest_of("x"), "t") for label in (SPAM, HAM, SPAM, HAM, HAM)]
+    results = store.train_many(items)
+    assert results[TrainResult.MOVED] == 3
+    assert token_rows(store) == {5: (1, 0)}
+    assert store.class_count().tolist() == [1, 0]
+
+
+def test_cache_updated_in_place_on_train(store: ModelStore) -> None:
+    hashes = hashes_of(10, 11, 12)
+    assert not store.lookup(hashes).any()  # now cached as zeros
+    store.train(hashes_of(10, 11), SPAM, digest=digest_of("a"), source="t")
+    assert store.lookup(hashes).tolist() == [[0, 1], [0, 1], [0, 0]]
+    store.untrain(hashes_of(10, 11), digest=digest_of("a"))
+    assert not store.lookup(hashes).any()
+
+
+def test_other_store_writes_seen_after_staleness(open_store: Callable[..., ModelStore]) -> None:
+    reader = open_store(staleness_seconds=0.0)
+    writer = open_store()
+    hashes = hashes_of(1, 2)
+    reader.lookup(hashes)
+    vocabulary_before = reader.vocabulary()
+    writer.train(hashes, SPAM, digest=digest_of("a"), source="t")
+    assert reader.lookup(hashes).tolist() == [[0, 1], [0, 1]]
+    assert reader.class_count().tolist() == [0, 1]
+    assert vocabulary_before.size == 0
+    assert reader.vocabulary().size == 2
+
+
+def test_other_store_writes_not_seen_before_staleness(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    reader = open_store(staleness_seconds=3600.0)
+    writer = open_store()
+    reader.lookup(hashes_of(1))
+    writer.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
+    # Within the staleness window the cache answers; this is the documented trade-off.
+    assert reader.lookup(hashes_of(1)).tolist() == [[0, 0]]
+
+
+def test_vocabulary_tracks_training(store: ModelStore) -> None:
+    empty = Vocabulary.from_token_counts(np.zeros((0, 2)))
+    assert vocabulary_parts(store.vocabulary()) == vocabulary_parts(empty)
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(2, 3), HAM, digest=digest_of("b"), source="t")
+    store.train(hashes_of(2), SPAM, digest=digest_of("c"), source="t")
+    expected = Vocabulary.from_token_counts(np.array([[0, 1], [1, 2], [1, 0]]))
+    assert vocabulary_parts(store.vocabulary()) == vocabulary_parts(expected)
+    assert store.vocabulary().size == 3
+
+
+def test_prune_removes_rare_unseen_tokens(store: ModelStore) -> None:
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(2), HAM, digest=digest_of("b"), source="t")
+    store.lookup(hashes_of(1, 2))
+    store.vocabulary()
+    with store.engine.begin() as conn:
+        conn.execute(text("UPDATE weir_token SET last_seen = 100"))
+    assert store.prune(max_count=1, unseen_days=60, today=161) == 1
+    assert token_rows(store) == {2: (1, 1)}
+    assert store.lookup(hashes_of(1, 2)).tolist() == [[0, 0], [1, 1]]
+    assert vocabulary_parts(store.vocabulary()) == (1, [1, 1], [[0, 1], [0, 1]])
+
+
+def test_prune_keeps_recent_and_frequent_tokens(store: ModelStore) -> None:
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(2), HAM, digest=digest_of("b"), source="t")
+    with store.engine.begin() as conn:
+        conn.execute(text("UPDATE weir_token SET last_seen = 100"))
+    assert store.prune(max_count=1, unseen_days=60, today=160) == 0  # 60 days: not yet
+    assert store.prune(max_count=1, unseen_days=60, today=10_000) == 1
+    assert store.prune(max_count=2, unseen_days=60, today=10_000) == 1
+    assert token_rows(store) == {}
+
+
+def test_untrain_after_prune_never_goes_negative(store: ModelStore) -> None:
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(2), SPAM, digest=digest_of("b"), source="t")
+    store.prune(max_count=1, unseen_days=0, today=10**6)
+    store.untrain(hashes_of(1, 2), digest=digest_of("a"))
+    assert token_rows(store) == {2: (0, 1)}
+
+
+def test_transaction_rolls_back_training_and_memory(store: ModelStore) -> None:
+    hashes = hashes_of(1, 2)
+    store.lookup(hashes)
+    with pytest.raises(RuntimeError), store.transaction():
+        store.train(hashes, SPAM, digest=digest_of("a"), source="t")
+        raise RuntimeError("abandon")
+    assert dump_model(store)["tokens"] == []
+    assert not store.lookup(hashes).any()
+    assert store.class_count().tolist() == [0, 0]
+
+
+def test_transaction_nested_savepoint_rolls_back_inner_only(store: ModelStore) -> None:
+    with store.transaction():
+        store.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
+        with pytest.raises(RuntimeError), store.transaction():
+            store.train(hashes_of(2), SPAM, digest=digest_of("b"), source="t")
+            raise RuntimeError("inner")
+    assert token_rows(store) == {1: (0, 1)}
+    assert store.lookup(hashes_of(1, 2)).tolist() == [[0, 1], [0, 0]]
+    assert store.class_count().tolist() == [0, 1]
+
+
+def test_meta_round_trip(store: ModelStore) -> None:
+    assert store.get_meta("method") is None
+    store.set_meta("method", "fisher")
+    store.set_meta("method", "bernoulli")
+    assert store.get_meta("method") == "bernoulli"
+    assert store.get_meta("created") is not None
+
+
+def test_stats_counts_rows(store: ModelStore) -> None:
+    store.set_meta("tokenizer", "fp-1")
+    store.train(hashes_of(1, 2, 3), SPAM, digest=digest_of("a"), source="t")
+    stats = store.stats()
+    assert (stats.tokens, stats.ham_messages, stats.spam_messages) == (3, 0, 1)
+    assert (stats.ledger_rows, stats.verdict_rows) == (1, 0)
+    assert stats.database_bytes > 0
+    assert stats.backend in ("sqlite", "postgresql")
+    assert stats.tokenizer == "fp-1"
+    assert stats.method is None
+
+
+def test_open_plain_path_creates_parent(tmp_path: Path) -> None:
+    path = tmp_path / "deep" / "er" / "model.db"
+    store = ModelStore.open(str(path))
+    try:
+        assert path.exists()
+        assert store.stats().backend == "sqlite"
+    finally:
+        store.close()
+
+
+def test_open_missing_file_without_create(tmp_path: Path) -> None:
+    with pytest.raises(StoreUnavailable, match="does not exist"):
+        ModelStore.open(str(tmp_path / "absent.db"), create=False)
+
+
+def test_sqlite_pragmas_applied(tmp_path: Path) -> None:
+    store = ModelStore.open(str(tmp_path / "m.db"))
+    try:
+        with store.engine.connect() as conn:
+            assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
+            assert conn.exec_driver_sql("PRAGMA synchronous").scalar() == 1  # NORMAL
+            assert conn.exec_driver_sql("PRAGMA busy_timeout").scalar() > 0
+    finally:
+        store.close()
