@@ -1,0 +1,386 @@
+"""The SMTP side: aiosmtpd receives, :class:`FilterHandler` judges, acts and relays.
+
+One handler instance serves every connection and keeps no state of its own: the next-hop
+client lives on the session (one per upstream connection), the transaction's relay state on
+the envelope.  The upstream hears 250 for a message only after the next hop accepted it.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+import logging
+import socket
+import ssl
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import TYPE_CHECKING, Any, Protocol
+
+from aiosmtpd.smtp import SMTP, Envelope, Session
+from mailweir.daemon import actions, headers, replies
+from mailweir.daemon.errors import RelayError, reply_for
+from mailweir.daemon.relay import HEADER_ALLOWANCE, MailParameters, NextHopSession, RelayTimeouts
+from mailweir.daemon.replies import Reply
+from mailweir.daemon.settings import Settings, SmtpSettings
+from mailweir.store.verdicts import VerdictRecord
+
+if TYPE_CHECKING:
+    from mailweir.daemon.judge import Judgement
+
+log = logging.getLogger("mailweir.smtp")
+
+# aiosmtpd words these replies itself, without enhanced codes.  With the line limit lifted to
+# the message size limit, a line too long can only be a message too big.
+_OWN_WORDING = {
+    b"552 Error: Too much mail data": str(replies.MESSAGE_TOO_BIG),
+    b"552 Error: message size exceeds fixed maximum message size": str(replies.MESSAGE_TOO_BIG),
+    b"500 Line too long (see RFC5321 4.5.3.1.6)": str(replies.MESSAGE_TOO_BIG),
+}
+
+
+class JudgeLike(Protocol):
+    async def judge(self, raw: bytes) -> Judgement: ...
+
+
+class VerdictSink(Protocol):
+    def add(self, record: Any) -> None: ...
+
+
+class FilterSession(Session):
+    """One upstream connection; ``relay`` is its next-hop client, opened at the first RCPT."""
+
+    relay: NextHopSession | None = None
+
+
+class FilterEnvelope(Envelope):
+    """One transaction; ``relay_failure`` answers every later RCPT once the next hop failed."""
+
+    relay_open: bool = False
+    relay_failure: Reply | None = None
+
+
+class Connections:
+    """The open upstream connections of one server, for the cap and for shutdown."""
+
+    def __init__(self, limit: int) -> None:
+        self.limit = limit
+        self.protocols: set[FilterSMTP] = set()
+
+    @property
+    def active(self) -> int:
+        return len(self.protocols)
+
+    @property
+    def working(self) -> int:
+        """Connections in the middle of a relay (a RCPT or a DATA being passed on)."""
+        return sum(1 for protocol in self.protocols if protocol.working)
+
+    def close_all(self) -> None:
+        for protocol in list(self.protocols):
+            if protocol.transport is not None:
+                protocol.transport.close()
+
+
+class FilterSMTP(SMTP):
+    """aiosmtpd's SMTP with the changes a filter in the mail path needs."""
+
+    def __init__(
+        self,
+        handler: FilterHandler,
+        *,
+        smtp: SmtpSettings,
+        hostname: str,
+        connections: Connections,
+        tls_context: ssl.SSLContext | None = None,
+        loop: asyncio.AbstractEventLoop | None = None,
+    ) -> None:
+        # RFC 5321 section 4.5.3.1.6 asks for 1,000-octet lines, but behind the queue a 500 for
+        # a longer line makes the upstream bounce mail it accepted; any line that fits the
+        # size limit passes (+2 for CRLF, +1 for a transparency dot).
+        self.line_length_limit = smtp.max_message_bytes + 3
+        super().__init__(
+            handler,
+            data_size_limit=smtp.max_message_bytes,
+            enable_SMTPUTF8=True,
+            decode_data=False,
+            hostname=hostname,
+            ident="mailweir",
+            tls_context=tls_context,
+            timeout=smtp.command_timeout,
+            loop=loop,
+        )
+        self._connections = connections
+        self._counted = False
+        self._refused = False
+        self.working = False
+
+    def _create_session(self) -> Session:
+        return FilterSession(self.loop)
+
+    def _create_envelope(self) -> Envelope:
+        return FilterEnvelope()
+
+    def connection_made(self, transport: asyncio.BaseTransport) -> None:
+        if not self._counted:  # the first call; STARTTLS calls again on the same connection
+            if self._connections.active >= self._connections.limit:
+                self._refused = True
+                message = str(replies.TOO_MANY_CONNECTIONS).encode("ascii") + b"\r\n"
+                transport.write(message)  # type: ignore[attr-defined]
+                transport.close()
+                return
+            self._connections.protocols.add(self)
+            self._counted = True
+        super().connection_made(transport)
+
+    def connection_lost(self, error: Exception | None) -> None:
+        if self._refused:
+            asyncio.StreamReaderProtocol.connection_lost(self, error)
+            return
+        if self._counted:
+            self._connections.protocols.discard(self)
+            self._counted = False
+        session = self.session
+        if isinstance(session, FilterSession) and session.relay is not None:
+            session.relay.abort()  # the upstream is gone: its open transaction must not finish
+            session.relay = None
+        super().connection_lost(error)
+
+    def data_received(self, data: bytes) -> None:
+        # An idle timeout rather than a per-command deadline: a large message arriving slowly
+        # keeps the connection alive (RFC 5321 section 4.5.3.2.5 times each data block).
+        if not self.working and self._timeout_handle is not None:
+            self._reset_timeout()
+        super().data_received(data)
+
+    async def push(self, status: str | bytes) -> None:
+        raw = status if isinstance(status, bytes) else status.encode("utf-8", "surrogateescape")
+        await super().push(_OWN_WORDING.get(raw, status))
+
+    @contextmanager
+    def busy(self, seconds: float) -> Iterator[None]:
+        """Keep the upstream connection open while we work for ``seconds`` at most (the idle
+        timer would otherwise close it during a slow relay), then restart the idle timer."""
+        self.working = True
+        self._reset_timeout(max(seconds, self._timeout_duration))
+        try:
+            yield
+        finally:
+            self.working = False
+            if self.transport is not None:
+                self._reset_timeout()
+
+    def forget_transaction(self) -> None:
+        """Drop the envelope after a failed DATA, so the next MAIL starts clean."""
+        self._set_post_data_state()
+
+
+class FilterHandler:
+    """The aiosmtpd handler: relay in lock-step, judge at end of DATA, act, reply."""
+
+    def __init__(
+        self,
+        settings: Settings,
+        judge: JudgeLike,
+        verdict_log: VerdictSink | None = None,
+        *,
+        helo_name: str | None = None,
+    ) -> None:
+        self.settings = settings
+        self.judge = judge
+        self.verdict_log = verdict_log
+        self.helo_name = (
+            helo_name or settings.next_hop.helo_name or settings.smtp.hostname or socket.getfqdn()
+        )
+        self.timeouts = RelayTimeouts.from_settings(settings.next_hop)
+
+    # -- hooks ------------------------------------------------------------------------------
+
+    async def handle_RCPT(
+        self,
+        server: FilterSMTP,
+        session: FilterSession,
+        envelope: FilterEnvelope,
+        address: str,
+        rcpt_options: list[str],
+    ) -> str:
+        if len(envelope.rcpt_tos) >= self.settings.smtp.max_recipients:
+            return str(replies.TOO_MANY_RECIPIENTS)
+        if envelope.relay_failure is not None:
+            return str(envelope.relay_failure)
+        try:
+            with server.busy(self._relay_seconds()):
+                answer = await self._forward_recipient(session, envelope, address)
+        except RelayError as exc:
+            log.warning("next hop: %s", exc)
+            envelope.relay_failure = reply_for(exc)
+            return str(envelope.relay_failure)
+        if answer.is_positive:
+            # A handle_RCPT hook must record the recipient itself (aiosmtpd's contract).
+            envelope.rcpt_tos.append(address)
+            envelope.rcpt_options.extend(rcpt_options)
+        return str(answer)
+
+    async def handle_DATA(
+        self, server: FilterSMTP, session: FilterSession, envelope: FilterEnvelope
+    ) -> str:
+        received_at = time.time()
+        try:
+            with server.busy(self._relay_seconds() + self.settings.smtp.command_timeout):
+                judgement, action, reply = await self._judge_and_relay(session, envelope)
+        except BaseException:
+            if session.relay is not None:
+                session.relay.abort()
+            server.forget_transaction()
+            raise
+        self._record(judgement, action, envelope, received_at)
+        return str(reply)
+
+    async def handle_RSET(
+        self, server: FilterSMTP, session: FilterSession, envelope: FilterEnvelope
+    ) -> str:
+        if session.relay is not None:
+            await session.relay.reset()
+        return str(replies.RESET_OK)
+
+    async def handle_QUIT(
+        self, server: FilterSMTP, session: FilterSession, envelope: FilterEnvelope
+    ) -> str:
+        relay, session.relay = session.relay, None
+        if relay is not None:
+            await relay.close()
+        return str(replies.CLOSING)
+
+    async def handle_exception(self, error: Exception) -> str:
+        # aiosmtpd awaits this hook; its default answers 500 with the exception text.
+        log.error("error in SMTP session", exc_info=error)
+        return str(replies.LOCAL_ERROR)
+
+    # -- steps ------------------------------------------------------------------------------
+
+    async def _forward_recipient(
+        self, session: FilterSession, envelope: FilterEnvelope, address: str
+    ) -> Reply:
+        if session.relay is None:
+            session.relay = NextHopSession(
+                self.settings.next_hop.address, self.helo_name, self.timeouts
+            )
+        if not envelope.relay_open:
+            params = MailParameters.from_options(envelope.mail_options)
+            await session.relay.start(envelope.mail_from or "", params, HEADER_ALLOWANCE)
+            envelope.relay_open = True
+        return await session.relay.add_recipient(address)
+
+    async def _judge_and_relay(
+        self, session: FilterSession, envelope: FilterEnvelope
+    ) -> tuple[Judgement, str, Reply]:
+        """Judge, act, relay; returns the judgement, the action taken for the log (the
+        decided one, or "tempfail" / "refused" when the relay failed) and the reply."""
+        raw = envelope.original_content or b""
+        judgement = await self.judge.judge(headers.remove_own_fields(raw))
+        decision = actions.decide(judgement.band, self.settings.policy)
+        if decision.note:
+            log.info("%s: %s (%s)", judgement.tracking_id, decision.action, decision.note)
+        relay = session.relay
+        if relay is None:  # no RCPT reached the next hop; aiosmtpd normally prevents this
+            return judgement, "tempfail", replies.NEXT_HOP_LOST
+        if decision.action == "reject":
+            await relay.reset()
+            return judgement, "reject", replies.REJECTED_AS_SPAM
+        if decision.action == "tempfail":
+            await relay.reset()
+            return judgement, "tempfail", replies.SCORING_FAILED
+        rerouted = decision.action == "reroute"
+        fields = actions.tag_fields(
+            judgement.band,
+            judgement.score,
+            judgement.tracking_id,
+            judgement.evidence,
+            envelope.rcpt_tos if rerouted else (),
+        )
+        message = actions.render(raw, decision, fields)
+        try:
+            if rerouted and not await self._reroute(relay, envelope, len(message)):
+                return judgement, "tempfail", replies.QUARANTINE_REFUSED
+            answer = await relay.send(message)
+        except RelayError as exc:
+            log.warning("%s: next hop: %s", judgement.tracking_id, exc)
+            reply = reply_for(exc)
+            return judgement, "tempfail" if reply.is_temporary else "refused", reply
+        text = f"{answer.text} (mailweir id {judgement.tracking_id})".strip()
+        return judgement, decision.action, Reply(250, answer.enhanced or "2.0.0", text)
+
+    async def _reroute(self, relay: NextHopSession, envelope: FilterEnvelope, size: int) -> bool:
+        """Replace the next-hop transaction's recipients by the quarantine mailbox."""
+        params = MailParameters.from_options(envelope.mail_options)
+        await relay.start(envelope.mail_from or "", dataclasses.replace(params, size=size))
+        answer = await relay.add_recipient(self.settings.policy.quarantine_mailbox)
+        if not answer.is_positive:
+            log.error("next hop refused the quarantine mailbox: %s", answer)
+            await relay.reset()
+        return answer.is_positive
+
+    def _relay_seconds(self) -> float:
+        t = self.timeouts
+        return t.connect + 4 * t.command + t.data
+
+    def _record(
+        self, judgement: Judgement, action: str, envelope: FilterEnvelope, received_at: float
+    ) -> None:
+        """Hand the verdict to the log; it writes in the background, the reply never waits."""
+        if self.verdict_log is None:
+            return
+        try:
+            record = VerdictRecord(
+                tracking_id=judgement.tracking_id,
+                received_at=received_at,
+                recipients=len(envelope.rcpt_tos),
+                size=len(envelope.original_content or b""),
+                score=judgement.score,
+                band=judgement.band,
+                action=action,
+                token_hashes=judgement.token_hashes,
+            )
+            self.verdict_log.add(record)
+        except Exception:
+            log.exception("%s: verdict not recorded", judgement.tracking_id)
+
+
+def tls_context(smtp: SmtpSettings) -> ssl.SSLContext | None:
+    """The server-side TLS context for STARTTLS, when a certificate and key are configured."""
+    if smtp.tls_cert is None or smtp.tls_key is None:
+        return None
+    context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+    context.load_cert_chain(str(smtp.tls_cert), str(smtp.tls_key))
+    return context
+
+
+async def create_smtp_server(
+    settings: Settings,
+    handler: FilterHandler,
+    loop: asyncio.AbstractEventLoop | None = None,
+    connections: Connections | None = None,
+) -> asyncio.Server:
+    """Bind the SMTP listener on the running loop (no threaded Controller).
+
+    Pass ``connections`` to watch the open connections (``working`` tells when in-flight
+    relays are done during a graceful shutdown; ``close_all`` ends the rest).
+    """
+    loop = loop or asyncio.get_running_loop()
+    smtp = settings.smtp
+    # aiosmtpd would look the name up on every connection; once is enough.
+    hostname = smtp.hostname or await asyncio.to_thread(socket.getfqdn)
+    connections = connections or Connections(smtp.max_connections)
+    context = tls_context(smtp)
+
+    def protocol() -> FilterSMTP:
+        return FilterSMTP(
+            handler,
+            smtp=smtp,
+            hostname=hostname,
+            connections=connections,
+            tls_context=context,
+            loop=loop,
+        )
+
+    return await loop.create_server(protocol, host=smtp.listen.host, port=smtp.listen.port)
