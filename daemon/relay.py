@@ -163,9 +163,11 @@ class NextHopSession:
         self._utf8 = params.smtputf8
         with relay_errors():
             answer = await client.execute_command(
-                b"MAIL", b"FROM:" + _address(sender, self._utf8), *options,
+                b"MAIL",
+                b"FROM:" + _address(sender, self._utf8),
+                *options,
                 timeout=self.timeouts.command,
-            )  # fmt: skip
+            )
         if answer.code != 250:
             raise error_for_answer(answer.code, answer.message)
         self._in_transaction = True
