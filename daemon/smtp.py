@@ -236,6 +236,21 @@ class FilterHandler:
         self._record(judgement, action, envelope, received_at)
         return str(reply)
 
+    async def handle_EHLO(
+        self,
+        server: FilterSMTP,
+        session: FilterSession,
+        envelope: FilterEnvelope,
+        hostname: str,
+        responses: list[str],
+    ) -> list[str]:
+        # aiosmtpd reads and answers commands strictly in order, which is all RFC 2920 asks
+        # of a server, but does not say so; PIPELINING lets the upstream batch its commands.
+        # AUTH is dropped: no authentication is configured, aiosmtpd would offer it after TLS.
+        session.host_name = hostname
+        offered = [line for line in responses[:-1] if not line.startswith("250-AUTH")]
+        return [*offered, "250-PIPELINING", responses[-1]]
+
     async def handle_RSET(
         self, server: FilterSMTP, session: FilterSession, envelope: FilterEnvelope
     ) -> str:
