@@ -75,22 +75,29 @@ class CountCache:
             return
         hashes, first = np.unique(np.asarray(hashes, dtype=np.int64), return_index=True)
         counts = np.asarray(counts, dtype=np.int64)[first]
+        if len(self) + len(hashes) > self.max_tokens:
+            fresh = np.ones(len(hashes), dtype=np.bool_)
+            for run in (self._main, self._recent):
+                fresh &= run.find(hashes) < 0
+            if len(self) + int(fresh.sum()) > self.max_tokens:
+                self.clear()
+                self._recent.insert(hashes[: self.max_tokens], counts[: self.max_tokens])
+                return
         fresh = np.ones(len(hashes), dtype=np.bool_)
         for run in (self._main, self._recent):
             idx = run.find(hashes)
             hit = idx >= 0
             run.counts[idx[hit]] = counts[hit]
             fresh &= ~hit
-        hashes, counts = hashes[fresh], counts[fresh]
-        if len(self) + len(hashes) > self.max_tokens:
-            self.clear()
-            hashes, counts = hashes[: self.max_tokens], counts[: self.max_tokens]
-        self._recent.insert(hashes, counts)
+        self._recent.insert(hashes[fresh], counts[fresh])
         if len(self._recent.keys) > max(_MIN_RECENT, len(self._main.keys) // 8):
             self._merge()
 
     def add(self, hashes: TokenHashes, delta: TokenCounts) -> None:
-        """Add *delta* to entries that are cached (others stay uncached), clamping at zero."""
+        """Add *delta* to cached entries (others stay uncached), clamping at zero.
+
+        *hashes* should be unique: a repeated hash gets its delta once, not once per repeat.
+        """
         hashes = np.asarray(hashes, dtype=np.int64)
         delta = np.asarray(delta, dtype=np.int64)
         for run in (self._main, self._recent):

@@ -1,0 +1,73 @@
+"""CountCache against a plain dict as the oracle."""
+
+from __future__ import annotations
+
+import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from mailweir.store.cache import CountCache
+
+key = st.integers(min_value=-(2**63), max_value=2**63 - 1)
+small_key = st.integers(min_value=-50, max_value=50)
+operation = st.tuples(
+    st.sampled_from(["put", "add", "get"]),
+    st.lists(st.one_of(small_key, key), max_size=40),
+    st.integers(min_value=-3, max_value=3),
+)
+
+
+@settings(max_examples=100, deadline=None)
+@given(ops=st.lists(operation, max_size=30), limit=st.integers(min_value=0, max_value=80))
+def test_cache_matches_dict_oracle(ops: list[tuple[str, list[int], int]], limit: int) -> None:
+    cache = CountCache(limit)
+    oracle: dict[int, tuple[int, int]] = {}
+    for op, keys, value in ops:
+        hashes = np.array(keys, dtype=np.int64)
+        if op == "put":
+            counts = np.column_stack([np.abs(hashes) % 7, np.full(len(hashes), abs(value))])
+            cache.put(hashes, counts)
+            first: dict[int, tuple[int, int]] = {}
+            for k, c in zip(keys, counts.tolist(), strict=True):
+                first.setdefault(k, tuple(c))  # the first of repeated keys wins
+            if len(oracle) + len(first.keys() - oracle.keys()) > limit:
+                # Overflow empties the cache, then keeps the lowest keys of this put.
+                oracle = {k: first[k] for k in sorted(first)[:limit]}
+            else:
+                oracle.update(first)
+        elif op == "add":
+            delta = np.full((len(hashes), 2), value)
+            cache.add(hashes, delta)
+            for k in set(keys):  # a repeated key gets its delta once
+                if k in oracle:
+                    oracle[k] = tuple(max(0, c + value) for c in oracle[k])
+        counts, found = cache.get(hashes)
+        assert found.tolist() == [k in oracle for k in keys]
+        assert counts.tolist() == [list(oracle.get(k, (0, 0))) for k in keys]
+        assert len(cache) <= max(limit, 0)
+
+
+def test_cache_many_puts_merge_runs_and_stay_exact() -> None:
+    rng = np.random.default_rng(7)
+    keys = np.unique(rng.integers(-(2**63), 2**63 - 1, 30_000, dtype=np.int64))
+    rng.shuffle(keys)
+    cache = CountCache(1_000_000)
+    for start in range(0, len(keys), 300):
+        part = keys[start : start + 300]
+        cache.put(part, np.column_stack([part % 5, part % 3]))
+    assert len(cache) == len(keys)
+    counts, found = cache.get(keys)
+    assert found.all()
+    assert counts.tolist() == np.column_stack([keys % 5, keys % 3]).tolist()
+    cache.add(keys[:10], np.ones((10, 2), dtype=np.int64))
+    assert (
+        cache.get(keys[:10])[0].tolist()
+        == (np.column_stack([keys[:10] % 5, keys[:10] % 3]) + 1).tolist()
+    )
+
+
+def test_cache_overflow_empties_then_refills() -> None:
+    cache = CountCache(4)
+    cache.put(np.array([1, 2, 3], dtype=np.int64), np.ones((3, 2), dtype=np.int64))
+    cache.put(np.array([4, 5], dtype=np.int64), np.zeros((2, 2), dtype=np.int64))
+    assert len(cache) == 2
+    assert cache.get(np.array([1, 4, 5], dtype=np.int64))[1].tolist() == [False, True, True]
