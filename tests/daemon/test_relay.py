@@ -1,0 +1,128 @@
+"""The next-hop client on its own: error mapping, parameters, connection reuse."""
+
+from __future__ import annotations
+
+import pytest
+from aiosmtplib import errors as smtp_errors
+from mailweir.daemon import replies
+from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, reply_for
+from mailweir.daemon.relay import (
+    MailParameters,
+    NextHopSession,
+    RelayTimeouts,
+    error_for_answer,
+    relay_errors,
+)
+from mailweir.daemon.settings import HostPort, NextHopSettings
+from smtp_helpers import LOCAL, free_port, silent_server
+
+pytestmark = pytest.mark.timeout(30)
+
+FAST = RelayTimeouts(connect=1.0, command=1.0, data=1.0)
+
+
+def client(address: HostPort) -> NextHopSession:
+    return NextHopSession(address, "filter.harbourlane.example", FAST)
+
+
+@pytest.mark.parametrize(
+    ("error", "reply"),
+    [
+        (smtp_errors.SMTPConnectError("refused"), replies.NEXT_HOP_DOWN),
+        (smtp_errors.SMTPConnectTimeoutError("slow"), replies.NEXT_HOP_DOWN),
+        (smtp_errors.SMTPConnectResponseError(554, "go away"), replies.NEXT_HOP_DOWN),
+        (smtp_errors.SMTPReadTimeoutError("slow"), replies.NEXT_HOP_TIMEOUT),
+        (smtp_errors.SMTPServerDisconnected("gone"), replies.NEXT_HOP_LOST),
+        (ConnectionResetError("reset"), replies.NEXT_HOP_LOST),
+        (ConnectionRefusedError("refused"), replies.NEXT_HOP_DOWN),
+        (TimeoutError(), replies.NEXT_HOP_TIMEOUT),
+    ],
+)
+def test_relay_errors_maps_transport_failures_to_4xx(error, reply):
+    with pytest.raises(NextHopUnavailable) as caught, relay_errors():
+        raise error
+    assert reply_for(caught.value) is reply
+    assert caught.value.__cause__ is error
+
+
+def test_relay_errors_keeps_a_5xx_answer_permanent():
+    with pytest.raises(NextHopRejected) as caught, relay_errors():
+        raise smtp_errors.SMTPDataError(554, "5.7.1 Refused by local policy")
+    assert reply_for(caught.value) == replies.Reply(554, "5.7.1", "Refused by local policy")
+
+
+def test_error_for_answer_passes_4xx_and_turns_421_into_451():
+    assert error_for_answer(452, "4.3.1 Full").reply == replies.Reply(452, "4.3.1", "Full")
+    assert error_for_answer(421, "Closing").reply == replies.Reply(451, "4.0.0", "Closing")
+
+
+def test_from_next_hop_ignores_enhanced_code_of_the_wrong_class():
+    # RFC 3463 section 2: the class digit must match the reply's first digit.
+    assert replies.from_next_hop(550, "4.1.1 odd") == replies.Reply(550, "5.0.0", "4.1.1 odd")
+
+
+def test_reply_renders_multiline_text_as_continuation_lines():
+    reply = replies.Reply(550, "5.7.1", "first line\nsecond\x00line")
+    assert str(reply) == "550-5.7.1 first line\r\n550 5.7.1 second line"
+
+
+@pytest.mark.parametrize(
+    ("options", "expected"),
+    [
+        ([], MailParameters()),
+        (["SIZE=1234", "BODY=8BITMIME", "SMTPUTF8"], MailParameters(1234, True, True)),
+        (["BODY=7BIT", "SIZE=x"], MailParameters()),
+    ],
+)
+def test_mail_parameters_from_aiosmtpd_options(options, expected):
+    assert MailParameters.from_options(options) == expected
+
+
+def test_relay_timeouts_from_settings():
+    settings = NextHopSettings(connect_timeout=3, command_timeout=4, data_timeout=5)
+    assert RelayTimeouts.from_settings(settings) == RelayTimeouts(3, 4, 5)
+
+
+async def test_next_hop_session_refused_connection_raises_unavailable():
+    session = client(HostPort(LOCAL, free_port()))
+    with pytest.raises(NextHopUnavailable) as caught:
+        await session.start("a@mail.example", MailParameters())
+    assert caught.value.reply is replies.NEXT_HOP_DOWN
+    assert not session.connected
+
+
+async def test_next_hop_session_silent_server_times_out_connecting():
+    async with silent_server() as address:
+        session = client(address)
+        with pytest.raises(NextHopUnavailable) as caught:
+            await session.start("a@mail.example", MailParameters())
+    assert caught.value.reply is replies.NEXT_HOP_DOWN
+
+
+async def test_next_hop_session_one_connection_for_several_transactions(next_hop):
+    session = client(next_hop.address)
+    for number in range(3):
+        await session.start("a@mail.example", MailParameters())
+        assert (await session.add_recipient("b@harbourlane.example")).code == 250
+        assert (await session.send(b"Subject: %d\r\n\r\nx\r\n" % number)).code == 250
+    await session.close()
+    assert (next_hop.connections, len(next_hop.deliveries)) == (1, 3)
+
+
+async def test_next_hop_session_resets_an_open_transaction_before_the_next(next_hop):
+    session = client(next_hop.address)
+    await session.start("a@mail.example", MailParameters())
+    await session.add_recipient("b@harbourlane.example")
+    await session.start("c@mail.example", MailParameters())
+    await session.add_recipient("d@harbourlane.example")
+    await session.send(b"Subject: x\r\n\r\nx\r\n")
+    await session.close()
+    assert next_hop.rsets == 1
+    assert [(d.mail_from, d.rcpt_tos) for d in next_hop.deliveries] == [
+        ("c@mail.example", ["d@harbourlane.example"])
+    ]
+
+
+async def test_next_hop_session_without_transaction_cannot_send():
+    with pytest.raises(NextHopUnavailable):
+        await client(HostPort(LOCAL, free_port())).send(b"x\r\n")
