@@ -1,0 +1,386 @@
+"""A real Postfix in front of mailweir, configured with deploy/postfix/after-queue exactly.
+
+The test builds a private Postfix instance in a temporary directory (its own configuration,
+queue and data directories, every listener on 127.0.0.1, mail for harbourlane.example
+delivered by Postfix's virtual agent into Maildirs under the same directory, everything else
+refused), adds the after-queue snippets with only the port numbers changed, starts mailweir with
+``mailweir run --config deploy/postfix/after-queue/mailweir.toml`` and submits mail to Postfix
+with smtplib.  Oracle: Postfix's own delivery into the Maildir (what a user's mail client
+would read), parsed with the standard ``email`` package.
+
+Postfix's master daemon must start as root (it drops privileges per service), and is run in
+the foreground (``postfix start-fg``, ``maillog_file = /dev/stdout``): on these machines the
+backgrounding ``postfix start`` was seen to fail silently.
+"""
+
+from __future__ import annotations
+
+import email
+import email.policy
+import os
+import pwd
+import re
+import shutil
+import signal
+import smtplib
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+
+pytestmark = pytest.mark.slow
+
+ROOT = Path(__file__).resolve().parents[2]
+SNIPPETS = ROOT / "deploy" / "postfix" / "after-queue"
+POSTFIX = shutil.which("postfix") or "/usr/sbin/postfix"
+SNIPPET_LISTEN_PORT, SNIPPET_NEXT_HOP_PORT = 7125, 7126  # as written in the snippets
+QUARANTINE = "quarantine@harbourlane.example"
+WAIT = 60.0  # seconds: upper bound for any one step (start, delivery); never a timing claim
+
+# Test-only Postfix settings: a private instance that delivers harbourlane.example to Maildirs
+# in the temporary directory and sends nothing anywhere else.
+BASE_MAIN_CF = """\
+compatibility_level = 3.6
+queue_directory = {root}/queue
+data_directory = {root}/data
+command_directory = /usr/sbin
+daemon_directory = /usr/lib/postfix/sbin
+meta_directory = /etc/postfix
+shlib_directory = /usr/lib/postfix
+mail_owner = postfix
+setgid_group = postdrop
+maillog_file = /dev/stdout
+myhostname = mx.harbourlane.example
+mydomain = harbourlane.example
+mydestination =
+inet_interfaces = loopback-only
+inet_protocols = ipv4
+mynetworks = 127.0.0.0/8
+smtputf8_enable = yes
+alias_maps =
+alias_database =
+default_transport = error:the test instance delivers no mail elsewhere
+relay_transport = error:the test instance delivers no mail elsewhere
+virtual_mailbox_domains = harbourlane.example
+virtual_mailbox_base = {root}/mail
+virtual_mailbox_maps = texthash:{root}/conf/mailboxes
+virtual_uid_maps = static:{uid}
+virtual_gid_maps = static:{gid}
+virtual_minimum_uid = 1
+"""
+# Test-only master.cf: the public smtpd on a free port, and the services Postfix needs, all
+# outside a chroot (the instance directory holds none of the files a chroot would need).
+BASE_MASTER_CF = """\
+127.0.0.1:{front} inet n - n - - smtpd
+pickup    unix  n       -       n       60      1       pickup
+cleanup   unix  n       -       n       -       0       cleanup
+qmgr      unix  n       -       n       300     1       qmgr
+rewrite   unix  -       -       n       -       -       trivial-rewrite
+bounce    unix  -       -       n       -       0       bounce
+defer     unix  -       -       n       -       0       bounce
+trace     unix  -       -       n       -       0       bounce
+verify    unix  -       -       n       -       1       verify
+flush     unix  n       -       n       1000?   0       flush
+proxymap  unix  -       -       n       -       -       proxymap
+smtp      unix  -       -       n       -       -       smtp
+showq     unix  n       -       n       -       -       showq
+error     unix  -       -       n       -       -       error
+retry     unix  -       -       n       -       -       error
+discard   unix  -       -       n       -       -       discard
+virtual   unix  -       n       n       -       -       virtual
+anvil     unix  -       -       n       -       1       anvil
+scache    unix  -       -       n       -       1       scache
+postlog   unix-dgram n  -       n       -       1       postlogd
+"""
+MAILBOXES = ("tobias", "priya", "quarantine")
+
+
+# -- messages we write ----------------------------------------------------------------------
+
+HAM_LINES = [
+    "Dr. Okafor asked me to confirm the rota for the Saturday surgery.",
+    "The vaccine order from vetsupply arrives Tuesday; please check the fridge space.",
+    "Mrs Hartley called about Biscuit's booster, can we offer Thursday afternoon?",
+    "Reminder: the practice meeting is moved to the staff room at 8:15.",
+    "Lab results for Pepper came back normal, please call the owner.",
+    "Tobias, the invoice from the linen service is filed under March.",
+]
+SPAM_LINES = [
+    "URGENT: your account is suspended, verify your password now at the link below.",
+    "Congratulations WINNER, claim your cash prize today, reply with bank details.",
+    "Guaranteed investment returns of 40% per month, act now, limited offer.",
+    "Your parcel is held at customs, pay the release fee by card immediately.",
+    "Final notice: overdue invoice attached, wire transfer required within 24 hours.",
+    "Cheap pharmacy pills, no prescription needed, discreet worldwide shipping.",
+]
+
+
+def _message(sender: str, to: str, subject: str, body: str) -> bytes:
+    return (
+        f"From: {sender}\r\nTo: {to}\r\nSubject: {subject}\r\n"
+        f"Message-ID: <{abs(hash((subject, body)))}@mail.example>\r\n"
+        f"Date: Tue, 01 Dec 2026 09:00:00 +0000\r\n\r\n{body}\r\n"
+    ).encode()
+
+
+def _corpus(folder: Path, lines: list[str], sender: str, n: int) -> Path:
+    folder.mkdir(parents=True)
+    for i in range(n):
+        picked = [lines[(i + k * (1 + i // len(lines))) % len(lines)] for k in range(3)]
+        body = "\r\n".join([*picked, f"Reference HL-{i:04d}"])  # no two messages alike
+        subject = lines[i % len(lines)][:40]
+        (folder / f"{i:03d}.eml").write_bytes(
+            _message(sender, "tobias@harbourlane.example", subject, body)
+        )
+    return folder
+
+
+# -- processes ------------------------------------------------------------------------------
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+def _wait_for(what: str, ready: Callable[[], bool], diagnostics: Callable[[], str]) -> None:
+    deadline = time.monotonic() + WAIT
+    while time.monotonic() < deadline:
+        if ready():
+            return
+        time.sleep(0.2)
+    pytest.fail(f"{what} did not happen within {WAIT:.0f} s\n{diagnostics()}")
+
+
+def _listening(port: int) -> bool:
+    try:
+        with socket.create_connection(("127.0.0.1", port), timeout=1):
+            return True
+    except OSError:
+        return False
+
+
+def _stop(process: subprocess.Popen[bytes], sig: int = signal.SIGTERM) -> None:
+    if process.poll() is None:
+        process.send_signal(sig)
+        try:
+            process.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait(timeout=30)
+
+
+@dataclass
+class Instance:
+    root: Path
+    front: int  # Postfix's public smtpd
+    filter: int  # mailweir
+    back: int  # Postfix's reinjection listener
+    postfix_log: Path
+    mailweir_log: Path
+    db: Path
+
+    def logs(self) -> str:
+        parts = []
+        for name, path in (("postfix", self.postfix_log), ("mailweir", self.mailweir_log)):
+            text = path.read_text(errors="replace") if path.exists() else "(none)"
+            parts.append(f"--- {name} log (last 4000 characters) ---\n{text[-4000:]}")
+        return "\n".join(parts)
+
+    def delivered(self, mailbox: str) -> list[Path]:
+        new = self.root / "mail" / mailbox / "new"
+        return sorted(new.iterdir()) if new.is_dir() else []
+
+
+def _skip_unless_postfix_can_run() -> None:
+    if not Path(POSTFIX).exists():
+        pytest.skip(f"Postfix is not installed ({POSTFIX} missing; apt-get install postfix)")
+    if os.geteuid() != 0:
+        pytest.skip(
+            f"Postfix's master daemon must be started as root; the tests run as uid {os.geteuid()}"
+        )
+    try:
+        pwd.getpwnam("postfix")
+    except KeyError:
+        pytest.skip("the postfix user does not exist (the postfix package is incomplete)")
+
+
+def _write_postfix_config(root: Path, ports: dict[str, int]) -> None:
+    def ours(text: str) -> str:  # the snippets exactly, with the test's free ports
+        for snippet_port, port in (
+            (SNIPPET_LISTEN_PORT, ports["filter"]),
+            (SNIPPET_NEXT_HOP_PORT, ports["back"]),
+        ):
+            text = re.sub(rf"(127\.0\.0\.1\]?):{snippet_port}\b", rf"\g<1>:{port}", text)
+        assert not re.search(rf":({SNIPPET_LISTEN_PORT}|{SNIPPET_NEXT_HOP_PORT})\b", text)
+        return text
+
+    nobody = pwd.getpwnam("nobody")
+    conf = root / "conf"
+    conf.mkdir()
+    main_cf = BASE_MAIN_CF.format(root=root, uid=nobody.pw_uid, gid=nobody.pw_gid)
+    (conf / "main.cf").write_text(main_cf + "\n" + ours((SNIPPETS / "main.cf").read_text()))
+    master_cf = BASE_MASTER_CF.format(front=ports["front"])
+    (conf / "master.cf").write_text(master_cf + "\n" + ours((SNIPPETS / "master.cf").read_text()))
+    (conf / "mailboxes").write_text(
+        "".join(f"{name}@harbourlane.example {name}/\n" for name in MAILBOXES)
+    )
+    for name in ("queue", "data", "mail"):
+        (root / name).mkdir()
+    shutil.chown(root / "data", "postfix")
+    shutil.chown(root / "mail", nobody.pw_uid, nobody.pw_gid)
+
+
+def _train(db: Path, scratch: Path) -> None:
+    from mailweir.daemon.cli import main
+
+    ham = _corpus(scratch / "ham", HAM_LINES, "staff@harbourlane.example", 24)
+    spam = _corpus(scratch / "spam", SPAM_LINES, "offers@prize-centre.invalid", 24)
+    assert main(["train", "--ham", str(ham), "--db", str(db), "--json"]) == 0
+    assert main(["train", "--spam", str(spam), "--db", str(db), "--json"]) == 0
+
+
+@pytest.fixture
+def instance(capsys: pytest.CaptureFixture[str]) -> Iterator[Instance]:
+    _skip_unless_postfix_can_run()
+    # Under /tmp, traversable by the postfix and nobody users (pytest's tmp_path is not).
+    root = Path(tempfile.mkdtemp(prefix="mailweir-postfix-", dir="/tmp"))
+    root.chmod(0o755)
+    ports = {name: _free_port() for name in ("front", "filter", "back")}
+    inst = Instance(
+        root,
+        ports["front"],
+        ports["filter"],
+        ports["back"],
+        root / "postfix.log",
+        root / "mailweir.log",
+        root / "state" / "model.sqlite3",
+    )
+    _write_postfix_config(root, ports)
+    conf = str(root / "conf")
+    check = subprocess.run(
+        [POSTFIX, "-c", conf, "check"], capture_output=True, text=True, timeout=WAIT
+    )
+    if check.returncode != 0:
+        pytest.skip(f"postfix check fails for a private instance: {check.stderr.strip()}")
+    (root / "state").mkdir()
+    _train(inst.db, root / "corpus")
+    capsys.readouterr()
+
+    processes: list[subprocess.Popen[bytes]] = []
+    try:
+        with inst.postfix_log.open("wb") as out:
+            postfix = subprocess.Popen(
+                [POSTFIX, "-c", conf, "start-fg"],
+                stdout=out,
+                stderr=subprocess.STDOUT,
+                start_new_session=True,
+            )
+        processes.append(postfix)
+        _wait_for(
+            "Postfix listening",
+            lambda: _listening(inst.front) or postfix.poll() is not None,
+            inst.logs,
+        )
+        if postfix.poll() is not None:
+            pytest.skip(f"postfix start-fg exited with {postfix.returncode}:\n{inst.logs()}")
+        processes.append(_start_mailweir(inst))
+        _wait_for("mailweir listening", lambda: _listening(inst.filter), inst.logs)
+        yield inst
+    finally:
+        for process in reversed(processes[1:]):
+            _stop(process)
+        if processes:
+            subprocess.run([POSTFIX, "-c", conf, "stop"], capture_output=True, timeout=WAIT)
+            _stop(processes[0])
+        shutil.rmtree(root, ignore_errors=True)
+
+
+def _start_mailweir(inst: Instance) -> subprocess.Popen[bytes]:
+    env = {k: v for k, v in os.environ.items() if not k.startswith("MAILWEIR_")}
+    env.update(
+        {  # test-only policy on top of the snippet's mailweir.toml
+            "MAILWEIR_POLICY_MODE": "enforce",
+            "MAILWEIR_POLICY_HAM_ACTION": "tag",
+            "MAILWEIR_POLICY_SPAM_ACTION": "reroute",
+            "MAILWEIR_POLICY_QUARANTINE_MAILBOX": QUARANTINE,
+            "MAILWEIR_POLICY_MIN_TRAINED": "10",
+            "MAILWEIR_SMTP_HOSTNAME": "filter.harbourlane.example",
+        }
+    )
+    command = [
+        sys.executable,
+        "-m",
+        "mailweir.daemon.cli",
+        "run",
+        "--config",
+        str(SNIPPETS / "mailweir.toml"),
+        "--listen",
+        f"127.0.0.1:{inst.filter}",
+        "--next-hop",
+        f"127.0.0.1:{inst.back}",
+        "--db",
+        str(inst.db),
+        "--http",
+        "127.0.0.1:0",
+        "--state-dir",
+        str(inst.root / "state"),
+    ]
+    with inst.mailweir_log.open("wb") as out:
+        return subprocess.Popen(command, stdout=out, stderr=subprocess.STDOUT, env=env)
+
+
+def _submit(inst: Instance, rcpt: str, raw: bytes) -> None:
+    with smtplib.SMTP("127.0.0.1", inst.front, timeout=WAIT) as client:
+        refused = client.sendmail("jo.hartley@mail.example", [rcpt], raw)
+    assert refused == {}
+
+
+def _read(path: Path) -> email.message.EmailMessage:
+    message = email.message_from_bytes(path.read_bytes(), policy=email.policy.default)
+    assert isinstance(message, email.message.EmailMessage)
+    return message
+
+
+# -- the tests ------------------------------------------------------------------------------
+
+
+def test_postfix_after_queue_delivers_ham_tagged_and_intact(instance: Instance) -> None:
+    long_line = "Weights for the dog-food order: " + "12.5kg, " * 200  # > 998 characters
+    body = f"{HAM_LINES[1]}\r\n{HAM_LINES[4]}\r\n{long_line}"
+    raw = _message("jo.hartley@mail.example", "tobias@harbourlane.example", "Fridge space", body)
+    _submit(instance, "tobias@harbourlane.example", raw)
+    _wait_for("delivery to tobias", lambda: bool(instance.delivered("tobias")), instance.logs)
+    (path,) = instance.delivered("tobias")
+    message = _read(path)
+    assert message["Mailweir-Verdict"] is not None, instance.logs()
+    assert message["Mailweir-Verdict"].startswith("ham"), message["Mailweir-Verdict"]
+    assert message["Mailweir-Id"]
+    assert message["Mailweir-Score"]
+    # Postfix's Maildir copy has LF line ends; the body is otherwise byte for byte what we
+    # sent, the long line unbroken (smtp_line_length_limit=0 in the snippet).
+    delivered_body = path.read_bytes().split(b"\n\n", 1)[1]
+    assert delivered_body == (body + "\r\n").replace("\r\n", "\n").encode()
+    assert instance.delivered("quarantine") == []
+
+
+def test_postfix_after_queue_reroutes_spam_to_quarantine(instance: Instance) -> None:
+    body = "\r\n".join(SPAM_LINES[:4])
+    raw = _message("offers@prize-centre.invalid", "priya@harbourlane.example", "WINNER", body)
+    _submit(instance, "priya@harbourlane.example", raw)
+    _wait_for(
+        "delivery to quarantine", lambda: bool(instance.delivered("quarantine")), instance.logs
+    )
+    (path,) = instance.delivered("quarantine")
+    message = _read(path)
+    assert message["Mailweir-Verdict"].startswith("spam"), message["Mailweir-Verdict"]
+    assert "priya@harbourlane.example" in message["Mailweir-Original-Recipients"]
+    assert message["Subject"] == "WINNER"
+    assert instance.delivered("priya") == []
