@@ -103,15 +103,17 @@ class BernoulliNB(NaiveBayes):
         vocabulary: Vocabulary,
         frequency: npt.ArrayLike | None = None,
     ) -> FloatArray:
+        """Shape (2,): log P(c) + log P(d|c) over the whole vocabulary; see the class docs."""
         counts, classes = check_counts(token_count, class_count)
         require_trained(classes, self.name)
         present = (check_frequency(frequency, len(counts)) > 0) & known_tokens(counts)
         log_present, log_absent = self._log_probabilities(counts[present], classes)
-        return (
+        jll: FloatArray = (
             class_log_prior(classes)
             + self._absent_log_likelihood(classes, vocabulary)
             + (log_present - log_absent).sum(axis=0)
         )
+        return jll
 
     def token_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary

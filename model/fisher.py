@@ -19,12 +19,17 @@ from mailweir.model.nb_base import (
 from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, Vocabulary
 
 
-@lru_cache(maxsize=4)
-def _log_factorials(count: int) -> FloatArray:
-    """Shape (count,): log(i!) for i = 0 .. count-1, each from lgamma (no summed rounding)."""
-    table = np.array([math.lgamma(i + 1.0) for i in range(count)])
+@lru_cache(maxsize=8)
+def _log_factorial_table(size: int) -> FloatArray:
+    """Shape (size,): log(i!) for i < size, each from lgamma (no summed rounding)."""
+    table = np.array([math.lgamma(i + 1.0) for i in range(size)])
     table.flags.writeable = False
     return table
+
+
+def _log_factorials(count: int) -> FloatArray:
+    """Shape (count,): log(i!) for i < count, from a cached table sized to a power of two."""
+    return _log_factorial_table(max(64, 1 << (count - 1).bit_length()))[:count]
 
 
 def chi2_log_survival_even(statistic: float, dof: int) -> float:
@@ -145,7 +150,8 @@ class RobinsonFisher(NaiveBayes):
         # p(w) is undefined for unknown tokens, whose n = 0 makes f = x regardless.
         p = np.divide(rate[:, SPAM], rate_total, out=np.zeros(len(counts)), where=rate_total > 0)
         n = counts.sum(axis=1)
-        return (self.strength * self.assumed + n * p) / (self.strength + n)
+        f: FloatArray = (self.strength * self.assumed + n * p) / (self.strength + n)
+        return f
 
     def _selected(self, f: FloatArray, present: npt.NDArray[np.bool_]) -> npt.NDArray[np.intp]:
         """Indices of the tokens used, most extreme first."""
@@ -156,7 +162,10 @@ class RobinsonFisher(NaiveBayes):
         return chosen if self.max_tokens is None else chosen[: self.max_tokens]
 
     def indicator(self, f: FloatArray) -> float:
-        """Robinson's I = (1 + H - S) / 2 for the given token probabilities, shape (n,)."""
+        """Robinson's I = (1 + H - S) / 2 for token probabilities f in (0, 1), shape (n,)."""
+        f = np.asarray(f, dtype=np.float64)
+        if not np.all((f > 0) & (f < 1)):
+            raise ValueError("fisher: token probabilities must lie strictly between 0 and 1")
         if len(f) == 0:
             return 0.5
         dof = 2 * len(f)

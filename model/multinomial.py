@@ -70,7 +70,8 @@ class MultinomialBooleanNB(NaiveBayes):
         if len(counts) and vocabulary.size < 1:
             raise ValueError("multinomial: known tokens but an empty vocabulary")
         log_denominator = np.log(token_total + self.alpha * vocabulary.size)
-        return np.log(counts + self.alpha) - log_denominator
+        log_prob: FloatArray = np.log(counts + self.alpha) - log_denominator
+        return log_prob
 
     def joint_log_likelihood(
         self,
@@ -79,6 +80,7 @@ class MultinomialBooleanNB(NaiveBayes):
         vocabulary: Vocabulary,
         frequency: npt.ArrayLike | None = None,
     ) -> FloatArray:
+        """Shape (2,): log P(c) + sum_t f_t log p(t|c) over the message's known tokens."""
         counts, classes = check_counts(token_count, class_count)
         require_trained(classes, self.name)
         weights = check_frequency(frequency, len(counts))

@@ -50,4 +50,4 @@ def make_scorer(name: str, **params: float) -> NaiveBayes:
             f"scoring method {name!r} has no parameter {', '.join(map(repr, unknown))}; "
             f"allowed: {', '.join(allowed) or '(none)'}"
         )
-    return method(**params)  # type: ignore[call-arg]
+    return method(**params)

@@ -73,6 +73,9 @@ def check_counts(
     """Validate one message's counts; return them as int64 arrays of shape (n, 2) and (2,)."""
     counts = np.asarray(token_count)
     classes = np.asarray(class_count)
+    for label, array in (("token_count", counts), ("class_count", classes)):
+        if array.size and not np.issubdtype(array.dtype, np.integer):
+            raise ValueError(f"{label} must hold integers, got dtype {array.dtype}")
     if counts.ndim != 2 or counts.shape[1] != 2:
         raise ValueError(f"token_count must have shape (n, 2), got {counts.shape}")
     if classes.shape != (2,):
@@ -108,7 +111,8 @@ def require_trained(class_count: npt.NDArray[np.int64], method: str) -> None:
 def class_log_prior(class_count: npt.NDArray[np.int64]) -> FloatArray:
     """Shape (2,): log P(c) estimated from message counts, as scikit-learn's fit_prior."""
     counts = class_count.astype(np.float64)
-    return np.log(counts) - np.log(counts.sum())
+    prior: FloatArray = np.log(counts) - np.log(counts.sum())
+    return prior
 
 
 def known_tokens(token_count: npt.NDArray[np.int64]) -> npt.NDArray[np.bool_]:

@@ -111,7 +111,9 @@ def test_bernoulli_rejects_count_above_class_count() -> None:
 
 def test_bernoulli_rejects_inconsistent_histogram() -> None:
     counts = np.array([[1, 2]], dtype=np.int64)
-    vocabulary = Vocabulary(size=5, token_total=np.array([1, 2]), count_histogram=np.ones((2, 3)))
+    vocabulary = Vocabulary(
+        size=5, token_total=np.array([1, 2]), count_histogram=np.ones((2, 3), dtype=np.int64)
+    )
     with pytest.raises(ValueError, match="sum to the vocabulary size 5"):
         BernoulliNB().joint_log_likelihood(counts, np.array([3, 3]), vocabulary)
 

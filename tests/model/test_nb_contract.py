@@ -215,3 +215,5 @@ def test_contract_rejects_misshapen_inputs(name: str) -> None:
         model.score(hashes, -counts, class_count, vocabulary)
     with pytest.raises(ValueError, match="n_evidence"):
         model.score(hashes, counts, class_count, vocabulary, n_evidence=-1)
+    with pytest.raises(ValueError, match="token_count must hold integers"):
+        model.score(hashes, counts + 0.5, class_count, vocabulary)  # type: ignore[arg-type]

@@ -196,3 +196,16 @@ def test_fisher_rejects_bad_parameters(params: dict[str, float]) -> None:
 def test_fisher_rejects_count_above_class_count() -> None:
     with pytest.raises(ValueError, match="more messages than were trained"):
         RobinsonFisher().token_probability(np.array([[0, 5]]), np.array([3, 3]))
+
+
+@pytest.mark.parametrize("f", [[0.5, 1.0], [0.0], [math.nan]])
+def test_fisher_indicator_rejects_probabilities_outside_open_interval(f: list[float]) -> None:
+    with pytest.raises(ValueError, match="strictly between 0 and 1"):
+        RobinsonFisher().indicator(np.array(f))
+
+
+def test_fisher_log_factorials_do_not_depend_on_table_size() -> None:
+    # The survival function must not change when a larger cached table is already built.
+    small = chi2_log_survival_even(30.0, 20)
+    chi2_log_survival_even(30.0, 20000)
+    assert chi2_log_survival_even(30.0, 20) == small == pytest.approx(chi2.logsf(30.0, 20))
