@@ -113,7 +113,8 @@ class RobinsonFisher(NaiveBayes):
     References
     ----------
     G. Robinson, "A statistical approach to the spam problem", Linux Journal 107, 2003.
-    R. A. Fisher, *Statistical Methods for Research Workers*, 4th ed., 1932, section 21.1.
+    R. A. Fisher, *Statistical Methods for Research Workers*, 4th ed., 1932, section 21.1
+    (edition and section from memory).
     """
 
     name: ClassVar[str] = "fisher"

@@ -35,7 +35,8 @@ class MultinomialBooleanNB(NaiveBayes):
     Conventions: the feature set is the vocabulary and is fixed at scoring time, as in
     scikit-learn, where the columns are fixed at fit.  ``V = vocabulary.size`` counts only
     tokens seen in training; unknown tokens (zero counts in both classes) are ignored rather
-    than added to V, as tokens outside the vocabulary are dropped in the textbook algorithm.
+    than added to V, as the textbook's scoring procedure keeps only vocabulary tokens
+    (Manning et al., figure 13.2, from memory).
     Counting them would give each one ``log(alpha / (T_c + alpha V))``, a penalty that is
     larger for the class with more training text and so pushes every new word toward the
     smaller class.
