@@ -45,6 +45,7 @@ class SinkBehaviour:
     refuse: dict[str, str] = field(default_factory=dict)  # address -> RCPT reply
     data_reply: str | None = None  # e.g. "451 4.3.0 ..." or "554 5.6.0 ..."
     hang_at_data: bool = False
+    delay_at_data: float = 0.0  # seconds before answering the end of DATA
     mail_reply: str | None = None
 
 
@@ -127,6 +128,7 @@ class NextHop:
     async def handle_DATA(self, server: SMTP, session: Session, envelope: Envelope) -> str:
         if self.behaviour.hang_at_data:
             await asyncio.Event().wait()  # until our client gives up and the connection drops
+        await asyncio.sleep(self.behaviour.delay_at_data)
         if self.behaviour.data_reply:
             return self.behaviour.data_reply
         self.deliveries.append(
@@ -317,3 +319,17 @@ def message(body: bytes = b"The vaccine order arrives on Tuesday.\r\n", **fields
     }
     lines = "".join(f"{name}: {value}\r\n" for name, value in head.items())
     return lines.encode("utf-8") + b"\r\n" + body
+
+
+@asynccontextmanager
+async def running_service(settings: Settings) -> AsyncIterator[HostPort]:
+    """The whole daemon (daemon/service.py: store, judge, verdict log, SMTP side) on a free
+    port; yields the SMTP address it bound."""
+    from mailweir.daemon.service import Service
+
+    service = Service(settings)
+    await service.startup()
+    try:
+        yield service.smtp_address
+    finally:
+        await service.shutdown(grace=5)
