@@ -110,7 +110,7 @@ def _legend(series: Sequence[BarSeries]) -> str:
             f'<rect x="{x}" y="28" width="10" height="10" fill="{item.colour}"/>'
             f'<text x="{x + 14}" y="37">{escape(item.label)}</text>'
         )
-        x += 24 + 8 * len(item.label)
+        x += 24 + 7.5 * len(item.label)
     return "".join(parts)
 
 

@@ -247,6 +247,9 @@ def _charts(data: StatusData) -> Markup:
     if not data.days:
         return Markup("")
     labels = [_day_label(d.day) for d in data.days]
+    today = dt.datetime.fromtimestamp(data.generated_at, dt.UTC).date()
+    if data.days[-1].day == today:
+        labels[-1] = "today"  # a partial day: its bar is short and its rates are young
     bands = [
         BarSeries(band, [float(d.by_band.get(band, 0)) for d in data.days], colour)
         for band, colour in BAND_COLOURS.items()

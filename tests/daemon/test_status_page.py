@@ -90,6 +90,14 @@ def test_status_page_has_viewport_title_and_three_charts() -> None:
     assert 'id="volume"' in page and 'id="misfiling"' in page and 'id="scores"' in page
 
 
+def test_status_page_labels_the_partial_day_today() -> None:
+    data = sample_data()  # generated on 2026-11-20, its last day
+    assert ">today</text>" in render_page(data) and ">11-18</text>" in render_page(data)
+    later = dt.datetime(2026, 11, 21, 9, tzinfo=dt.UTC).timestamp()
+    page = render_page(StatusData(later, data.policy, data.days, data.histogram, data.model))
+    assert ">today</text>" not in page and ">11-20</text>" in page
+
+
 def test_status_page_loads_nothing_from_outside() -> None:
     page = render_page(sample_data())
     tags = tags_of(page)
