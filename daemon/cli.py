@@ -360,6 +360,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     _add_run_command(sub)
+    _add_demo_command(sub)
     _add_learning_commands(sub)
     _add_score_command(sub)
     _add_replay_command(sub)
@@ -377,6 +378,19 @@ def _add_run_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -
     )
     service.add_run_arguments(run)
     run.set_defaults(handler=service.run_command)
+
+
+def _add_demo_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    from mailweir.daemon import demo
+
+    parser = sub.add_parser(
+        "demo",
+        help="run the Harbour Lane demo on 127.0.0.1",
+        description="Train a model on an invented practice's mail, start the daemon with a "
+        "local next hop writing Maildirs, push a morning's mail through and show the verdicts.",
+    )
+    demo.add_demo_arguments(parser)
+    parser.set_defaults(handler=demo.demo_command)
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -172,86 +172,145 @@ def _ham(rng: random.Random, when: datetime) -> tuple[tuple[str, str], tuple[str
     )
 
 
+SPAM_GREETINGS = [
+    "Dear customer,",
+    "Hello,",
+    "Attention!",
+    "Dear friend,",
+    "Valued client,",
+    "Good day,",
+    "Dear account holder,",
+    "",
+]
+SPAM_CLOSINGS = [
+    "Regards, the team",
+    "Act now.",
+    "This offer expires tonight.",
+    "Do not reply to this automated notice.",
+    "Best wishes",
+    "Customer care",
+    "",
+]
+SPAM_LINES = {
+    "parcel": [
+        "We attempted delivery of your parcel but a customs fee is unpaid.",
+        "Your package is held at our depot pending a small redelivery charge.",
+        "Confirm your address within 24 hours or the parcel is returned to sender.",
+        "Track and release your shipment using the secure link below.",
+        "A courier will attempt delivery again once the fee is settled.",
+    ],
+    "invoice": [
+        "The attached invoice is overdue and must be paid today.",
+        "Remit payment immediately to avoid legal action and collection fees.",
+        "Our beneficiary account details have changed; use the new account below.",
+        "Open the attached statement for the outstanding balance.",
+        "Failure to pay will result in suspension of your service.",
+    ],
+    "prize": [
+        "Your e-mail address was selected in our international draw.",
+        "You have won a cash prize and a luxury holiday package.",
+        "To claim your winnings send your full name and bank details.",
+        "A small processing fee releases the funds to your account.",
+        "Keep this notice confidential until your claim is processed.",
+    ],
+    "investment": [
+        "Our trading robot delivers guaranteed monthly returns.",
+        "Risk free profit, withdraw any time, no experience needed.",
+        "Early investors turned a small deposit into a fortune.",
+        "Only a few places remain in the fund this month.",
+        "Reply now to reserve your place and double your money.",
+    ],
+    "pharmacy": [
+        "Best prices on pills with discreet worldwide shipping.",
+        "No prescription needed, order today and save 80%.",
+        "Top brands at a fraction of the pharmacy price.",
+        "Free bonus pills with every order over fifty dollars.",
+        "Satisfaction guaranteed or your money back.",
+    ],
+    "phishing": [
+        "We detected an unusual sign-in to your mailbox.",
+        "Your mailbox will be suspended unless you verify your password.",
+        "Confirm your login details within 12 hours to keep access.",
+        "Your storage quota is full; validate your account to receive new mail.",
+        "Click the secure link below to restore full access.",
+    ],
+}
+SPAM_SUBJECTS = {
+    "parcel": [
+        "Your parcel {ref} is on hold",
+        "Delivery failed: action required",
+        "Customs fee unpaid for shipment {ref}",
+        "Package waiting at depot",
+    ],
+    "invoice": [
+        "OVERDUE INVOICE #{ref} - final notice",
+        "Payment overdue {amount}",
+        "Outstanding balance - immediate action",
+        "Invoice {ref} unpaid",
+    ],
+    "prize": [
+        "Congratulations!!! You have WON",
+        "You are our lucky winner",
+        "Claim your {amount} prize now",
+        "Winning notification {ref}",
+    ],
+    "investment": [
+        "Guaranteed 40% monthly returns",
+        "Double your money this month",
+        "Limited places in our crypto fund",
+        "Financial freedom starts today",
+    ],
+    "pharmacy": [
+        "Cheap m3ds - no prescription needed",
+        "80% off top brands",
+        "Discreet pharmacy offer",
+        "Your order discount inside",
+    ],
+    "phishing": [
+        "Unusual sign-in activity on your mailbox",
+        "Mailbox quota exceeded",
+        "Verify your account now",
+        "Password expiry notice",
+    ],
+}
+SPAM_LINKS = {
+    "parcel": "http://redelivery.example.net/track?id={ref}",
+    "invoice": "http://invoice-centre.example.org/statement/{ref}",
+    "prize": "http://claim-now.example.com/winner/{ref}",
+    "investment": "http://fast-returns.example.net/join?ref={ref}",
+    "pharmacy": "http://cheap-meds.example.org/shop?p={ref}",
+    "phishing": "http://verify-login.example.com/confirm?u={ref}",
+}
+SPAM_DISGUISES = {  # what the visible link text claims to be
+    "parcel": "parcel-service.example",
+    "invoice": "secure-payments.example",
+    "prize": "www.official-lottery.example",
+    "investment": "www.trusted-bank.example",
+    "pharmacy": "pharmacy.example",
+    "phishing": "https://mail.harbourlane.example/login",
+}
+
+
 def _spam(
     rng: random.Random, when: datetime
 ) -> tuple[tuple[str, str], tuple[str, str], str, str, str | None]:
-    kind = rng.randrange(6)
-    sender = JUNK_SENDERS[kind]
+    kinds = list(SPAM_LINES)
+    n = rng.randrange(len(kinds))
+    kind = kinds[n]
+    sender = JUNK_SENDERS[n]
     staff = _staff_address(rng)
-    amount = rng.choice(["$4,850.00", "EUR 2,990", "$12,400", "GBP 780.50"])
+    amount = rng.choice(["$4,850.00", "EUR 2,990", "$12,400", "GBP 780.50", "$1,000,000"])
     ref = rng.randrange(100000, 999999)
-    if kind == 0:
-        link = f"http://redelivery.example.net/track?id={ref}"
-        return (
-            sender,
-            staff,
-            f"Your parcel {ref} is on hold - action required",
-            (
-                f"We attempted delivery of parcel {ref} but a customs fee of 1.99 is unpaid.\n"
-                f"Pay within 24 hours or the parcel is returned: {link}"
-            ),
-            f'<p>Customs fee unpaid. <a href="{link}">parcel-service.example</a></p>',
-        )
-    if kind == 1:
-        return (
-            sender,
-            staff,
-            f"OVERDUE INVOICE #{ref} - final notice",
-            (
-                f"Attention accounts department,\n\nInvoice #{ref} for {amount} is overdue. "
-                f"Open the attached statement and remit payment TODAY to avoid legal action.\n"
-                f"Wire details change: use the new beneficiary account below."
-            ),
-            None,
-        )
-    if kind == 2:
-        link = f"http://claim-now.example.com/winner/{ref}"
-        return (
-            sender,
-            staff,
-            "Congratulations!!! You have WON",
-            (
-                f"Dear lucky winner, your e-mail was selected in our international draw and you "
-                f"have won {amount}. To claim your prize send your full name, bank details and a "
-                f"processing fee. Claim here: {link}"
-            ),
-            f'<p><b>WINNER</b> claim <a href="{link}">www.official-lottery.example</a></p>',
-        )
-    if kind == 3:
-        return (
-            sender,
-            staff,
-            "Guaranteed 40% monthly returns - limited places",
-            (
-                f"Our crypto trading robot turned {amount} into a fortune for investors like you. "
-                f"Risk free, guaranteed profit, withdraw any time. Reply now to reserve one of the "
-                f"last places in the fund."
-            ),
-            None,
-        )
-    if kind == 4:
-        link = "http://cheap-meds.example.org/shop"
-        return (
-            sender,
-            staff,
-            "Cheap m3ds - no prescription needed",
-            (
-                f"Best prices on pills, 80% off, discreet shipping worldwide, no prescription. "
-                f"Order today: {link}"
-            ),
-            f'<p>V 1 A G R A 80% off <a href="{link}">shop</a></p>',
-        )
-    link = f"http://verify-login.example.com/confirm?u={ref}"
-    return (
-        sender,
-        staff,
-        "Unusual sign-in activity on your mailbox",
-        (
-            f"We detected an unusual sign-in. Your mailbox will be suspended unless you verify "
-            f"your password within 12 hours: {link}"
-        ),
-        f'<p>Verify now: <a href="{link}">https://mail.harbourlane.example/login</a></p>',
-    )
+    lines = rng.sample(SPAM_LINES[kind], rng.randrange(2, 5))
+    link = SPAM_LINKS[kind].format(ref=ref)
+    text = "\n".join(
+        [rng.choice(SPAM_GREETINGS), "", " ".join(lines), "", link, "", rng.choice(SPAM_CLOSINGS)]
+    ).strip()
+    subject = rng.choice(SPAM_SUBJECTS[kind]).format(ref=ref, amount=amount)
+    html = None
+    if rng.random() < 0.5:
+        html = f'<p>{" ".join(lines)}</p><p><a href="{link}">{SPAM_DISGUISES[kind]}</a></p>'
+    return sender, staff, subject, text, html
 
 
 def generate(count: int, label: str, seed: int) -> list[ScenarioMessage]:
@@ -285,9 +344,9 @@ def overdue_reminder() -> ScenarioMessage:
     sender = SUPPLIERS[2]
     to = ("Tobias Lindqvist", f"tobias.lindqvist@{PRACTICE}")
     body = (
-        "Dear Tobias,\n\nOur records show invoice 20417 for GBP 780.50 (linen service, "
-        "October) is now overdue. Please remit payment to the usual account at your earliest "
-        "convenience, or let us know if it has already been paid.\n\nCoastal Linen Service"
+        "Dear Tobias,\n\nFINAL NOTICE: invoice 20417 for GBP 780.50 (linen service, "
+        "October) is now overdue. Please remit payment TODAY to the usual account to avoid "
+        "a late fee, or let us know if it has already been paid.\n\nCoastal Linen Service"
     )
     when = datetime(2026, 11, 30, 9, 15, tzinfo=UTC)
     subject = "Payment reminder: invoice 20417 overdue"
