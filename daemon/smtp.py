@@ -15,11 +15,11 @@ import ssl
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
-from typing import TYPE_CHECKING, Any, Protocol
+from typing import TYPE_CHECKING, Any, AnyStr, Protocol
 
 from aiosmtpd.smtp import SMTP, Envelope, Session
 from mailweir.daemon import actions, headers, replies
-from mailweir.daemon.errors import RelayError, reply_for
+from mailweir.daemon.errors import NextHopUnavailable, RelayError, reply_for
 from mailweir.daemon.relay import HEADER_ALLOWANCE, MailParameters, NextHopSession, RelayTimeouts
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import Settings, SmtpSettings
@@ -153,9 +153,10 @@ class FilterSMTP(SMTP):
             self._reset_timeout()
         super().data_received(data)
 
-    async def push(self, status: str | bytes) -> None:
+    async def push(self, status: AnyStr) -> None:
         raw = status if isinstance(status, bytes) else status.encode("utf-8", "surrogateescape")
-        await super().push(_OWN_WORDING.get(raw, status))
+        ours = _OWN_WORDING.get(raw)
+        await (super().push(status) if ours is None else super().push(ours))
 
     @contextmanager
     def busy(self, seconds: float) -> Iterator[None]:
@@ -172,7 +173,7 @@ class FilterSMTP(SMTP):
 
     def forget_transaction(self) -> None:
         """Drop the envelope after a failed DATA, so the next MAIL starts clean."""
-        self._set_post_data_state()
+        self.envelope = self._create_envelope()
 
 
 class FilterHandler:
@@ -213,6 +214,8 @@ class FilterHandler:
                 answer = await self._forward_recipient(session, envelope, address)
         except RelayError as exc:
             log.warning("next hop: %s", exc)
+            if isinstance(exc, NextHopUnavailable) and session.relay is not None:
+                session.relay.abort()  # the dialogue may be out of step; start afresh next time
             envelope.relay_failure = reply_for(exc)
             return str(envelope.relay_failure)
         if answer.is_positive:

@@ -47,6 +47,7 @@ class SinkBehaviour:
     hang_at_data: bool = False
     delay_at_data: float = 0.0  # seconds before answering the end of DATA
     mail_reply: str | None = None
+    drop_at_rcpt: set[str] = field(default_factory=set)  # answer 421 and hang up
 
 
 class SinkSMTP(SMTP):
@@ -116,6 +117,10 @@ class NextHop:
     async def handle_RCPT(
         self, server: SMTP, session: Session, envelope: Envelope, address: str, options: list[str]
     ) -> str:
+        if address in self.behaviour.drop_at_rcpt:
+            assert server.transport is not None
+            asyncio.get_running_loop().call_later(0.05, server.transport.close)
+            return "421 4.3.2 Service shutting down"
         if address in self.behaviour.refuse:
             return self.behaviour.refuse[address]
         envelope.rcpt_tos.append(address)

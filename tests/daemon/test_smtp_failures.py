@@ -108,6 +108,18 @@ async def test_relay_all_recipients_refused_sends_nothing(next_hop):
     assert next_hop.deliveries == []
 
 
+async def test_relay_next_hop_lost_mid_transaction_answers_451_at_data(next_hop):
+    next_hop.behaviour.drop_at_rcpt = {TOBIAS}
+    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+        sent = await send(daemon.port, message(), recipients=[MAREN, TOBIAS, PRIYA])
+    # Maren was accepted before the next hop hung up, so the DATA is refused for her: 451,
+    # and the upstream keeps the message for all three.
+    gone = (451, b"4.3.2 Service shutting down")  # the next hop's 421, as 451
+    assert sent.rcpt == [(250, b"2.1.5 Recipient ok"), gone, gone]
+    assert sent.data == wire(replies.NEXT_HOP_LOST)
+    assert next_hop.deliveries == []
+
+
 async def test_relay_sender_refused_by_next_hop_answers_each_rcpt(next_hop):
     next_hop.behaviour.mail_reply = "553 5.7.1 Sender not allowed"
     async with running_daemon(daemon_settings(next_hop.address)) as daemon:
