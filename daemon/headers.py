@@ -31,8 +31,9 @@ def _line_ending(raw: bytes) -> bytes:
     return b"\n" if first > 0 and raw[first - 1 : first] != b"\r" else b"\r\n"
 
 
-def _split_header(raw: bytes) -> tuple[list[bytes], bytes]:
-    """Header lines (each with its line ending) and the rest (empty line and body) unchanged."""
+def _split_header(raw: bytes) -> tuple[list[bytes], int]:
+    """Header lines (each with its line ending) and the offset where the rest (the empty
+    line and the body) starts; the body is not copied until a change needs it."""
     lines: list[bytes] = []
     position = 0
     while position < len(raw):
@@ -43,7 +44,7 @@ def _split_header(raw: bytes) -> tuple[list[bytes], bytes]:
             break
         lines.append(line)
         position = end
-    return lines, raw[position:]
+    return lines, position
 
 
 def _field_name(line: bytes) -> bytes | None:
@@ -56,7 +57,7 @@ def _field_name(line: bytes) -> bytes | None:
 
 def remove_own_fields(raw: bytes) -> bytes:
     """``raw`` without any header field named ``mailweir-*`` (case-insensitive)."""
-    lines, rest = _split_header(raw)
+    lines, body_at = _split_header(raw)
     kept: list[bytes] = []
     dropping = False
     for line in lines:
@@ -67,7 +68,7 @@ def remove_own_fields(raw: bytes) -> bytes:
             kept.append(line)
     if len(kept) == len(lines):
         return raw
-    return b"".join(kept) + rest
+    return b"".join(kept) + raw[body_at:]
 
 
 def prepend_fields(raw: bytes, fields: Iterable[tuple[str, str]]) -> bytes:
@@ -86,7 +87,7 @@ def prefix_subject(raw: bytes, prefix: str) -> bytes:
     if not prefix:
         return raw
     marker = (prefix if prefix.isascii() else encoded_word(prefix)).encode("ascii")
-    lines, rest = _split_header(raw)
+    lines, body_at = _split_header(raw)
     for index, line in enumerate(lines):
         if _field_name(line) == b"subject":
             colon = line.index(b":") + 1
@@ -94,7 +95,7 @@ def prefix_subject(raw: bytes, prefix: str) -> bytes:
             if line[text_start:].startswith(marker):
                 return raw
             lines[index] = line[:colon] + b" " + marker + b" " + line[text_start:]
-            return b"".join(lines) + rest
+            return b"".join(lines) + raw[body_at:]
     return raw
 
 
