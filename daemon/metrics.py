@@ -5,7 +5,7 @@ so each daemon (and each test) owns a fresh one.  Call sites stay one line::
 
     metrics.message("spam", "tag", score=0.997)
     with metrics.scoring_seconds.time(): ...
-    metrics.next_hop_failure("timeout")
+    metrics.relay_error(exc)  # or metrics.next_hop_failure("timeout")
 
 Label sets that are known in advance (bands and actions, failure kinds, feedback kinds) are
 created at zero when the registry is made, so a query such as ``increase(...[1h])`` sees a
@@ -27,6 +27,8 @@ from collections.abc import Callable, Iterator
 from importlib import metadata
 from typing import Any, Final, Protocol
 
+from mailweir.daemon import replies
+from mailweir.daemon.errors import NextHopRejected, RelayError
 from mailweir.store.reports import MisfilingRates, ModelSummary
 from prometheus_client import (
     CollectorRegistry,
@@ -63,6 +65,20 @@ SCORE_BUCKETS: Final = (
 CPU_BUCKETS: Final = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 10)
 # The relay waits on the next hop, whose DATA reply may take minutes (RFC 5321 4.5.3.2).
 RELAY_BUCKETS: Final = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60, 300, 600)
+
+
+_KIND_BY_REPLY: Final = {
+    replies.NEXT_HOP_DOWN: "refused",  # connection refused or unreachable, bad greeting
+    replies.NEXT_HOP_TIMEOUT: "timeout",
+    replies.NEXT_HOP_LOST: "reset",  # the connection dropped mid-transaction
+}
+
+
+def failure_kind(error: RelayError) -> str:
+    """The ``kind`` label for a relay error: refused, timeout, reset, tempfail or permfail."""
+    if isinstance(error, NextHopRejected):
+        return "permfail"
+    return _KIND_BY_REPLY.get(error.reply, "tempfail")  # the next hop's own 4xx, and the rest
 
 
 class _VerdictLogLike(Protocol):
@@ -243,6 +259,10 @@ class Metrics:
 
     def next_hop_failure(self, kind: str) -> None:
         self.next_hop_failures.labels(kind).inc()
+
+    def relay_error(self, error: RelayError) -> None:
+        """Count a relay error under its kind (see :func:`failure_kind`)."""
+        self.next_hop_failures.labels(failure_kind(error)).inc()
 
     def scoring_failure(self) -> None:
         self.scoring_failures.inc()

@@ -8,7 +8,10 @@ import time
 from pathlib import Path
 
 import pytest
-from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher
+from mailweir.daemon import replies
+from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
+from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, failure_kind
+from mailweir.daemon.replies import Reply
 from mailweir.store import reports
 from mailweir.store.engine import make_engine
 from mailweir.store.migrations import migrate
@@ -119,6 +122,23 @@ def test_metrics_failures_feedback_and_timings() -> None:
     assert value(m, "mailweir_relay_seconds_bucket", le="0.25") == 1
     assert value(m, "mailweir_relay_seconds_bucket", le="0.1") == 0
     assert value(m, "mailweir_scoring_seconds_count") == 1
+
+
+@pytest.mark.parametrize(
+    ("error", "kind"),
+    [
+        (NextHopUnavailable("connection refused", replies.NEXT_HOP_DOWN), "refused"),
+        (NextHopUnavailable("timed out", replies.NEXT_HOP_TIMEOUT), "timeout"),
+        (NextHopUnavailable("reset by peer", replies.NEXT_HOP_LOST), "reset"),
+        (NextHopUnavailable("450 mailbox busy", Reply(450, "4.2.1", "busy")), "tempfail"),
+        (NextHopRejected(550, "5.1.1", "no such user"), "permfail"),
+    ],
+)
+def test_metrics_relay_error_kinds(error: RelayError, kind: str) -> None:
+    m = Metrics()
+    assert failure_kind(error) == kind
+    m.relay_error(error)
+    assert value(m, "mailweir_next_hop_failures_total", kind=kind) == 1
 
 
 def test_metrics_fresh_registries_are_independent() -> None:
