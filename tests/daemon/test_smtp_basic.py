@@ -226,3 +226,35 @@ async def test_smtp_advertises_the_extensions(next_hop):
         features = await asyncio.to_thread(ehlo, daemon.port)
     for extension in (b"8BITMIME", b"SMTPUTF8", b"PIPELINING", b"SIZE 8388608"):
         assert extension in features.split(b"\n")
+
+
+async def test_relay_single_line_over_size_limit_answers_552(next_hop):
+    # One line longer than the whole size limit: aiosmtpd would call it "line too long" (500);
+    # with the line limit at the size limit it can only be a message too big.
+    raw = message(b"Z" * (8 * 1024 * 1024 + 10) + b"\r\n")
+    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+        sent = await send(daemon.port, raw)
+    assert sent.data == (552, b"5.3.4 Message too big")
+    assert next_hop.deliveries == []
+
+
+async def test_smtp_pipelined_commands_answered_in_order(next_hop):
+    # RFC 2920 section 3.1: the client may send the whole envelope at once.
+    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+        reader, writer = await asyncio.open_connection(LOCAL, daemon.port)
+        await reader.readline()
+        writer.write(b"EHLO mx.mail.example\r\n")
+        while not (await reader.readline()).startswith(b"250 "):
+            pass
+        writer.write(
+            b"MAIL FROM:<orders@vetsupply.example>\r\n"
+            + b"".join(b"RCPT TO:<%s>\r\n" % address.encode() for address in PRACTICE)
+            + b"DATA\r\n"
+        )
+        answers = [await reader.readline() for _ in range(5)]
+        writer.write(message() + b".\r\nQUIT\r\n")
+        answers += [await reader.readline(), await reader.readline()]
+        writer.close()
+    codes = [answer[:3] for answer in answers]
+    assert codes == [b"250", b"250", b"250", b"250", b"354", b"250", b"221"]
+    assert next_hop.deliveries[0].content == message()
