@@ -12,17 +12,8 @@ from mailweir.daemon import replies
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
 from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, failure_kind
 from mailweir.daemon.replies import Reply
-from mailweir.store import reports
-from mailweir.store.engine import make_engine
-from mailweir.store.migrations import migrate
-from mailweir.store.verdicts import (
-    FeedbackChannel,
-    FeedbackKind,
-    FeedbackRecord,
-    VerdictRecord,
-    record_feedback,
-    record_verdicts,
-)
+from mailweir.store import ModelStore, reports
+from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 from prometheus_client.parser import text_string_to_metric_families
 from prometheus_client.samples import Sample
 
@@ -172,20 +163,18 @@ def test_metrics_verdict_log_read_at_scrape_time() -> None:
 
 
 async def test_report_refresher_sets_gauges_from_a_real_store(tmp_path: Path) -> None:
-    engine = make_engine(str(tmp_path / "model.sqlite3"))
-    migrate(engine)
+    store = ModelStore.open(str(tmp_path / "model.sqlite3"))
+    engine = store.engine
     now = time.time()
-    with engine.begin() as conn:
-        bands = ["spam", "spam", "suspect", "ham", "ham", "ham", "ham", "ham"]
-        record_verdicts(
-            conn,
-            [
-                VerdictRecord(f"t{i}", now - 60 * (i + 1), 1, 100, 0.5, band, "tag", None)
-                for i, band in enumerate(bands)
-            ],
-        )
-        for kind, tid in [(FeedbackKind.FALSE_POSITIVE, "t0"), (FeedbackKind.FALSE_NEGATIVE, "t5")]:
-            record_feedback(conn, FeedbackRecord(kind, FeedbackChannel.HTTP, now - 1, tid))
+    bands = ["spam", "spam", "suspect", "ham", "ham", "ham", "ham", "ham"]
+    store.record_verdicts(
+        [
+            VerdictRecord(f"t{i}", now - 60 * (i + 1), 1, 100, 0.5, band, "tag", None)
+            for i, band in enumerate(bands)
+        ]
+    )
+    for kind, tid in [(FeedbackKind.FALSE_POSITIVE, "t0"), (FeedbackKind.FALSE_NEGATIVE, "t5")]:
+        store.record_feedback(FeedbackRecord(kind, FeedbackChannel.HTTP, now - 1, tid))
     m = Metrics()
     refresher = ReportRefresher(
         m,
@@ -193,7 +182,7 @@ async def test_report_refresher_sets_gauges_from_a_real_store(tmp_path: Path) ->
         model=lambda: reports.model_summary(engine),
     )
     assert await refresher.refresh()
-    engine.dispose()
+    store.close()
     for window in RATE_WINDOWS:
         assert value(m, "mailweir_false_positive_rate", window=window) == pytest.approx(1 / 8)
         assert value(m, "mailweir_false_negative_rate", window=window) == pytest.approx(1 / 8)

@@ -20,18 +20,10 @@ from mailweir.daemon.bar_charts import (
 )
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.status_page import Markup, StatusData, StatusPage, html, render_page
-from mailweir.store import reports
+from mailweir.store import ModelStore, reports
 from mailweir.store.engine import make_engine
-from mailweir.store.migrations import migrate
 from mailweir.store.reports import DayReport, MisfilingRates, ModelSummary, ScoreHistogram
-from mailweir.store.verdicts import (
-    FeedbackChannel,
-    FeedbackKind,
-    FeedbackRecord,
-    VerdictRecord,
-    record_feedback,
-    record_verdicts,
-)
+from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 
 SVG = "{http://www.w3.org/2000/svg}"
 NOW = dt.datetime(2026, 11, 20, 12, tzinfo=dt.UTC).timestamp()
@@ -151,21 +143,18 @@ def test_html_helper_escapes_all_but_markup() -> None:
 
 @pytest.fixture
 def filled_engine(tmp_path: Path):  # type: ignore[no-untyped-def]
-    engine = make_engine(str(tmp_path / "model.sqlite3"))
-    migrate(engine)
-    with engine.begin() as conn:
-        record_verdicts(
-            conn,
-            [
-                VerdictRecord(f"t{i}", NOW - 3600 * i, 1, 900, (i % 10) / 10, band, "tag", None)
-                for i, band in enumerate(["spam", "suspect", "ham", "ham"] * 10)
-            ],
-        )
-        record_feedback(
-            conn, FeedbackRecord(FeedbackKind.FALSE_POSITIVE, FeedbackChannel.MAIL, NOW - 1, "t0")
-        )
-    yield engine
-    engine.dispose()
+    store = ModelStore.open(str(tmp_path / "model.sqlite3"))
+    store.record_verdicts(
+        [
+            VerdictRecord(f"t{i}", NOW - 3600 * i, 1, 900, (i % 10) / 10, band, "tag", None)
+            for i, band in enumerate(["spam", "suspect", "ham", "ham"] * 10)
+        ]
+    )
+    store.record_feedback(
+        FeedbackRecord(FeedbackKind.FALSE_POSITIVE, FeedbackChannel.MAIL, NOW - 1, "t0")
+    )
+    yield store.engine
+    store.close()
 
 
 async def test_status_page_render_reads_store_in_a_worker_thread(

@@ -28,16 +28,8 @@ from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.status_page import StatusPage
-from mailweir.store.engine import make_engine
-from mailweir.store.migrations import migrate
-from mailweir.store.verdicts import (
-    FeedbackChannel,
-    FeedbackKind,
-    FeedbackRecord,
-    VerdictRecord,
-    record_feedback,
-    record_verdicts,
-)
+from mailweir.store import ModelStore
+from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 
 pytestmark = pytest.mark.slow
 
@@ -67,7 +59,7 @@ CHROMIUM_FLAGS = [
 NOW = dt.datetime.now(dt.UTC).timestamp()
 
 
-def fill(engine: Any) -> None:
+def fill(store: ModelStore) -> None:
     """Two weeks of invented traffic with a few corrections, hour by hour."""
     records, corrections = [], []
     for hour in range(14 * 24):
@@ -84,10 +76,9 @@ def fill(engine: Any) -> None:
                 corrections.append((FeedbackKind.FALSE_POSITIVE, tid))
             if band == "ham" and score > 0.2 and hour % 17 == 0:
                 corrections.append((FeedbackKind.FALSE_NEGATIVE, tid))
-    with engine.begin() as conn:
-        record_verdicts(conn, records)
-        for kind, tid in corrections:
-            record_feedback(conn, FeedbackRecord(kind, FeedbackChannel.MAIL, NOW - 1, tid))
+    store.record_verdicts(records)
+    for kind, tid in corrections:
+        store.record_feedback(FeedbackRecord(kind, FeedbackChannel.MAIL, NOW - 1, tid))
 
 
 async def no_feedback(request: FeedbackRequest) -> FeedbackOutcome:
@@ -96,11 +87,10 @@ async def no_feedback(request: FeedbackRequest) -> FeedbackOutcome:
 
 @pytest.fixture
 async def page_url(tmp_path: Path) -> AsyncIterator[str]:
-    engine = make_engine(str(tmp_path / "model.sqlite3"))
-    migrate(engine)
-    fill(engine)
+    store = ModelStore.open(str(tmp_path / "model.sqlite3"))
+    fill(store)
     policy = PolicySettings(quarantine_mailbox="quarantine@harbourlane.example")
-    page = StatusPage(engine, lambda: policy)
+    page = StatusPage(store.engine, lambda: policy)
 
     async def ok() -> bool:
         return True
@@ -113,7 +103,7 @@ async def page_url(tmp_path: Path) -> AsyncIterator[str]:
         yield f"http://127.0.0.1:{http.port}/"
     finally:
         await http.stop()
-        engine.dispose()
+        store.close()
 
 
 async def run_chromium(*args: str) -> bytes:

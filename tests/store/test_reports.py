@@ -1,4 +1,4 @@
-"""Reports over a real SQLite store, filled through the store's own write functions.
+"""Reports over a real SQLite store, filled through the store's API (``ModelStore``).
 
 The expected figures are counted by hand from the constructed logs below (the definitions are
 in the docstring of ``store/reports.py``); the score histogram is checked against
@@ -9,23 +9,14 @@ from __future__ import annotations
 
 import datetime as dt
 import math
+import time
 from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
 import pytest
-from mailweir.store import reports
-from mailweir.store.engine import make_engine
-from mailweir.store.migrations import migrate
-from mailweir.store.training import apply_counts, bump_totals, resolve_training
-from mailweir.store.verdicts import (
-    FeedbackChannel,
-    FeedbackKind,
-    FeedbackRecord,
-    VerdictRecord,
-    record_feedback,
-    record_verdicts,
-)
+from mailweir.store import ModelStore, reports
+from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 from sqlalchemy import Engine
 
 # 2026-11-20 12:00:00 UTC
@@ -35,11 +26,15 @@ FP, FN, OK = FeedbackKind.FALSE_POSITIVE, FeedbackKind.FALSE_NEGATIVE, FeedbackK
 
 
 @pytest.fixture
-def engine(tmp_path: Path) -> Iterator[Engine]:
-    eng = make_engine(str(tmp_path / "model.sqlite3"))
-    migrate(eng)
-    yield eng
-    eng.dispose()
+def store(tmp_path: Path) -> Iterator[ModelStore]:
+    opened = ModelStore.open(str(tmp_path / "model.sqlite3"))
+    yield opened
+    opened.close()
+
+
+@pytest.fixture
+def engine(store: ModelStore) -> Engine:
+    return store.engine
 
 
 def verdict(tid: str, at: float, band: str, score: float | None = 0.5) -> VerdictRecord:
@@ -47,18 +42,12 @@ def verdict(tid: str, at: float, band: str, score: float | None = 0.5) -> Verdic
     return VerdictRecord(tid, at, 1, 2048, score, band, action, None)
 
 
-def add_verdicts(engine: Engine, records: list[VerdictRecord]) -> None:
-    with engine.begin() as conn:
-        record_verdicts(conn, records)
-
-
-def add_feedback(engine: Engine, kind: FeedbackKind, tid: str | None, at: float) -> None:
-    with engine.begin() as conn:
-        record_feedback(conn, FeedbackRecord(kind, FeedbackChannel.MAIL, at, tid))
+def add_feedback(store: ModelStore, kind: FeedbackKind, tid: str | None, at: float) -> None:
+    store.record_feedback(FeedbackRecord(kind, FeedbackChannel.MAIL, at, tid))
 
 
 @pytest.fixture
-def constructed(engine: Engine) -> Engine:
+def constructed(store: ModelStore) -> Engine:
     """A day of mail and a week-old batch, with every kind of correction that matters.
 
     Last 24 hours: 4 ham, 3 suspect, 3 spam judged (10), plus 2 unjudged and 1 failed.
@@ -87,7 +76,7 @@ def constructed(engine: Engine) -> Engine:
     old = [verdict(f"o{i}", NOW - 72 * HOUR - i, "ham", 0.05) for i in range(2)] + [
         verdict(f"s{9 - i}", NOW - 72 * HOUR - i, "spam", 0.99) for i in range(3)
     ]
-    add_verdicts(engine, day + old)
+    store.record_verdicts(day + old)
     for kind, tid, at in [
         (FP, "s1", NOW - 0.5 * HOUR),
         (FP, "q1", NOW - 0.4 * HOUR),
@@ -102,8 +91,8 @@ def constructed(engine: Engine) -> Engine:
         (FP, "q2", NOW + 1 * HOUR),
         (FP, "s9", NOW - 48 * HOUR),
     ]:
-        add_feedback(engine, kind, tid, at)
-    return engine
+        add_feedback(store, kind, tid, at)
+    return store.engine
 
 
 def test_misfiling_rates_24h_exact(constructed: Engine) -> None:
@@ -160,38 +149,33 @@ def test_daily_report_misfiling_per_day(constructed: Engine) -> None:
     assert math.isnan(by_day[dt.date(2026, 11, 18)].false_positive_rate)
 
 
-def test_score_histogram_matches_numpy(engine: Engine) -> None:
+def test_score_histogram_matches_numpy(store: ModelStore) -> None:
     rng = np.random.default_rng(7)
     scores = np.concatenate([rng.beta(0.3, 0.3, 400), [0.0, 0.05, 0.5, 0.95, 1.0]])
-    add_verdicts(
-        engine,
+    store.record_verdicts(
         [verdict(f"m{i}", NOW - i, "ham", float(s)) for i, s in enumerate(scores)]
         + [verdict("none", NOW, "failed", None)],
     )
-    hist = reports.score_histogram(engine, days=1, now=NOW)
+    hist = reports.score_histogram(store.engine, days=1, now=NOW)
     expected, _ = np.histogram(scores, bins=np.array(hist.edges))
     assert hist.edges[0] == 0.0 and hist.edges[-1] == 1.0 and len(hist.edges) == 21
     assert list(hist.counts) == expected.tolist()
     assert sum(hist.counts) == len(scores)
 
 
-def test_score_histogram_ignores_older_days(engine: Engine) -> None:
-    add_verdicts(engine, [verdict("old", NOW - 30 * 24 * HOUR, "spam", 0.99)])
-    assert sum(reports.score_histogram(engine, days=14, now=NOW).counts) == 0
+def test_score_histogram_ignores_older_days(store: ModelStore) -> None:
+    store.record_verdicts([verdict("old", NOW - 30 * 24 * HOUR, "spam", 0.99)])
+    assert sum(reports.score_histogram(store.engine, days=14, now=NOW).counts) == 0
 
 
-def train(engine: Engine, hashes: list[int], label: int, digest: bytes, at: float) -> None:
-    with engine.begin() as conn:
-        plan = resolve_training(conn, [(np.array(hashes, np.int64), label, digest, "test")], at)
-        apply_counts(conn, plan.hashes, plan.delta, int(at // 86400))
-        bump_totals(conn, plan.messages)
-
-
-def test_model_summary_after_training(engine: Engine) -> None:
-    assert reports.model_summary(engine) == reports.ModelSummary(0, 0, 0, None)
-    train(engine, [1, 2, 3], 0, b"a" * 16, NOW - 100)
-    train(engine, [3, 4], 1, b"b" * 16, NOW - 50)
-    train(engine, [5], 1, b"c" * 16, NOW - 10)
-    summary = reports.model_summary(engine)
-    assert summary == reports.ModelSummary(tokens=5, ham_messages=1, spam_messages=2,
-                                           last_trained_at=NOW - 10)  # fmt: skip
+def test_model_summary_after_training(store: ModelStore) -> None:
+    assert reports.model_summary(store.engine) == reports.ModelSummary(0, 0, 0, None)
+    before = time.time()
+    for hashes, label, digest in [([1, 2, 3], 0, b"a"), ([3, 4], 1, b"b"), ([5], 1, b"c")]:
+        store.train(np.array(hashes, np.int64), label, digest=digest * 16, source="test")
+    summary = reports.model_summary(store.engine)
+    assert (summary.tokens, summary.ham_messages, summary.spam_messages) == (5, 1, 2)
+    assert summary.last_trained_at is not None
+    assert before <= summary.last_trained_at <= time.time()
+    store.untrain(np.array([5], np.int64), digest=b"c" * 16)
+    assert reports.model_summary(store.engine).tokens == 4  # token 5 is gone from the model
