@@ -1,0 +1,367 @@
+"""The running daemon: ``startup()``, ``wait_for_stop()``, ``shutdown()``, and ``mailweir run``.
+
+Everything runs on one event loop.  ``startup`` validates the settings, opens (and migrates)
+the store, starts the scoring executor, the judge and the verdict log, and only then binds the
+SMTP port, so a bad configuration or an unreachable database fails before any socket listens.
+``shutdown`` stops accepting, lets transactions in flight finish within a grace period, cancels
+the rest (logging how many), flushes the verdict log and closes the store.
+
+SIGTERM and SIGINT stop the daemon; SIGHUP re-reads the configuration and applies the policy
+(cut-offs, actions, cold-start guard) and the log level without touching listening sockets.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import concurrent.futures
+import dataclasses
+import json
+import logging
+import multiprocessing
+import os
+import signal
+import sys
+import time
+import weakref
+from pathlib import Path
+from typing import Any
+
+from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource, validate
+from mailweir.daemon.errors import ConfigError
+from mailweir.daemon.judge import Judge
+from mailweir.daemon.settings import HostPort, ModelSettings, Settings
+from mailweir.daemon.verdict_log import VerdictLog
+
+log = logging.getLogger("mailweir.service")
+
+# Sections whose changes need a restart (sockets, database, pools); SIGHUP only reports them.
+RESTART_ONLY = ("state_dir", "smtp", "next_hop", "model", "http")
+
+
+def make_executor(model: ModelSettings) -> concurrent.futures.Executor:
+    """The pool the judge runs CPU steps in; see the pool choice in ``judge.py``."""
+    from mailweir.daemon.judge import POOL_KIND
+
+    if POOL_KIND == "process":
+        # forkserver: never fork a process that already runs threads and an event loop.
+        context = multiprocessing.get_context("forkserver")
+        return concurrent.futures.ProcessPoolExecutor(model.scoring_workers, mp_context=context)
+    return concurrent.futures.ThreadPoolExecutor(
+        model.scoring_workers, thread_name_prefix="mailweir-score"
+    )
+
+
+class Service:
+    def __init__(self, settings: Settings, source: ConfigSource | None = None) -> None:
+        self.settings = settings
+        self._source = source  # re-read on SIGHUP; None: reload() needs explicit settings
+        self._stop = asyncio.Event()
+        self.store: Any = None
+        self.executor: concurrent.futures.Executor | None = None
+        self.judge: Judge | None = None
+        self.verdict_log: VerdictLog | None = None
+        self.handler: Any = None
+        self.smtp_server: Any = None
+        self._signals: list[signal.Signals] = []
+
+    # -- lifecycle -----------------------------------------------------------------------
+
+    async def startup(self) -> None:
+        validate(self.settings)
+        self._prepare_state_dir()
+        try:
+            await self._open_parts()
+            self.smtp_server = await _create_smtp_server(self.settings, self.handler)
+        except BaseException:
+            await self._close_parts()
+            raise
+        log.info("mailweir listening for SMTP on %s", self.smtp_address)
+
+    async def wait_for_stop(self) -> None:
+        await self._stop.wait()
+
+    def stop(self) -> None:
+        self._stop.set()
+
+    async def shutdown(self, grace: float = 30.0) -> None:
+        self.remove_signal_handlers()
+        if self.smtp_server is not None:
+            self.smtp_server.close()  # stop accepting; connections already open carry on
+            # No wait_closed(): from Python 3.12 on it also waits for idle clients to leave.
+            cancelled = await _drain(self.handler, grace)
+            if cancelled:
+                log.warning(
+                    "shutdown: %d transactions still running after %.0fs were cancelled",
+                    cancelled,
+                    grace,
+                )
+            self.smtp_server = None
+        await self._close_parts()
+        log.info("mailweir stopped")
+
+    @property
+    def smtp_address(self) -> HostPort:
+        """The address actually bound (the OS's choice when the port was 0)."""
+        if self.smtp_server is None or not self.smtp_server.sockets:
+            raise RuntimeError("the SMTP side is not listening")
+        host, port = self.smtp_server.sockets[0].getsockname()[:2]
+        return HostPort(host, port)
+
+    # -- reload --------------------------------------------------------------------------
+
+    def reload(self, settings: Settings | None = None) -> bool:
+        """Apply new policy and log level; return False (and keep running as is) on bad input.
+
+        Without ``settings`` the configuration source (file, environment, flags) is read again.
+        """
+        try:
+            if settings is None:
+                if self._source is None:
+                    log.warning("reload: no configuration file to read; nothing changed")
+                    return False
+                settings = self._source.load()
+            else:
+                validate(settings)
+        except ConfigError as exc:
+            log.error("reload refused, keeping the running configuration: %s", exc)
+            return False
+        changed = [n for n in RESTART_ONLY if getattr(settings, n) != getattr(self.settings, n)]
+        if changed:
+            log.warning(
+                "reload: changes to %s take effect only after a restart", ", ".join(changed)
+            )
+        level = dataclasses.replace(self.settings.log, level=settings.log.level)
+        self.settings = dataclasses.replace(self.settings, policy=settings.policy, log=level)
+        logging.getLogger("mailweir").setLevel(self.settings.log.level.upper())
+        if self.judge is not None:
+            self.judge.reload(self.settings)
+        if self.handler is not None:
+            self.handler.reload(self.settings)
+        policy = self.settings.policy
+        log.info(
+            "reloaded: suspect_cutoff=%s spam_cutoff=%s actions=%s/%s/%s mode=%s",
+            policy.suspect_cutoff,
+            policy.spam_cutoff,
+            policy.ham_action,
+            policy.suspect_action,
+            policy.spam_action,
+            policy.mode,
+        )
+        return True
+
+    def install_signal_handlers(self) -> None:
+        loop = asyncio.get_running_loop()
+        for sig, action in (
+            (signal.SIGTERM, self.stop),
+            (signal.SIGINT, self.stop),
+            (signal.SIGHUP, self.reload),
+        ):
+            loop.add_signal_handler(sig, action)
+            self._signals.append(sig)
+
+    def remove_signal_handlers(self) -> None:
+        loop = asyncio.get_running_loop()
+        while self._signals:
+            loop.remove_signal_handler(self._signals.pop())
+
+    # -- parts ---------------------------------------------------------------------------
+
+    def _prepare_state_dir(self) -> None:
+        if self.settings.model.database:
+            return  # the database lives elsewhere; the state directory is not needed yet
+        path = self.settings.state_dir
+        try:
+            path.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise ConfigError(
+                "state_dir",
+                f"cannot create {str(path)!r} ({exc.strerror}); expected a writable directory "
+                "(set state_dir, MAILWEIR_STATE_DIR or --state-dir)",
+            ) from exc
+
+    async def _open_parts(self) -> None:
+        from mailweir.store import ModelStore
+
+        model = self.settings.model
+        self.store = await asyncio.to_thread(
+            ModelStore.open,
+            self.settings.database,
+            cache_tokens=model.cache_tokens,
+            staleness_seconds=model.staleness_seconds,
+        )
+        self.executor = make_executor(model)
+        self.judge = Judge(self.store, self.settings, self.executor)
+        self.verdict_log = VerdictLog(self.store, self.settings.log.verdict_batch_seconds)
+        await self.verdict_log.start()
+        self.handler = _make_handler(self.settings, self.judge, self.verdict_log)
+
+    async def _close_parts(self) -> None:
+        if self.verdict_log is not None:
+            await self.verdict_log.close()
+            self.verdict_log = None
+        if self.executor is not None:
+            self.executor.shutdown(wait=True, cancel_futures=True)
+            self.executor = None
+        if self.store is not None:
+            await asyncio.to_thread(self.store.close)
+            self.store = None
+
+
+# -- the SMTP side (daemon/smtp.py) --------------------------------------------------------
+
+
+def _make_handler(settings: Settings, judge: Judge, verdict_log: VerdictLog) -> Any:
+    from mailweir.daemon.smtp import FilterHandler
+
+    return TransactionWatch(FilterHandler(settings, judge, verdict_log))
+
+
+async def _create_smtp_server(settings: Settings, handler: Any) -> Any:
+    from mailweir.daemon.smtp import create_smtp_server
+
+    return await create_smtp_server(settings, handler)
+
+
+class TransactionWatch:
+    """The SMTP handler, seen through: which connections are inside a transaction.
+
+    aiosmtpd hands every hook the protocol instance of its connection; the first RCPT of a
+    transaction registers it here.  A connection is busy while its envelope holds recipients
+    (aiosmtpd starts a fresh envelope after the reply to DATA and after RSET).  Every other
+    attribute is the wrapped handler's own.
+    """
+
+    def __init__(self, handler: Any) -> None:
+        self.handler = handler
+        self._connections: weakref.WeakSet[Any] = weakref.WeakSet()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.handler, name)
+
+    def __dir__(self) -> list[str]:
+        # aiosmtpd finds hooks with dir(handler); a hook it misses gets its default, and its
+        # default DATA answers 250 and drops the message, so every handler name must show.
+        return sorted(set(super().__dir__()) | set(dir(self.handler)))
+
+    async def handle_RCPT(self, server: Any, session: Any, envelope: Any, *args: Any) -> Any:
+        self._connections.add(server)
+        return await self.handler.handle_RCPT(server, session, envelope, *args)
+
+    def open_connections(self) -> list[Any]:
+        return [c for c in self._connections if getattr(c, "transport", None) is not None]
+
+    def busy(self) -> list[Any]:
+        return [c for c in self.open_connections() if c.envelope.rcpt_tos]
+
+    def reload(self, settings: Settings) -> None:
+        if hasattr(self.handler, "reload"):
+            self.handler.reload(settings)
+        else:
+            self.handler.settings = settings  # FilterHandler reads its policy per message
+
+
+async def _drain(watch: Any, grace: float) -> int:
+    """Wait up to ``grace`` seconds for transactions in flight, then abort what is left.
+
+    Returns how many transactions were cut off; their upstream never got a 250, so it keeps
+    those messages and retries them (nothing is lost).  Idle connections are closed too.
+    """
+    if not isinstance(watch, TransactionWatch):
+        return 0
+    deadline = time.monotonic() + grace
+    while watch.busy() and time.monotonic() < deadline:
+        await asyncio.sleep(0.02)
+    cut = watch.busy()
+    for connection in watch.open_connections():
+        if connection in cut:
+            connection.transport.abort()
+        else:
+            connection.transport.close()
+    await asyncio.sleep(0)  # let connection_lost run for what was just closed
+    return len(cut)
+
+
+# -- the `mailweir run` command ------------------------------------------------------------
+
+
+def add_run_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--config",
+        type=Path,
+        default=os.environ.get(CONFIG_PATH_ENV) or None,
+        help=f"TOML configuration file (default: ${CONFIG_PATH_ENV}; none: built-in defaults)",
+    )
+    parser.add_argument("--listen", metavar="HOST:PORT", help="SMTP address to listen on")
+    parser.add_argument("--next-hop", metavar="HOST:PORT", help="SMTP server to relay to")
+    parser.add_argument("--db", metavar="URL_OR_PATH", help="model database URL or SQLite path")
+    parser.add_argument("--http", metavar="HOST:PORT", help="HTTP address (feedback, metrics)")
+    parser.add_argument("--state-dir", metavar="PATH", help="directory for the daemon's state")
+
+
+FLAG_KEYS = {
+    "listen": "smtp.listen",
+    "next_hop": "next_hop.address",
+    "db": "model.database",
+    "http": "http.listen",
+    "state_dir": "state_dir",
+}
+
+
+def source_from_args(args: argparse.Namespace) -> ConfigSource:
+    flags = {key: getattr(args, attr) for attr, key in FLAG_KEYS.items()}
+    return ConfigSource(
+        args.config, dict(os.environ), {k: v for k, v in flags.items() if v is not None}
+    )
+
+
+def run_command(args: argparse.Namespace) -> int:
+    """``mailweir run``: 0 after a clean stop, 2 for a bad configuration, 1 if start failed."""
+    source = source_from_args(args)
+    try:
+        settings = source.load()
+    except ConfigError as exc:
+        print(f"mailweir: configuration error: {exc}", file=sys.stderr)
+        return 2
+    configure_logging(settings)
+    return asyncio.run(_serve(settings, source))
+
+
+async def _serve(settings: Settings, source: ConfigSource) -> int:
+    service = Service(settings, source)
+    try:
+        await service.startup()
+    except ConfigError as exc:
+        print(f"mailweir: configuration error: {exc}", file=sys.stderr)
+        return 2
+    except Exception as exc:
+        log.exception("mailweir could not start: %s", exc)
+        return 1
+    service.install_signal_handlers()
+    await service.wait_for_stop()
+    await service.shutdown()
+    return 0
+
+
+class _JsonFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        entry = {
+            "time": self.formatTime(record),
+            "level": record.levelname.lower(),
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        if record.exc_info:
+            entry["traceback"] = self.formatException(record.exc_info)
+        return json.dumps(entry)
+
+
+def configure_logging(settings: Settings) -> None:
+    handler = logging.StreamHandler(sys.stderr)
+    if settings.log.format == "json":
+        handler.setFormatter(_JsonFormatter())
+    else:
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    root = logging.getLogger("mailweir")
+    root.handlers[:] = [handler]
+    root.setLevel(settings.log.level.upper())

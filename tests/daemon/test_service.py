@@ -1,0 +1,315 @@
+"""The daemon's lifecycle: startup on port 0, clean shutdown, draining, reload, signals, `run`."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import dataclasses
+import logging
+import os
+import signal
+import smtplib
+import socket
+import threading
+import time
+from collections.abc import AsyncIterator
+from pathlib import Path
+from typing import Any
+
+import pytest
+from aiosmtpd.smtp import SMTP, Envelope, Session
+from mailweir.daemon import service as service_module
+from mailweir.daemon.config import ConfigSource
+from mailweir.daemon.errors import ConfigError
+from mailweir.daemon.service import Service, add_run_arguments, run_command
+from mailweir.daemon.settings import HostPort, PolicySettings, Settings, SmtpSettings
+
+MESSAGE = (
+    b"From: Priya Raman <priya.raman@harbourlane.example>\r\n"
+    b"To: Dr. Maren Okafor <maren.okafor@harbourlane.example>\r\n"
+    b"Subject: Luna's post-op review\r\n"
+    b"\r\n"
+    b"Luna's owner called: the post-op review can move to Friday at 10.\r\n"
+)
+
+
+class SinkHandler:
+    """The next hop: records what it accepts; ``hold`` keeps the DATA reply back."""
+
+    def __init__(self) -> None:
+        self.received: list[bytes] = []
+        self.hold: asyncio.Event | None = None
+        self.data_started = asyncio.Event()
+
+    async def handle_DATA(self, server: SMTP, session: Session, envelope: Envelope) -> str:
+        self.data_started.set()
+        if self.hold is not None:
+            await self.hold.wait()
+        self.received.append(envelope.original_content or b"")
+        return "250 2.0.0 queued"
+
+
+@pytest.fixture
+async def sink() -> AsyncIterator[tuple[SinkHandler, HostPort]]:
+    handler = SinkHandler()
+    loop = asyncio.get_running_loop()
+    server = await loop.create_server(
+        lambda: SMTP(handler, decode_data=False, hostname="sink.test"), "127.0.0.1", 0
+    )
+    port = server.sockets[0].getsockname()[1]
+    yield handler, HostPort("127.0.0.1", port)
+    if handler.hold is not None:
+        handler.hold.set()
+    server.close()
+
+
+def make_settings(tmp_path: Path, next_hop: HostPort, **policy: Any) -> Settings:
+    base = Settings(state_dir=tmp_path / "state")
+    return dataclasses.replace(
+        base,
+        smtp=SmtpSettings(listen=HostPort("127.0.0.1", 0), hostname="filter.harbourlane.example"),
+        next_hop=dataclasses.replace(base.next_hop, address=next_hop),
+        policy=PolicySettings(**policy),
+    )
+
+
+def free_port() -> int:
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+def port_is_free(port: int) -> bool:
+    """Nothing listens on the port (connections closing in TIME_WAIT do not count)."""
+    with socket.socket() as probe:
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        try:
+            probe.bind(("127.0.0.1", port))
+        except OSError:
+            return False
+        return True
+
+
+def send(address: HostPort, raw: bytes = MESSAGE) -> Any:
+    with smtplib.SMTP(address.host, address.port, timeout=30) as client:
+        return client.sendmail(
+            "priya.raman@harbourlane.example", ["maren.okafor@harbourlane.example"], raw
+        )
+
+
+async def test_service_startup_binds_port_zero_and_shuts_down_clean(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    handler, next_hop = sink
+    service = Service(make_settings(tmp_path, next_hop))
+    await service.startup()
+    address = service.smtp_address
+    assert address.port != 0
+    assert (tmp_path / "state" / "model.sqlite3").exists()
+    assert await asyncio.to_thread(send, address) == {}
+    assert handler.received and handler.received[0].endswith(MESSAGE.split(b"\r\n\r\n")[1])
+    await service.shutdown(grace=5)
+    assert port_is_free(address.port)
+    assert service.store is None and service.executor is None
+
+
+async def test_service_shutdown_lets_transaction_in_flight_finish(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    handler, next_hop = sink
+    handler.hold = asyncio.Event()
+    service = Service(make_settings(tmp_path, next_hop))
+    await service.startup()
+    sending = asyncio.create_task(asyncio.to_thread(send, service.smtp_address))
+    await handler.data_started.wait()  # the message is now between us and the next hop
+    stopping = asyncio.create_task(service.shutdown(grace=30))
+    for _ in range(5):
+        await asyncio.sleep(0)
+    assert not stopping.done()  # shutdown waits for the transaction
+    handler.hold.set()
+    assert await sending == {}  # the upstream got its 250
+    await stopping
+    assert len(handler.received) == 1
+
+
+async def test_service_shutdown_cuts_off_after_grace_without_a_250(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort], caplog: pytest.LogCaptureFixture
+) -> None:
+    handler, next_hop = sink
+    handler.hold = asyncio.Event()  # the next hop never answers DATA
+    service = Service(make_settings(tmp_path, next_hop))
+    await service.startup()
+    sending = asyncio.create_task(asyncio.to_thread(send, service.smtp_address))
+    await handler.data_started.wait()
+    await service.shutdown(grace=0.1)
+    with pytest.raises(smtplib.SMTPException):
+        await sending  # no 250: the upstream keeps the message and retries
+    assert "1 transactions still running" in caplog.text
+
+
+async def test_service_bad_config_fails_before_binding(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    _, next_hop = sink
+    port = free_port()
+    settings = make_settings(tmp_path, next_hop, suspect_cutoff=0.9, spam_cutoff=0.5)
+    settings = dataclasses.replace(settings, smtp=SmtpSettings(listen=HostPort("127.0.0.1", port)))
+    service = Service(settings)
+    with pytest.raises(ConfigError) as caught:
+        await service.startup()
+    assert caught.value.key == "policy.suspect_cutoff"
+    assert port_is_free(port)
+    assert not (tmp_path / "state").exists()  # not even the database was created
+
+
+async def test_service_unwritable_state_dir_is_a_config_error(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    _, next_hop = sink
+    (tmp_path / "blocker").write_text("a file where a directory should be")
+    settings = make_settings(tmp_path, next_hop)
+    settings = dataclasses.replace(settings, state_dir=tmp_path / "blocker" / "state")
+    with pytest.raises(ConfigError) as caught:
+        await Service(settings).startup()
+    assert caught.value.key == "state_dir"
+
+
+async def test_service_reload_changes_cutoffs(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort], caplog: pytest.LogCaptureFixture
+) -> None:
+    _, next_hop = sink
+    settings = make_settings(tmp_path, next_hop)
+    service = Service(settings)
+    await service.startup()
+    try:
+        address = service.smtp_address
+        newer = dataclasses.replace(
+            settings,
+            policy=PolicySettings(suspect_cutoff=0.3, spam_cutoff=0.8, spam_action="tag"),
+            smtp=SmtpSettings(listen=HostPort("127.0.0.1", 1)),  # needs a restart: not applied
+        )
+        assert service.reload(newer)
+        assert service.judge is not None
+        assert service.judge.policy.spam_cutoff == 0.8
+        assert service.handler.settings.policy.suspect_cutoff == 0.3
+        assert service.smtp_address == address  # still listening where it was
+        assert "smtp take effect only after a restart" in caplog.text
+        bad = dataclasses.replace(settings, policy=PolicySettings(spam_cutoff=7.0))
+        assert not service.reload(bad)
+        assert service.judge.policy.spam_cutoff == 0.8
+    finally:
+        await service.shutdown(grace=5)
+
+
+def write_config(path: Path, next_hop: HostPort, spam_cutoff: float) -> None:
+    path.write_text(
+        f'[smtp]\nlisten = "127.0.0.1:0"\n[next_hop]\naddress = "{next_hop}"\n'
+        f"[policy]\nspam_cutoff = {spam_cutoff}\n",
+        encoding="utf-8",
+    )
+
+
+async def test_service_sighup_rereads_file(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    _, next_hop = sink
+    path = tmp_path / "mailweir.toml"
+    write_config(path, next_hop, 0.95)
+    source = ConfigSource(path, {"MAILWEIR_STATE_DIR": str(tmp_path / "state")}, {})
+    service = Service(source.load(), source)
+    await service.startup()
+    service.install_signal_handlers()
+    try:
+        assert service.judge is not None and service.judge.policy.spam_cutoff == 0.95
+        write_config(path, next_hop, 0.9)
+        os.kill(os.getpid(), signal.SIGHUP)
+        for _ in range(500):
+            if service.judge.policy.spam_cutoff == 0.9:
+                break
+            await asyncio.sleep(0.01)
+        assert service.judge.policy.spam_cutoff == 0.9
+        assert await asyncio.to_thread(send, service.smtp_address) == {}
+    finally:
+        await service.shutdown(grace=5)
+    assert signal.getsignal(signal.SIGHUP) in (signal.SIG_DFL, signal.default_int_handler)
+
+
+async def test_service_sigterm_stops(tmp_path: Path, sink: tuple[SinkHandler, HostPort]) -> None:
+    _, next_hop = sink
+    service = Service(make_settings(tmp_path, next_hop))
+    await service.startup()
+    service.install_signal_handlers()
+    os.kill(os.getpid(), signal.SIGTERM)
+    await asyncio.wait_for(service.wait_for_stop(), 30)
+    await service.shutdown(grace=5)
+
+
+def run_args(*argv: str) -> argparse.Namespace:
+    parser = argparse.ArgumentParser()
+    add_run_arguments(parser)
+    return parser.parse_args(list(argv))
+
+
+def test_run_command_bad_flag_exits_2_naming_key(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setenv("MAILWEIR_STATE_DIR", str(tmp_path))
+    assert run_command(run_args("--listen", "127.0.0.1:99999")) == 2
+    err = capsys.readouterr().err
+    assert "smtp.listen" in err and "99999" in err
+    assert not any(tmp_path.iterdir())
+
+
+def test_run_command_bad_env_exits_2(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setenv("MAILWEIR_STATE_DIR", str(tmp_path))
+    monkeypatch.setenv("MAILWEIR_POLICY_SPAM_ACTION", "reroute")
+    assert run_command(run_args()) == 2
+    assert "policy.spam_action" in capsys.readouterr().err
+
+
+def test_run_command_flags_beat_file_and_env(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = tmp_path / "mailweir.toml"
+    path.write_text('[smtp]\nlisten = "127.0.0.1:1001"\n', encoding="utf-8")
+    monkeypatch.setenv("MAILWEIR_SMTP_LISTEN", "127.0.0.1:1002")
+    args = run_args("--config", str(path), "--listen", "127.0.0.1:1003", "--db", "x.sqlite3")
+    settings = service_module.source_from_args(args).load()
+    assert settings.smtp.listen.port == 1003
+    assert settings.database == "x.sqlite3"
+
+
+def test_run_command_serves_until_sigterm(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, sink_port: int
+) -> None:
+    port = free_port()
+    monkeypatch.setenv("MAILWEIR_STATE_DIR", str(tmp_path))
+    logger = logging.getLogger("mailweir")
+    monkeypatch.setattr(logger, "handlers", [])  # run_command installs its own; undone after
+
+    def stop_when_listening() -> None:
+        for _ in range(3000):
+            try:
+                socket.create_connection(("127.0.0.1", port), timeout=1).close()
+                break
+            except OSError:
+                time.sleep(0.01)
+        os.kill(os.getpid(), signal.SIGTERM)
+
+    stopper = threading.Thread(target=stop_when_listening)
+    stopper.start()
+    try:
+        args = run_args("--listen", f"127.0.0.1:{port}", "--next-hop", f"127.0.0.1:{sink_port}")
+        assert run_command(args) == 0
+    finally:
+        stopper.join()
+        logger.setLevel(logging.NOTSET)
+    assert (tmp_path / "model.sqlite3").exists()
+    assert port_is_free(port)
+
+
+@pytest.fixture
+def sink_port() -> int:
+    return free_port()  # nothing listens there; the test sends no mail
