@@ -216,8 +216,9 @@ class FakeVerdictLog:
 # -- mailweir itself ---------------------------------------------------------------------------
 
 
-def daemon_settings(next_hop: HostPort, **policy: Any) -> Settings:
-    """Small timeouts so failure tests finish quickly; enforce mode unless told otherwise."""
+def daemon_settings(next_hop: HostPort, *, relay_timeout: float = 10.0, **policy: Any) -> Settings:
+    """Enforce mode unless told otherwise.  Relay timeouts are generous so a busy test machine
+    never trips them; tests of a slow next hop pass a small ``relay_timeout``."""
     policy.setdefault("mode", "enforce")
     return Settings(
         smtp=SmtpSettings(
@@ -229,9 +230,9 @@ def daemon_settings(next_hop: HostPort, **policy: Any) -> Settings:
         ),
         next_hop=NextHopSettings(
             address=next_hop,
-            connect_timeout=1.0,
-            command_timeout=1.0,
-            data_timeout=1.5,
+            connect_timeout=relay_timeout,
+            command_timeout=relay_timeout,
+            data_timeout=relay_timeout,
             helo_name="filter.harbourlane.example",
         ),
         policy=PolicySettings(**policy),

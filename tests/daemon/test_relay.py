@@ -18,11 +18,12 @@ from smtp_helpers import LOCAL, free_port, silent_server
 
 pytestmark = pytest.mark.timeout(30)
 
-FAST = RelayTimeouts(connect=1.0, command=1.0, data=1.0)
+GENEROUS = RelayTimeouts(connect=10.0, command=10.0, data=10.0)
+SHORT = RelayTimeouts(connect=0.5, command=0.5, data=0.5)
 
 
-def client(address: HostPort) -> NextHopSession:
-    return NextHopSession(address, "filter.harbourlane.example", FAST)
+def client(address: HostPort, timeouts: RelayTimeouts = GENEROUS) -> NextHopSession:
+    return NextHopSession(address, "filter.harbourlane.example", timeouts)
 
 
 @pytest.mark.parametrize(
@@ -93,7 +94,7 @@ async def test_next_hop_session_refused_connection_raises_unavailable():
 
 async def test_next_hop_session_silent_server_times_out_connecting():
     async with silent_server() as address:
-        session = client(address)
+        session = client(address, SHORT)
         with pytest.raises(NextHopUnavailable) as caught:
             await session.start("a@mail.example", MailParameters())
     assert caught.value.reply is replies.NEXT_HOP_DOWN

@@ -43,14 +43,17 @@ async def test_relay_next_hop_down_answers_451(next_hop):
 
 
 async def test_relay_next_hop_silent_at_greeting_answers_451():
-    async with silent_server() as address, running_daemon(daemon_settings(address)) as daemon:
+    async with (
+        silent_server() as address,
+        running_daemon(daemon_settings(address, relay_timeout=0.5)) as daemon,
+    ):
         sent = await send(daemon.port, message())
     assert sent.rcpt == [wire(replies.NEXT_HOP_DOWN)]
 
 
 async def test_relay_next_hop_hangs_at_data_answers_451(next_hop):
     next_hop.behaviour.hang_at_data = True
-    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+    async with running_daemon(daemon_settings(next_hop.address, relay_timeout=0.5)) as daemon:
         sent = await send(daemon.port, message())
     assert sent.data == wire(replies.NEXT_HOP_TIMEOUT)
     assert next_hop.deliveries == []
