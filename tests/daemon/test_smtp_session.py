@@ -105,16 +105,16 @@ async def test_smtp_idle_connection_closed_after_command_timeout(next_hop):
 
 async def test_smtp_slow_upload_not_cut_while_bytes_arrive(next_hop):
     # The command timeout is an idle timeout: a big message arriving slowly is not cut off.
-    settings = with_smtp(daemon_settings(next_hop.address), command_timeout=0.4)
+    settings = with_smtp(daemon_settings(next_hop.address), command_timeout=1.0)
     async with running_daemon(settings) as daemon:
         reader, writer = await asyncio.open_connection(LOCAL, daemon.port)
         writer.write(b"EHLO mx.mail.example\r\nMAIL FROM:<orders@vetsupply.example>\r\n")
         writer.write(f"RCPT TO:<{MAREN}>\r\nDATA\r\n".encode())
         while not (await reader.readline()).startswith(b"354"):
             pass
-        for _ in range(6):  # 6 x 0.15 s, longer than the 0.4 s timeout in total
+        for _ in range(8):  # 8 x 0.3 s, well past the 1 s timeout in total
             writer.write(b"Subject: slow\r\n")
-            await asyncio.sleep(0.15)
+            await asyncio.sleep(0.3)
         writer.write(b"\r\nbody\r\n.\r\n")
         assert (await reader.readline()).startswith(b"250 ")
         writer.close()
