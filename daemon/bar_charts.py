@@ -54,7 +54,7 @@ class _Frame:
         return self.plot_w / max(self.n, 1)
 
     def x(self, index: float) -> float:
-        return MARGIN_LEFT + index * self.slot
+        return float(MARGIN_LEFT) + index * self.slot
 
     def y(self, value: float) -> float:
         return MARGIN_TOP + self.plot_h - value / self.y_max * self.plot_h

@@ -30,6 +30,7 @@ from collections.abc import Awaitable, Callable, Mapping
 from typing import Any, Final
 
 from aiohttp import web
+from aiohttp.typedefs import Handler
 from mailweir.daemon.feedback_types import (
     FeedbackOutcome,
     FeedbackRequest,
@@ -72,7 +73,7 @@ def _error(status: int, message: str, headers: Mapping[str, str] | None = None) 
 
 
 @web.middleware
-async def _json_errors(request: web.Request, handler: Any) -> web.StreamResponse:
+async def _json_errors(request: web.Request, handler: Handler) -> web.StreamResponse:
     """Answer aiohttp's own HTTP errors (404, 405, 413 ...) as JSON too."""
     try:
         return await handler(request)

@@ -47,7 +47,7 @@ log = logging.getLogger("mailweir.metrics")
 # The ``*_created`` timestamp series prometheus_client adds to each counter and histogram are
 # an OpenMetrics idea that the classic text format only doubles; Prometheus does not need them.
 # The switch is process-wide, which suits a daemon whose only registry is this one.
-disable_created_metrics()
+disable_created_metrics()  # type: ignore[no-untyped-call]  # untyped in the library
 
 BANDS: Final = ("ham", "suspect", "spam")
 ACTIONS: Final = ("pass", "tag", "reroute", "reject")

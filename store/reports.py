@@ -256,7 +256,7 @@ def model_summary(engine: Engine) -> ModelSummary:
         tokens = conn.execute(
             select(func.count()).where((t.c.ham > 0) | (t.c.spam > 0))
         ).scalar_one()
-        totals = dict(conn.execute(select(c.c.label, c.c.messages)).all())
+        totals = {int(k): int(v) for k, v in conn.execute(select(c.c.label, c.c.messages))}
         last = conn.execute(select(func.max(ledger.c.trained_at))).scalar_one()
     return ModelSummary(
         int(tokens),
@@ -264,3 +264,9 @@ def model_summary(engine: Engine) -> ModelSummary:
         int(totals.get(1, 0)),
         None if last is None else float(last),
     )
+
+
+def ping(engine: Engine) -> bool:
+    """True when the database answers a trivial query (for the readiness check)."""
+    with _reading(engine) as conn:
+        return conn.execute(select(1)).scalar_one() == 1

@@ -16,6 +16,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from mailweir.store import ModelStore, reports
+from mailweir.store.engine import make_engine
+from mailweir.store.errors import StoreError
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 from sqlalchemy import Engine
 
@@ -179,3 +181,15 @@ def test_model_summary_after_training(store: ModelStore) -> None:
     assert before <= summary.last_trained_at <= time.time()
     store.untrain(np.array([5], np.int64), digest=b"c" * 16)
     assert reports.model_summary(store.engine).tokens == 4  # token 5 is gone from the model
+
+
+def test_ping_answers_true(engine: Engine) -> None:
+    assert reports.ping(engine) is True
+
+
+def test_ping_unreachable_database_raises_store_error(tmp_path: Path) -> None:
+    engine = make_engine(str(tmp_path / "gone" / "model.sqlite3"))
+    (tmp_path / "gone").rmdir()  # make_engine created the folder; SQLite cannot open the file
+    with pytest.raises(StoreError):
+        reports.ping(engine)
+    engine.dispose()
