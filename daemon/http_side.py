@@ -74,7 +74,7 @@ def _error(status: int, message: str, headers: Mapping[str, str] | None = None) 
 
 @web.middleware
 async def _json_errors(request: web.Request, handler: Handler) -> web.StreamResponse:
-    """Answer aiohttp's own HTTP errors (404, 405, 413 ...) as JSON too."""
+    """Answer aiohttp's own HTTP errors (404, 405, 413 ...) and our own failures as JSON."""
     try:
         return await handler(request)
     except web.HTTPException as exc:
@@ -82,6 +82,10 @@ async def _json_errors(request: web.Request, handler: Handler) -> web.StreamResp
             raise
         kept = {k: v for k, v in exc.headers.items() if k in ("Allow", "WWW-Authenticate")}
         return _error(exc.status, _text(exc) or exc.reason, kept)
+    except Exception:
+        # The client gets a short answer; the traceback goes to the log, nothing is lost.
+        log.exception("HTTP %s %s failed", request.method, request.path)
+        return _error(500, "internal error; the daemon log has the details")
 
 
 def _text(exc: web.HTTPException) -> str:

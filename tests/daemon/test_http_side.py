@@ -330,6 +330,19 @@ async def test_http_feedback_store_busy_is_503(side: Side) -> None:
         assert "busy" in (await resp.json())["error"]
 
 
+async def test_http_feedback_unexpected_error_is_json_500_and_logged(
+    side: Side, caplog: pytest.LogCaptureFixture
+) -> None:
+    side.intake.error = RuntimeError("bug in the intake")
+    body = {"tracking_id": "0abc", "kind": "spam"}
+    async with side.session.post(side.url + "/feedback", json=body, headers=side.auth()) as resp:
+        assert resp.status == 500
+        answer = await resp.json()
+    assert "bug in the intake" not in answer["error"]  # no internals to the client
+    logged = [r.exc_info[1] for r in caplog.records if r.exc_info]
+    assert any("bug in the intake" in str(exc) for exc in logged)
+
+
 async def test_http_stop_closes_the_port() -> None:
     http, _, _ = await start_side()
     port = http.port
