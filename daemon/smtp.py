@@ -47,6 +47,16 @@ class VerdictSink(Protocol):
     def add(self, record: Any) -> None: ...
 
 
+class MetricsSink(Protocol):
+    """The parts of daemon/metrics.py's ``Metrics`` the message path calls."""
+
+    relay_seconds: Any  # a prometheus_client Histogram
+
+    def message(self, band: str, action: str, score: float | None = None) -> None: ...
+    def relay_error(self, error: RelayError) -> None: ...
+    def scoring_failure(self) -> None: ...
+
+
 class FilterSession(Session):
     """One upstream connection; ``relay`` is its next-hop client, opened at the first RCPT."""
 
@@ -185,11 +195,13 @@ class FilterHandler:
         judge: JudgeLike,
         verdict_log: VerdictSink | None = None,
         *,
+        metrics: MetricsSink | None = None,
         helo_name: str | None = None,
     ) -> None:
         self.settings = settings
         self.judge = judge
         self.verdict_log = verdict_log
+        self.metrics = metrics
         self.helo_name = (
             helo_name or settings.next_hop.helo_name or settings.smtp.hostname or socket.getfqdn()
         )
@@ -214,6 +226,8 @@ class FilterHandler:
                 answer = await self._forward_recipient(session, envelope, address)
         except RelayError as exc:
             log.warning("next hop: %s", exc)
+            if self.metrics is not None:
+                self.metrics.relay_error(exc)
             if isinstance(exc, NextHopUnavailable) and session.relay is not None:
                 session.relay.abort()  # the dialogue may be out of step; start afresh next time
             envelope.relay_failure = reply_for(exc)
@@ -237,6 +251,7 @@ class FilterHandler:
             server.forget_transaction()
             raise
         self._record(judgement, action, envelope, received_at)
+        self._count(judgement, action)
         return str(reply)
 
     async def handle_EHLO(
@@ -317,14 +332,20 @@ class FilterHandler:
             envelope.rcpt_tos if rerouted else (),
         )
         message = actions.render(raw, decision, fields)
+        started = time.monotonic()
         try:
             if rerouted and not await self._reroute(relay, envelope, len(message)):
                 return judgement, "tempfail", replies.QUARANTINE_REFUSED
             answer = await relay.send(message)
         except RelayError as exc:
             log.warning("%s: next hop: %s", judgement.tracking_id, exc)
+            if self.metrics is not None:
+                self.metrics.relay_error(exc)
             reply = reply_for(exc)
             return judgement, "tempfail" if reply.is_temporary else "refused", reply
+        finally:
+            if self.metrics is not None:
+                self.metrics.relay_seconds.observe(time.monotonic() - started)
         text = f"{answer.text} (mailweir id {judgement.tracking_id})".strip()
         return judgement, decision.action, Reply(250, answer.enhanced or "2.0.0", text)
 
@@ -341,6 +362,13 @@ class FilterHandler:
     def _relay_seconds(self) -> float:
         t = self.timeouts
         return t.connect + 4 * t.command + t.data
+
+    def _count(self, judgement: Judgement, action: str) -> None:
+        if self.metrics is None:
+            return
+        self.metrics.message(judgement.band, action, judgement.score)
+        if judgement.band == "failed":
+            self.metrics.scoring_failure()
 
     def _record(
         self, judgement: Judgement, action: str, envelope: FilterEnvelope, received_at: float

@@ -253,11 +253,12 @@ async def running_daemon(
     settings: Settings,
     judge: FakeJudge | None = None,
     verdict_log: FakeVerdictLog | None = None,
+    metrics: Any = None,
 ) -> AsyncIterator[RunningDaemon]:
     """mailweir's SMTP side on a free port of 127.0.0.1, in this event loop."""
     judge = judge or FakeJudge()
     verdict_log = verdict_log or FakeVerdictLog()
-    handler = FilterHandler(settings, judge, verdict_log)
+    handler = FilterHandler(settings, judge, verdict_log, metrics=metrics)
     connections = Connections(settings.smtp.max_connections)
     server = await create_smtp_server(settings, handler, connections=connections)
     port = server.sockets[0].getsockname()[1]

@@ -213,3 +213,23 @@ async def test_verdict_record_for_relay_failure_says_tempfail(next_hop):
     async with running_daemon(daemon_settings(next_hop.address), verdict_log=log) as daemon:
         await send(daemon.port, message())
     assert [r.action for r in log.records] == ["tempfail"]
+
+
+def sample(metrics, name: str, **labels: str) -> float:
+    value = metrics.registry.get_sample_value(name, labels)
+    return 0.0 if value is None else value
+
+
+async def test_metrics_count_messages_and_relay_failures(next_hop):
+    from mailweir.daemon.metrics import Metrics
+
+    metrics = Metrics()
+    settings = daemon_settings(next_hop.address, spam_action="tag")
+    async with running_daemon(settings, judge=FakeJudge(SPAM), metrics=metrics) as daemon:
+        await send(daemon.port, message())
+        next_hop.behaviour.data_reply = "554 5.6.0 Content refused"
+        await send(daemon.port, message())
+    assert sample(metrics, "mailweir_messages_total", band="spam", action="tag") == 1
+    assert sample(metrics, "mailweir_messages_total", band="spam", action="refused") == 1
+    assert sample(metrics, "mailweir_next_hop_failures_total", kind="permfail") == 1
+    assert sample(metrics, "mailweir_relay_seconds_count") == 2
