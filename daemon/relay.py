@@ -229,7 +229,8 @@ class NextHopSession:
             return
         try:
             with relay_errors():
-                await client.execute_command(b"QUIT", timeout=self.timeouts.command)
+                # The upstream waits for our 221 meanwhile; a polite QUIT is not worth long.
+                await client.execute_command(b"QUIT", timeout=min(self.timeouts.command, 5.0))
         except RelayError as exc:
             log.debug("QUIT to next hop failed: %s", exc)
         finally:
