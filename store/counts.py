@@ -77,6 +77,11 @@ class ModelStore:
         self._checked = float("-inf")
         self._epoch = 0  # advances on every in-memory change; guards cache fills
         self._writers = 0  # write transactions in flight in this process
+        self._lookup_conns: list[Connection] = []
+        postgres = engine.dialect.name == "postgresql"
+        self._autocommit: dict[str, Any] = (
+            {"isolation_level": "AUTOCOMMIT"} if postgres else {NO_BEGIN: True}
+        )
 
     @classmethod
     def open(
@@ -100,6 +105,10 @@ class ModelStore:
         return store
 
     def close(self) -> None:
+        with self._lock:
+            conns, self._lookup_conns = self._lookup_conns, []
+        for conn in conns:
+            conn.close()
         self._engine.dispose()
 
     @property
@@ -155,12 +164,10 @@ class ModelStore:
     @contextmanager
     def _reading(self, *, snapshot: bool = False) -> Iterator[Connection]:
         """A connection for reads: autocommit, or one consistent snapshot when asked."""
-        postgres = self._engine.dialect.name == "postgresql"
-        options: dict[str, Any]
+        options: dict[str, Any] = self._autocommit
         if snapshot:
+            postgres = self._engine.dialect.name == "postgresql"
             options = {"isolation_level": "REPEATABLE READ"} if postgres else {READ_ONLY: True}
-        else:
-            options = {"isolation_level": "AUTOCOMMIT"} if postgres else {NO_BEGIN: True}
         with store_errors(), self._engine.connect() as conn:
             yield conn.execution_options(**options)
 
@@ -226,14 +233,33 @@ class ModelStore:
             return counts
         missing = hashes[~found]
         unique = np.unique(missing)
-        with self._reading() as conn:
-            fetched = self._reader.fetch(conn, unique)
+        with store_errors():
+            fetched = self._fetch(unique)
         with self._lock:
             # A write committing meanwhile may or may not be in what we read: don't cache it.
             if writers == 0 and epoch == self._epoch:
                 self._cache.put(unique, fetched)
         counts[~found] = fetched[np.searchsorted(unique, missing)]
         return counts
+
+    def _fetch(self, unique: TokenHashes) -> TokenCounts:
+        # Each thread keeps one autocommit connection for lookups: checking a connection out
+        # of the pool and back costs more than the query itself.  A failed connection is
+        # dropped, and the next lookup opens a new one.
+        conn = getattr(self._local, "lookup_conn", None)
+        if conn is None:
+            conn = self._engine.connect().execution_options(**self._autocommit)
+            with self._lock:
+                self._lookup_conns.append(conn)
+            self._local.lookup_conn = conn
+        try:
+            return self._reader.fetch(conn, unique)
+        except BaseException:
+            self._local.lookup_conn = None
+            with self._lock:
+                self._lookup_conns.remove(conn)
+            conn.close()
+            raise
 
     def class_count(self) -> ClassCounts:
         """Trained ham and spam messages, shape (2,)."""
@@ -314,7 +340,7 @@ class ModelStore:
             ).all()
             if not rows:
                 return 0
-            gone = np.array(rows, dtype=np.int64).reshape(-1, 3)
+            gone = np.array([tuple(r) for r in rows], dtype=np.int64).reshape(-1, 3)
             hashes, old = gone[:, 0], gone[:, 1:]
             revision = bump_totals(conn, np.zeros(2, dtype=np.int64))
             self._after_commit(

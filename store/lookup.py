@@ -42,15 +42,16 @@ class CountReader:
         counts = np.zeros((len(values), 2), dtype=np.int64)
         if not len(values):
             return counts
-        rows = []
+        # Plain tuples: numpy would probe each SQLAlchemy Row as a mapping, very slowly.
+        rows: list[tuple[int, int, int]] = []
         if self.postgres:
-            rows = conn.exec_driver_sql(_PG_SQL, (values.tolist(),)).fetchall()
+            rows = list(map(tuple, conn.exec_driver_sql(_PG_SQL, (values.tolist(),)).fetchall()))
         else:
             for start in range(0, len(values), self.limit):
                 part = values[start : start + self.limit].tolist()
                 size = _sqlite_bucket(len(part), self.limit)
                 params = tuple(part + [part[0]] * (size - len(part)))
-                rows += conn.exec_driver_sql(self._sqlite_text(size), params).fetchall()
+                rows += map(tuple, conn.exec_driver_sql(self._sqlite_text(size), params).fetchall())
         if rows:
             found = np.array(rows, dtype=np.int64)
             order = np.argsort(values)

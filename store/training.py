@@ -20,7 +20,17 @@ from mailweir.model.types import TokenCounts, TokenHashes
 from mailweir.store import schema
 from mailweir.store.engine import sqlite_variable_limit
 from mailweir.store.errors import StoreBusy
-from sqlalchemy import Connection, bindparam, delete, func, select, update
+from sqlalchemy import (
+    Connection,
+    Dialect,
+    bindparam,
+    delete,
+    func,
+    literal_column,
+    select,
+    text,
+    update,
+)
 from sqlalchemy.dialects import postgresql, sqlite
 
 TrainItem = tuple[TokenHashes, int, bytes, str]  # hashes, label, digest, source
@@ -75,10 +85,17 @@ def _insert_new(conn: Connection, rows: list[dict]) -> set[bytes]:
     """Insert ledger rows unless present; return the digests this transaction inserted."""
     if not rows:
         return set()
-    dialect_insert = postgresql.insert if conn.dialect.name == "postgresql" else sqlite.insert
-    stmt = dialect_insert(schema.ledger).on_conflict_do_nothing(index_elements=["digest"])
+    rows = sorted(rows, key=lambda r: r["digest"])
+    if conn.dialect.name == "sqlite":
+        # BEGIN IMMEDIATE holds the write lock since the ledger was read, so nothing can
+        # conflict; a plain driver executemany skips SQLAlchemy's per-row RETURNING batches.
+        names = ("digest", "label", "trained_at", "source")
+        sql = f"INSERT INTO weir_ledger ({', '.join(names)}) VALUES (?, ?, ?, ?)"
+        conn.exec_driver_sql(sql, [tuple(r[n] for n in names) for r in rows])
+        return {r["digest"] for r in rows}
+    stmt = postgresql.insert(schema.ledger).on_conflict_do_nothing(index_elements=["digest"])
     got: set[bytes] = set()
-    for part in _chunks(sorted(rows, key=lambda r: r["digest"]), 2000):
+    for part in _chunks(rows, 2000):
         result = conn.execute(stmt.returning(schema.ledger.c.digest), part)
         got.update(bytes(row[0]) for row in result)
     return got
@@ -167,10 +184,15 @@ def _plan(
     active = np.flatnonzero(deltas.any(axis=1))
     if not active.size:
         return Plan(results)
-    parts = [np.unique(np.asarray(items[i][0], dtype=np.int64)) for i in active]
-    lengths = np.array([len(p) for p in parts])
-    every = np.concatenate(parts) if parts else np.empty(0, dtype=np.int64)
-    weights = np.repeat(deltas[active], lengths, axis=0)
+    parts = [np.asarray(items[i][0], dtype=np.int64).ravel() for i in active]
+    owner = np.repeat(np.arange(len(active)), [len(p) for p in parts])
+    every = np.concatenate(parts)
+    # A hash repeated within one message counts once (presence): drop repeated (owner, hash).
+    order = np.lexsort((every, owner))
+    every, owner = every[order], owner[order]
+    keep = np.ones(len(every), dtype=np.bool_)
+    keep[1:] = (every[1:] != every[:-1]) | (owner[1:] != owner[:-1])
+    every, weights = every[keep], deltas[active][owner[keep]]
     hashes, inverse = np.unique(every, return_inverse=True)
     delta = np.stack(
         [np.bincount(inverse, weights=weights[:, c], minlength=len(hashes)) for c in (0, 1)],
@@ -183,44 +205,72 @@ def _plan(
 # -- counts ----------------------------------------------------------------------------------
 
 
-def _token_upsert(conn: Connection):  # type: ignore[no-untyped-def]
+def _token_upsert(dialect: Dialect) -> tuple[str, tuple[str, ...] | None]:
+    """The count upsert compiled for *dialect*: SQL text and positional parameter order."""
+    cached = _UPSERT_SQL.get(dialect.name)
+    if cached is not None:
+        return cached
     t = schema.token
-    if conn.dialect.name == "postgresql":
+    if dialect.name == "postgresql":
         stmt, greatest = postgresql.insert(t), func.greatest
     else:
         stmt, greatest = sqlite.insert(t), func.max  # SQLite's two-argument max() is scalar
     stmt = stmt.values(
         hash=bindparam("h"), ham=bindparam("ih"), spam=bindparam("is"), last_seen=bindparam("day")
     )
-    return stmt.on_conflict_do_update(
+    zero = literal_column("0")
+    stmt = stmt.on_conflict_do_update(
         index_elements=[t.c.hash],
         set_={
-            "ham": greatest(t.c.ham + bindparam("dh"), 0),
-            "spam": greatest(t.c.spam + bindparam("ds"), 0),
+            "ham": greatest(t.c.ham + bindparam("dh"), zero),
+            "spam": greatest(t.c.spam + bindparam("ds"), zero),
             "last_seen": stmt.excluded.last_seen,
         },
     )
+    compiled = stmt.compile(dialect=dialect)
+    order = tuple(compiled.positiontup) if compiled.positiontup else None
+    _UPSERT_SQL[dialect.name] = (str(compiled), order)
+    return _UPSERT_SQL[dialect.name]
+
+
+_UPSERT_SQL: dict[str, tuple[str, tuple[str, ...] | None]] = {}
+_UPSERT_COLUMNS = ("h", "ih", "is", "day", "dh", "ds")
 
 
 def apply_counts(conn: Connection, hashes: TokenHashes, delta: TokenCounts, day: int) -> None:
     """Add *delta* (shape (n, 2)) to the tokens' counts; delete rows that reach 0/0.
 
     Counts never go below zero: untraining a token that ``prune`` already removed is a no-op.
+    The upsert runs as one driver ``executemany`` over plain tuples: SQLAlchemy's per-row
+    parameter processing would cost more than SQLite's own work for bulk imports.
     """
     if not len(hashes):
         return
     inserted = np.maximum(delta, 0)
-    rows = [
-        {"h": h, "ih": ih, "is": is_, "dh": dh, "ds": ds, "day": day}
-        for h, (ih, is_), (dh, ds) in zip(
-            hashes.tolist(), inserted.tolist(), delta.tolist(), strict=True
-        )
-    ]
-    conn.execute(_token_upsert(conn), rows)
+    values = {
+        "h": hashes,
+        "ih": inserted[:, 0],
+        "is": inserted[:, 1],
+        "day": np.full(len(hashes), day, dtype=np.int64),
+        "dh": delta[:, 0],
+        "ds": delta[:, 1],
+    }
+    sql, order = _token_upsert(conn.dialect)
+    names = order or _UPSERT_COLUMNS
+    rows: list = list(zip(*(values[name].tolist() for name in names), strict=True))
+    if order is None:  # named parameters (psycopg's pyformat)
+        rows = [dict(zip(names, row, strict=True)) for row in rows]
+    conn.exec_driver_sql(sql, rows)
     shrinking = hashes[(delta < 0).any(axis=1)].tolist()
     t = schema.token
     for part in _chunks(shrinking, chunk_size(conn)):
         conn.execute(delete(t).where(t.c.hash.in_(part), t.c.ham == 0, t.c.spam == 0))
+
+
+_BUMP = text(
+    "UPDATE weir_class_total SET messages = messages + :delta, revision = revision + 1 "
+    "WHERE label = :label RETURNING revision"
+)
 
 
 def bump_totals(conn: Connection, messages: npt.NDArray[np.int64]) -> int:
@@ -229,13 +279,8 @@ def bump_totals(conn: Connection, messages: npt.NDArray[np.int64]) -> int:
     Returns the database revision (sum over both rows) as of this transaction's commit:
     the rows stay locked until then, so no other writer can slip in between.
     """
-    ct = schema.class_total
     revision = 0
     for label in (0, 1):
-        revision += conn.execute(
-            update(ct)
-            .where(ct.c.label == label)
-            .values(messages=ct.c.messages + int(messages[label]), revision=ct.c.revision + 1)
-            .returning(ct.c.revision)
-        ).scalar_one()
+        params = {"delta": int(messages[label]), "label": label}
+        revision += conn.execute(_BUMP, params).scalar_one()
     return revision
