@@ -141,6 +141,8 @@ class FilterSMTP(SMTP):
                 return
             self._connections.protocols.add(self)
             self._counted = True
+        elif isinstance(self.session, FilterSession) and self.session.relay is not None:
+            self.session.relay.abort()  # STARTTLS starts a new session (RFC 3207 section 4.2)
         super().connection_made(transport)
 
     def connection_lost(self, error: Exception | None) -> None:
