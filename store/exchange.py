@@ -183,7 +183,7 @@ def _read_meta(conn: Connection) -> dict[str, str]:
 
 def _class_totals(conn: Connection) -> list[int]:
     c = schema.class_total
-    totals = dict(conn.execute(select(c.c.label, c.c.messages)).all())
+    totals = {int(label): int(n) for label, n in conn.execute(select(c.c.label, c.c.messages))}
     return [int(totals.get(HAM, 0)), int(totals.get(SPAM, 0))]
 
 
@@ -300,7 +300,7 @@ def _flush(conn: Connection, table: Table, rows: list[tuple[Any, ...]]) -> None:
         marks = ", ".join("?" for _ in COLUMNS[table])
         conn.exec_driver_sql(f"INSERT INTO {table.name} ({names}) VALUES ({marks})", rows)
     elif conn.dialect.name == "postgresql" and conn.dialect.driver == "psycopg":
-        dbapi = conn.dialect.dbapi
+        dbapi = conn.dialect.loaded_dbapi
         try:
             with (
                 conn.connection.dbapi_connection.cursor() as cursor,  # type: ignore[union-attr]
@@ -308,7 +308,7 @@ def _flush(conn: Connection, table: Table, rows: list[tuple[Any, ...]]) -> None:
             ):
                 for row in rows:
                     copy.write_row(row)
-        except dbapi.Error as exc:  # type: ignore[union-attr]
+        except dbapi.Error as exc:
             # Raised by the driver itself, outside SQLAlchemy: wrap it the same way.
             raise sa_exc.DBAPIError.instance(f"COPY {table.name}", None, exc, dbapi.Error) from exc
     else:
@@ -372,13 +372,13 @@ def _count(number: int, row: dict[str, Any], key: str) -> int:
 
 
 def _token_row(number: int, row: dict[str, Any]) -> tuple[int, int, int, int]:
-    values = (row["h"], row.get("ham"), row.get("spam"), row.get("seen"))
+    # .get with a default keeps the values typed Any (not Any | None) for the fast path
+    h, ham, spam, seen = row["h"], row.get("ham", -1), row.get("spam", -1), row.get("seen", -1)
     # Fast path for the tens of millions of well-formed lines; the checks below only run
     # to name what is wrong.
-    well_formed = all(type(v) is int for v in values) and min(values[1:]) >= 0
-    if well_formed and _INT64[0] <= values[0] <= _INT64[1]:
-        return values  # type: ignore[return-value]
-    h = values[0]
+    well_typed = type(h) is type(ham) is type(spam) is type(seen) is int
+    if well_typed and ham >= 0 and spam >= 0 and seen >= 0 and _INT64[0] <= h <= _INT64[1]:
+        return (h, ham, spam, seen)
     if not isinstance(h, int) or isinstance(h, bool) or not _INT64[0] <= h <= _INT64[1]:
         raise BadExportFile(number, f'"h" must be a signed 64-bit integer, got {h!r}')
     return (h, _count(number, row, "ham"), _count(number, row, "spam"), _count(number, row, "seen"))
