@@ -29,6 +29,7 @@ import sys
 import tempfile
 import time
 from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -37,7 +38,7 @@ import pytest
 pytestmark = pytest.mark.slow
 
 ROOT = Path(__file__).resolve().parents[2]
-SNIPPETS = ROOT / "deploy" / "postfix" / "after-queue"
+POSTFIX_SNIPPETS = ROOT / "deploy" / "postfix"
 POSTFIX = shutil.which("postfix") or "/usr/sbin/postfix"
 SNIPPET_LISTEN_PORT, SNIPPET_NEXT_HOP_PORT = 7125, 7126  # as written in the snippets
 QUARANTINE = "quarantine@harbourlane.example"
@@ -76,8 +77,8 @@ virtual_minimum_uid = 1
 """
 # Test-only master.cf: the public smtpd on a free port, and the services Postfix needs, all
 # outside a chroot (the instance directory holds none of the files a chroot would need).
+FRONT_SMTPD = "127.0.0.1:{front} inet n - n - - smtpd\n"  # after the queue: a plain smtpd
 BASE_MASTER_CF = """\
-127.0.0.1:{front} inet n - n - - smtpd
 pickup    unix  n       -       n       60      1       pickup
 cleanup   unix  n       -       n       -       0       cleanup
 qmgr      unix  n       -       n       300     1       qmgr
@@ -179,6 +180,7 @@ def _stop(process: subprocess.Popen[bytes], sig: int = signal.SIGTERM) -> None:
 
 @dataclass
 class Instance:
+    position: str  # "after-queue" or "before-queue"
     root: Path
     front: int  # Postfix's public smtpd
     filter: int  # mailweir
@@ -212,23 +214,31 @@ def _skip_unless_postfix_can_run() -> None:
         pytest.skip("the postfix user does not exist (the postfix package is incomplete)")
 
 
-def _write_postfix_config(root: Path, ports: dict[str, int]) -> None:
-    def ours(text: str) -> str:  # the snippets exactly, with the test's free ports
+def _write_postfix_config(root: Path, position: str, ports: dict[str, int]) -> None:
+    def ours(name: str) -> str:  # the snippets exactly, with the test's free ports
+        path = POSTFIX_SNIPPETS / position / name
+        text = path.read_text() if path.exists() else ""
         for snippet_port, port in (
             (SNIPPET_LISTEN_PORT, ports["filter"]),
             (SNIPPET_NEXT_HOP_PORT, ports["back"]),
         ):
             text = re.sub(rf"(127\.0\.0\.1\]?):{snippet_port}\b", rf"\g<1>:{port}", text)
         assert not re.search(rf":({SNIPPET_LISTEN_PORT}|{SNIPPET_NEXT_HOP_PORT})\b", text)
+        # Before the queue the snippet's public "smtp inet" service (port 25) listens on the
+        # test's free port instead.
+        text, public = re.subn(
+            r"^smtp(\s+inet\s)", rf"127.0.0.1:{ports['front']}\1", text, flags=re.MULTILINE
+        )
+        assert public == (1 if position == "before-queue" and name == "master.cf" else 0)
         return text
 
     nobody = pwd.getpwnam("nobody")
     conf = root / "conf"
     conf.mkdir()
     main_cf = BASE_MAIN_CF.format(root=root, uid=nobody.pw_uid, gid=nobody.pw_gid)
-    (conf / "main.cf").write_text(main_cf + "\n" + ours((SNIPPETS / "main.cf").read_text()))
-    master_cf = BASE_MASTER_CF.format(front=ports["front"])
-    (conf / "master.cf").write_text(master_cf + "\n" + ours((SNIPPETS / "master.cf").read_text()))
+    (conf / "main.cf").write_text(main_cf + "\n" + ours("main.cf"))
+    front = FRONT_SMTPD.format(front=ports["front"]) if position == "after-queue" else ""
+    (conf / "master.cf").write_text(front + BASE_MASTER_CF + "\n" + ours("master.cf"))
     (conf / "mailboxes").write_text(
         "".join(f"{name}@harbourlane.example {name}/\n" for name in MAILBOXES)
     )
@@ -247,14 +257,16 @@ def _train(db: Path, scratch: Path) -> None:
     assert main(["train", "--spam", str(spam), "--db", str(db), "--json"]) == 0
 
 
-@pytest.fixture
-def instance(capsys: pytest.CaptureFixture[str]) -> Iterator[Instance]:
+@contextmanager
+def _running(position: str, capsys: pytest.CaptureFixture[str]) -> Iterator[Instance]:
+    """Postfix with the snippets for ``position``, and mailweir behind or inside it."""
     _skip_unless_postfix_can_run()
     # Under /tmp, traversable by the postfix and nobody users (pytest's tmp_path is not).
     root = Path(tempfile.mkdtemp(prefix="mailweir-postfix-", dir="/tmp"))
     root.chmod(0o755)
     ports = {name: _free_port() for name in ("front", "filter", "back")}
     inst = Instance(
+        position,
         root,
         ports["front"],
         ports["filter"],
@@ -263,7 +275,7 @@ def instance(capsys: pytest.CaptureFixture[str]) -> Iterator[Instance]:
         root / "mailweir.log",
         root / "state" / "model.sqlite3",
     )
-    _write_postfix_config(root, ports)
+    _write_postfix_config(root, position, ports)
     conf = str(root / "conf")
     check = subprocess.run(
         [POSTFIX, "-c", conf, "check"], capture_output=True, text=True, timeout=WAIT
@@ -303,25 +315,38 @@ def instance(capsys: pytest.CaptureFixture[str]) -> Iterator[Instance]:
         shutil.rmtree(root, ignore_errors=True)
 
 
+@pytest.fixture
+def after_queue(capsys: pytest.CaptureFixture[str]) -> Iterator[Instance]:
+    with _running("after-queue", capsys) as inst:
+        yield inst
+
+
+@pytest.fixture
+def before_queue(capsys: pytest.CaptureFixture[str]) -> Iterator[Instance]:
+    with _running("before-queue", capsys) as inst:
+        yield inst
+
+
 def _start_mailweir(inst: Instance) -> subprocess.Popen[bytes]:
     env = {k: v for k, v in os.environ.items() if not k.startswith("MAILWEIR_")}
     env.update(
         {  # test-only policy on top of the snippet's mailweir.toml
             "MAILWEIR_POLICY_MODE": "enforce",
             "MAILWEIR_POLICY_HAM_ACTION": "tag",
-            "MAILWEIR_POLICY_SPAM_ACTION": "reroute",
-            "MAILWEIR_POLICY_QUARANTINE_MAILBOX": QUARANTINE,
             "MAILWEIR_POLICY_MIN_TRAINED": "10",
             "MAILWEIR_SMTP_HOSTNAME": "filter.harbourlane.example",
         }
     )
+    if inst.position == "after-queue":  # before the queue the snippet's "reject" stays
+        env["MAILWEIR_POLICY_SPAM_ACTION"] = "reroute"
+        env["MAILWEIR_POLICY_QUARANTINE_MAILBOX"] = QUARANTINE
     command = [
         sys.executable,
         "-m",
         "mailweir.daemon.cli",
         "run",
         "--config",
-        str(SNIPPETS / "mailweir.toml"),
+        str(POSTFIX_SNIPPETS / inst.position / "mailweir.toml"),
         "--listen",
         f"127.0.0.1:{inst.filter}",
         "--next-hop",
@@ -352,7 +377,8 @@ def _read(path: Path) -> email.message.EmailMessage:
 # -- the tests ------------------------------------------------------------------------------
 
 
-def test_postfix_after_queue_delivers_ham_tagged_and_intact(instance: Instance) -> None:
+def test_postfix_after_queue_delivers_ham_tagged_and_intact(after_queue: Instance) -> None:
+    instance = after_queue
     long_line = "Weights for the dog-food order: " + "12.5kg, " * 200  # > 998 characters
     body = f"{HAM_LINES[1]}\r\n{HAM_LINES[4]}\r\n{long_line}"
     raw = _message("jo.hartley@mail.example", "tobias@harbourlane.example", "Fridge space", body)
@@ -371,7 +397,8 @@ def test_postfix_after_queue_delivers_ham_tagged_and_intact(instance: Instance) 
     assert instance.delivered("quarantine") == []
 
 
-def test_postfix_after_queue_reroutes_spam_to_quarantine(instance: Instance) -> None:
+def test_postfix_after_queue_reroutes_spam_to_quarantine(after_queue: Instance) -> None:
+    instance = after_queue
     body = "\r\n".join(SPAM_LINES[:4])
     raw = _message("offers@prize-centre.invalid", "priya@harbourlane.example", "WINNER", body)
     _submit(instance, "priya@harbourlane.example", raw)
@@ -384,3 +411,29 @@ def test_postfix_after_queue_reroutes_spam_to_quarantine(instance: Instance) -> 
     assert "priya@harbourlane.example" in message["Mailweir-Original-Recipients"]
     assert message["Subject"] == "WINNER"
     assert instance.delivered("priya") == []
+
+
+def test_postfix_before_queue_delivers_ham_tagged(before_queue: Instance) -> None:
+    body = f"{HAM_LINES[0]}\r\n{HAM_LINES[3]}"
+    raw = _message("jo.hartley@mail.example", "tobias@harbourlane.example", "Rota", body)
+    _submit(before_queue, "tobias@harbourlane.example", raw)
+    _wait_for(
+        "delivery to tobias", lambda: bool(before_queue.delivered("tobias")), before_queue.logs
+    )
+    (path,) = before_queue.delivered("tobias")
+    message = _read(path)
+    assert message["Mailweir-Verdict"].startswith("ham"), before_queue.logs()
+    assert path.read_bytes().split(b"\n\n", 1)[1] == (body + "\r\n").replace("\r\n", "\n").encode()
+
+
+def test_postfix_before_queue_refuses_spam_in_the_session(before_queue: Instance) -> None:
+    # RFC 3463: 5.7.1 "delivery not authorized, message refused"; the code our reject uses.
+    body = "\r\n".join(SPAM_LINES[1:5])
+    raw = _message("offers@prize-centre.invalid", "priya@harbourlane.example", "Prize", body)
+    with pytest.raises(smtplib.SMTPDataError) as refused:
+        _submit(before_queue, "priya@harbourlane.example", raw)
+    assert refused.value.smtp_code == 550, before_queue.logs()
+    assert refused.value.smtp_error.startswith(b"5.7.1"), refused.value.smtp_error
+    # Refused means not queued: nothing may reach any mailbox.
+    assert before_queue.delivered("priya") == []
+    assert before_queue.delivered("quarantine") == []
