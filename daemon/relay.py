@@ -111,6 +111,10 @@ def error_for_answer(code: int, message: str) -> RelayError:
 
 
 def _address(address: str, utf8: bool) -> bytes:
+    """An address in angle brackets; aiosmtpd reports the null reverse-path of bounces
+    (RFC 5321 section 4.5.5) as "<>", which must stay "<>"."""
+    if address in ("", "<>"):
+        return b"<>"
     # surrogateescape gives back exactly the bytes aiosmtpd received.
     return f"<{address}>".encode("utf-8" if utf8 else "ascii", "surrogateescape")
 

@@ -258,3 +258,11 @@ async def test_smtp_pipelined_commands_answered_in_order(next_hop):
     codes = [answer[:3] for answer in answers]
     assert codes == [b"250", b"250", b"250", b"250", b"354", b"250", b"221"]
     assert next_hop.deliveries[0].content == message()
+
+
+async def test_relay_null_sender_of_a_bounce(next_hop):
+    # RFC 5321 section 4.5.5: delivery status notifications come from the null reverse-path.
+    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+        sent = await send(daemon.port, message(), sender="")
+    assert sent.data is not None and sent.data[0] == 250
+    assert next_hop.deliveries[0].mail_from == "<>"  # aiosmtpd's spelling of the empty path
