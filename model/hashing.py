@@ -1,0 +1,99 @@
+"""Token strings to the 64-bit hashes the model counts, and a message's ledger identity.
+
+Hashes come from BLAKE2b, never Python's ``hash()``: that one is salted per process, and the
+counts stored in the database must mean the same token in every process and on every host.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from hashlib import blake2b
+
+import numpy as np
+
+from .types import TokenHashes
+
+_CACHE_LIMIT = 200_000
+# Token -> 8-byte digest.  Constructing a blake2b object costs about a microsecond, several
+# times more than the rest of tokenizing a common word; most words recur from message to
+# message, so a bounded cache makes hashing cheap.  Cleared when full (no eviction order kept);
+# only single dict operations touch it, so threads sharing it cannot break each other.
+_digest_cache: dict[str, bytes] = {}
+
+
+def _digest8(token: str) -> bytes:
+    # Lone surrogates (never produced by the tokenizer) hash instead of raising.
+    return blake2b(token.encode("utf-8", "surrogatepass"), digest_size=8).digest()
+
+
+def token_hash(token: str) -> int:
+    """Return the signed 64-bit hash of one token.
+
+    Parameters
+    ----------
+    token : str
+        The token string.
+
+    Returns
+    -------
+    int
+        BLAKE2b (8-byte digest) of the token's UTF-8 bytes read as a little-endian signed
+        integer, so it lies in [-2**63, 2**63) and fits SQL BIGINT.
+    """
+    return int.from_bytes(_digest8(token), "little", signed=True)
+
+
+def hash_tokens(tokens: Iterable[str]) -> TokenHashes:
+    """Hash tokens into a sorted array of unique signed 64-bit values.
+
+    Parameters
+    ----------
+    tokens : iterable of str
+        Token strings; duplicates are allowed.
+
+    Returns
+    -------
+    TokenHashes, shape (n,)
+        ``np.int64`` hashes (``token_hash`` of each token), unique and sorted ascending.
+    """
+    tokens = list(tokens)
+    digests = list(map(_digest_cache.get, tokens))
+    if None in digests:
+        if len(_digest_cache) > _CACHE_LIMIT:
+            _digest_cache.clear()
+        for index, digest in enumerate(digests):
+            if digest is None:
+                digests[index] = _digest_cache[tokens[index]] = _digest8(tokens[index])
+    joined = b"".join(digests)  # type: ignore[arg-type]  # no None left
+    hashes = np.frombuffer(joined, dtype="<i8").astype(np.int64)
+    return _sorted_unique(hashes)
+
+
+def _sorted_unique(values: TokenHashes) -> TokenHashes:
+    # Sort and drop repeats; cheaper than np.unique for the few hundred values of a message.
+    values.sort()
+    if len(values) > 1:
+        keep = np.empty(len(values), dtype=bool)
+        keep[0] = True
+        np.not_equal(values[1:], values[:-1], out=keep[1:])
+        values = values[keep]
+    return values
+
+
+def message_digest(hashes: TokenHashes) -> bytes:
+    """Return the 16-byte identity of a message from its token hashes.
+
+    Parameters
+    ----------
+    hashes : TokenHashes, shape (n,)
+        The message's token hashes in any order; duplicates are allowed.
+
+    Returns
+    -------
+    bytes
+        BLAKE2b (16-byte digest) of the sorted unique hashes as little-endian int64 bytes.
+        Sorting and de-duplicating first makes it independent of order; since the tokenizer
+        never reads our own header fields, adding them does not change the identity.
+    """
+    canonical = _sorted_unique(np.array(hashes, dtype=np.int64)).astype("<i8")
+    return blake2b(canonical.tobytes(), digest_size=16).digest()
