@@ -332,3 +332,25 @@ def test_exchange_move_sqlite_to_postgres(
     finally:
         moved.close()
     assert json.loads(back.getvalue().splitlines()[-1])["end"] == FORMAT
+
+
+def test_exchange_commands_pipe_through_standard_streams(
+    trained: ModelStore,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # `mailweir export | mailweir import -`: the data on stdout, the summary on stderr.
+    assert _run(["export", "--db", str(trained.engine.url.database)]) == 0
+    captured = capsys.readouterr()
+    assert json.loads(captured.out.splitlines()[0])["format"] == FORMAT
+    assert "tokens:" in captured.err
+    monkeypatch.setattr("sys.stdin", io.StringIO(captured.out))
+    target = tmp_path / "piped.sqlite3"
+    assert _run(["import", "-", "--db", str(target), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["spam"] == 3
+    piped = ModelStore.open(str(target))
+    try:
+        assert _tables(piped) == _tables(trained)
+    finally:
+        piped.close()
