@@ -12,6 +12,7 @@ Every aiosmtplib or socket error is mapped into the error tree by :func:`relay_e
 from __future__ import annotations
 
 import logging
+import re
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -24,6 +25,10 @@ from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import HostPort, NextHopSettings
 
 log = logging.getLogger(__name__)
+
+# aiosmtplib refuses to put these on a command line (and rightly: CR and LF would inject
+# commands), so an address carrying one is refused here with a proper reply.
+_CONTROL = re.compile(r"[\x00-\x1f\x7f]")
 
 # Our header fields make the relayed message a little larger than the SIZE the upstream
 # declared (RFC 1870 section 6: the declared size is the client's estimate); this much room is
@@ -110,13 +115,14 @@ def error_for_answer(code: int, message: str) -> RelayError:
     return NextHopUnavailable(f"unexpected answer {code} {message}", replies.NEXT_HOP_LOST)
 
 
-def _address(address: str, utf8: bool) -> bytes:
-    """An address in angle brackets; aiosmtpd reports the null reverse-path of bounces
-    (RFC 5321 section 4.5.5) as "<>", which must stay "<>"."""
+def _address(address: str) -> bytes:
+    """An address in angle brackets, as the bytes the upstream sent (aiosmtpd decodes them as
+    UTF-8 with surrogateescape); a non-ASCII address without SMTPUTF8 is the next hop's to
+    judge.  aiosmtpd reports the null reverse-path of bounces (RFC 5321 section 4.5.5) as "<>",
+    which must stay "<>"."""
     if address in ("", "<>"):
         return b"<>"
-    # surrogateescape gives back exactly the bytes aiosmtpd received.
-    return f"<{address}>".encode("utf-8" if utf8 else "ascii", "surrogateescape")
+    return f"<{address}>".encode("utf-8", "surrogateescape")
 
 
 class NextHopSession:
@@ -128,7 +134,6 @@ class NextHopSession:
         self.timeouts = timeouts
         self._client: aiosmtplib.SMTP | None = None
         self._in_transaction = False
-        self._utf8 = False
 
     @property
     def connected(self) -> bool:
@@ -164,11 +169,13 @@ class NextHopSession:
             if not client.supports_extension("smtputf8"):
                 raise NextHopUnavailable("next hop lacks SMTPUTF8", replies.NEXT_HOP_NO_SMTPUTF8)
             options.append(b"SMTPUTF8")
-        self._utf8 = params.smtputf8
+        if _CONTROL.search(sender):
+            bad = replies.BAD_SENDER_SYNTAX
+            raise NextHopRejected(bad.code, bad.enhanced, bad.text)
         with relay_errors():
             answer = await client.execute_command(
                 b"MAIL",
-                b"FROM:" + _address(sender, self._utf8),
+                b"FROM:" + _address(sender),
                 *options,
                 timeout=self.timeouts.command,
             )
@@ -182,9 +189,11 @@ class NextHopSession:
         Raises :class:`RelayError` only when the connection itself failed.
         """
         client = self._require_client()
+        if _CONTROL.search(address):
+            return replies.BAD_RECIPIENT_SYNTAX
         with relay_errors():
             answer = await client.execute_command(
-                b"RCPT", b"TO:" + _address(address, self._utf8), timeout=self.timeouts.command
+                b"RCPT", b"TO:" + _address(address), timeout=self.timeouts.command
             )
         if answer.code == 421:  # the next hop is closing the channel, not refusing a recipient
             raise error_for_answer(answer.code, answer.message)

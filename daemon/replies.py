@@ -93,6 +93,11 @@ TOO_MANY_CONNECTIONS = Reply(421, "4.3.2", "Too many connections, try again late
 # RFC 5321 section 4.2.3 (552 "exceeded storage allocation"); RFC 3463 section 3.4,
 # X.3.4 "Message too big for system".
 MESSAGE_TOO_BIG = Reply(552, "5.3.4", "Message too big")
+# RFC 5321 section 4.2.3 (553 "mailbox name not allowed"); RFC 3463 section 3.2,
+# X.1.3 "Bad destination mailbox address syntax" (X.1.7 for the sender): an address holding
+# control characters, which no SMTP command line may carry (RFC 5321 section 4.1.2).
+BAD_RECIPIENT_SYNTAX = Reply(553, "5.1.3", "Address contains control characters")
+BAD_SENDER_SYNTAX = Reply(553, "5.1.7", "Sender address contains control characters")
 # RFC 5321 section 4.2.3 (550 "mailbox unavailable ... or rejected for policy reasons");
 # RFC 3463 section 3.8, X.7.1 "Delivery not authorized, message refused".
 REJECTED_AS_SPAM = Reply(550, "5.7.1", "Message refused as spam")

@@ -266,3 +266,16 @@ async def test_relay_null_sender_of_a_bounce(next_hop):
         sent = await send(daemon.port, message(), sender="")
     assert sent.data is not None and sent.data[0] == 250
     assert next_hop.deliveries[0].mail_from == "<>"  # aiosmtpd's spelling of the empty path
+
+
+async def test_relay_non_ascii_recipient_without_smtputf8_left_to_next_hop(next_hop):
+    # The next hop decides about an address the client should have declared SMTPUTF8 for;
+    # we pass its bytes on unchanged rather than fail the transaction ourselves.
+    recipient = "tierärztin@harbourlane.example"
+    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+        reader, writer = await asyncio.open_connection(LOCAL, daemon.port)
+        writer.write(b"EHLO mx.mail.example\r\nMAIL FROM:<orders@vetsupply.example>\r\n")
+        writer.write(f"RCPT TO:<{recipient}>\r\nQUIT\r\n".encode())
+        answers = (await reader.read()).split(b"\r\n")
+        writer.close()
+    assert b"250 2.1.5 Recipient ok" in answers

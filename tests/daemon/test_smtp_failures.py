@@ -173,3 +173,36 @@ async def test_handle_exception_answers_451_and_session_goes_on(next_hop):
     assert b"secret" not in failure[1]
     assert refused == {}
     assert len(next_hop.deliveries) == 1
+
+
+async def exchange(port: int, commands: bytes) -> list[bytes]:
+    """Send raw command lines (ending with QUIT) and return every reply line."""
+    reader, writer = await asyncio.open_connection(LOCAL, port)
+    writer.write(b"EHLO mx.mail.example\r\n" + commands)
+    answers = (await reader.read()).split(b"\r\n")
+    writer.close()
+    return answers
+
+
+async def test_relay_recipient_with_control_characters_answers_553(next_hop):
+    # aiosmtplib will not write a control character into a command; a 451 here would have the
+    # upstream retry a hopeless address for days.
+    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+        answers = await exchange(
+            daemon.port,
+            b"MAIL FROM:<orders@vetsupply.example>\r\n"
+            b"RCPT TO:<a\x01b@harbourlane.example>\r\n"
+            b"RCPT TO:<maren.okafor@harbourlane.example>\r\nQUIT\r\n",
+        )
+    assert str(replies.BAD_RECIPIENT_SYNTAX).encode() in answers
+    assert b"250 2.1.5 Recipient ok" in answers
+
+
+async def test_relay_sender_with_control_characters_answers_553(next_hop):
+    async with running_daemon(daemon_settings(next_hop.address)) as daemon:
+        answers = await exchange(
+            daemon.port,
+            b"MAIL FROM:<a\x01b@vetsupply.example>\r\n"
+            b"RCPT TO:<maren.okafor@harbourlane.example>\r\nQUIT\r\n",
+        )
+    assert str(replies.BAD_SENDER_SYNTAX).encode() in answers
