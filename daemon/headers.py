@@ -75,7 +75,8 @@ def prepend_fields(raw: bytes, fields: Iterable[tuple[str, str]]) -> bytes:
     """``raw`` with ``fields`` (name, value) on top, folded, in the message's line ending."""
     eol = _line_ending(raw).decode("ascii")
     block = "".join(fold(name, value, eol) + eol for name, value in fields)
-    return block.encode("utf-8") + raw
+    # surrogateescape: envelope addresses carry the upstream's bytes, valid UTF-8 or not.
+    return block.encode("utf-8", "surrogateescape") + raw
 
 
 def prefix_subject(raw: bytes, prefix: str) -> bytes:
@@ -101,7 +102,8 @@ def prefix_subject(raw: bytes, prefix: str) -> bytes:
 
 def encoded_word(text: str) -> str:
     """RFC 2047 section 4.1 "B" encoded word in UTF-8."""
-    return "=?utf-8?b?" + base64.b64encode(text.encode("utf-8")).decode("ascii") + "?="
+    data = text.encode("utf-8", "replace")  # a lone surrogate becomes "?", never an error
+    return "=?utf-8?b?" + base64.b64encode(data).decode("ascii") + "?="
 
 
 def fold(name: str, value: str, eol: str = "\r\n") -> str:

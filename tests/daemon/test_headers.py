@@ -118,3 +118,14 @@ def test_evidence_text_is_seven_bit_and_decodes_back(token):
     text = headers.evidence_text([(token, 1.25)])
     assert text.isascii()
     assert str(make_header(decode_header(text))).endswith(token)
+
+
+def test_prepend_fields_keeps_undecodable_address_bytes():
+    # aiosmtpd hands over invalid UTF-8 in an address as surrogate escapes.
+    address = b"m\xfcller@harbourlane.example".decode("utf-8", "surrogateescape")
+    out = headers.prepend_fields(b"\r\nbody\r\n", [("Mailweir-Original-Recipients", address)])
+    assert out == b"Mailweir-Original-Recipients: m\xfcller@harbourlane.example\r\n\r\nbody\r\n"
+
+
+def test_evidence_text_survives_lone_surrogates():
+    assert headers.evidence_text([("bad\udcfftoken", 1.0)]).isascii()
