@@ -1,0 +1,131 @@
+"""Unicode clean-up and undoing common word obfuscation.
+
+Everything here works on whole strings with C-level calls (``str.translate``,
+``unicodedata.normalize``, compiled regexes); Python loops run only over the few candidate
+words that mix letters with digits or symbols, or over runs of spaced-apart letters.
+"""
+
+from __future__ import annotations
+
+import re
+import unicodedata
+from collections.abc import Iterable
+from typing import Final
+
+# Code points that render as nothing but split or disguise words: zero-width space/joiners,
+# bidi marks and embeddings/isolates, word joiner and invisible operators, BOM, soft hyphen,
+# combining grapheme joiner, Mongolian vowel separator, Hangul fillers, variation selectors.
+_INVISIBLE_RANGES: Final = (
+    (0x00AD, 0x00AD),
+    (0x034F, 0x034F),
+    (0x061C, 0x061C),
+    (0x115F, 0x1160),
+    (0x17B4, 0x17B5),
+    (0x180B, 0x180F),
+    (0x200B, 0x200F),
+    (0x202A, 0x202E),
+    (0x2060, 0x206F),
+    (0x3164, 0x3164),
+    (0xFE00, 0xFE0F),
+    (0xFEFF, 0xFEFF),
+    (0xFFA0, 0xFFA0),
+    (0xE0000, 0xE007F),
+)
+_INVISIBLE: Final = {cp: None for lo, hi in _INVISIBLE_RANGES for cp in range(lo, hi + 1)}
+
+# Digits and symbols that stand in for letters ("v1agra", "fr€e", "$ave", "h@ppy"); from
+# memory of common obfuscations, no source.
+_LEET: Final = str.maketrans(
+    {"0": "o", "1": "i", "3": "e", "4": "a", "5": "s", "7": "t", "@": "a", "$": "s", "€": "e"}
+    | {"!": "i", "|": "l", "£": "l", "¡": "i"}
+)
+_SEPARATORS: Final = str.maketrans("", "", "-._*+~'`^·•")
+_LEET_CHARS: Final = "01345 7@$€!|£¡".replace(" ", "")
+
+_PLAIN_ALNUM: Final = re.compile(r"\d+[^\W\d_]+|[^\W\d_]+\d")
+# A letter next to a leet character: the sign of a chunk worth de-obfuscating.
+_LEET_NEIGHBOUR: Final = re.compile(
+    r"[^\W\d_][" + re.escape(_LEET_CHARS) + r"]|[" + re.escape(_LEET_CHARS) + r"][^\W\d_]"
+)
+MAX_CHUNK: Final = 40
+_EDGE_PUNCT: Final = "\"'()[]{}<>.,;:?!*«»“”‘’"
+
+# Four or more single letters (or leet characters) separated by spaces or punctuation:
+# "f r e e", "V-I-A-G-R-A", "v.1.a.g.r.a".  Each unit must stand alone (no letter either side).
+_UNIT: Final = r"(?:[^\W_]|[" + re.escape("@$€!|") + r"])"
+_SPACED: Final = re.compile(
+    r"(?<![^\W_])" + _UNIT + r"(?:(?:[ \t.\-_*+~·•]{1,3})" + _UNIT + r"){3,40}(?![^\W_])"
+)
+
+
+def clean_text(text: str) -> tuple[str, bool]:
+    """Drop invisible characters, apply NFKC and case folding.
+
+    Parameters
+    ----------
+    text : str
+        Decoded text.
+
+    Returns
+    -------
+    text : str
+        The cleaned, case-folded text.
+    had_invisible : bool
+        Whether invisible characters were removed (itself a useful signal).
+    """
+    if text.isascii():
+        return text.lower(), False
+    stripped = text.translate(_INVISIBLE)
+    had_invisible = len(stripped) != len(text)
+    return unicodedata.normalize("NFKC", stripped).casefold(), had_invisible
+
+
+def deleet(word: str) -> str:
+    """The letters a leet-spelled word stands for ("fr33" -> "free"), or "" if it is not one.
+
+    A result counts only when it is at least three letters long and differs from the input
+    with separators removed; words with digits that have no letter reading give "", and so do
+    ordinary shapes: a number with a unit ("10am", "5kg") or a name with one trailing digit
+    ("mp3").
+    """
+    core = word.translate(_SEPARATORS)
+    if _PLAIN_ALNUM.fullmatch(core):
+        return ""
+    plain = core.translate(_LEET)
+    if len(plain) < 3 or plain == core or not plain.isalpha():
+        return ""
+    letters = sum(1 for ch in core if ch.isalpha())
+    return plain if letters >= 2 else ""
+
+
+def mixed_chunks(chunks: Iterable[str]) -> list[tuple[str, str]]:
+    """(raw, deobfuscated) pairs for chunks (of at most 40 characters) mixing letters and
+    leet characters.
+
+    ``raw`` is the chunk with surrounding punctuation stripped; ``deobfuscated`` is
+    ``deleet(raw)`` and may be "" (e.g. "mp3", "10am" style words keep only their raw form).
+    """
+    pairs: list[tuple[str, str]] = []
+    for chunk in chunks:
+        if len(chunk) > MAX_CHUNK or not _LEET_NEIGHBOUR.search(chunk):
+            continue
+        raw = chunk.strip(_EDGE_PUNCT)
+        if len(raw) >= 3 and not raw.isalpha():
+            pairs.append((raw, deleet(raw)))
+    return pairs
+
+
+def spaced_words(text: str) -> list[tuple[str, str]]:
+    """(raw, joined) pairs for letters spaced apart ("f r e e" -> ("f r e e", "free")).
+
+    ``raw`` has whitespace runs collapsed to one space.  Runs whose joined form is not a word
+    of at least two letters (dates, phone numbers, list markers) are skipped.
+    """
+    pairs: list[tuple[str, str]] = []
+    for match in _SPACED.finditer(text):
+        raw = " ".join(match.group(0).split())
+        joined = "".join(ch for ch in raw if ch.isalnum() or ch in _LEET_CHARS)
+        word = joined if joined.isalpha() else joined.translate(_LEET)
+        if word.isalpha() and sum(1 for ch in joined if ch.isalpha()) >= 2:
+            pairs.append((raw, word))
+    return pairs

@@ -1,0 +1,177 @@
+"""Splitting cleaned text into word tokens, bucketing numbers, money and long words, and
+orthogonal sparse bigrams.
+
+Body words carry no prefix; everything else this module makes has its own: "num:", "money:",
+"long:", "obf:" (markers of obfuscation) and "osb:" (bigrams).
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Final
+
+from .normalize import mixed_chunks, spaced_words
+
+MIN_WORD: Final = 3
+MAX_WORD: Final = 20
+# Letters, with an inner apostrophe kept ("don't"); CJK scripts are handled apart because
+# they are written without spaces.
+_CJK: Final = "\u3040-\u30ff\u3400-\u4dbf\u4e00-\u9fff\uac00-\ud7af\uf900-\ufaff"
+_WORD: Final = re.compile(r"[^\W\d_" + _CJK + r"]+(?:['’][^\W\d_" + _CJK + r"]+)?")
+_CJK_RUN: Final = re.compile("[" + _CJK + "]{2,}")
+_NUMBER: Final = re.compile(r"(?<![\w.,])\d+(?:[.,]\d+)*")
+_CURRENCY: Final = {"$": "$", "€": "€", "£": "£", "¥": "¥", "usd": "$", "eur": "€", "gbp": "£"}
+_MONEY: Final = re.compile(
+    r"([$€£¥])\s?(\d{1,15}(?:[.,]\d{1,3})*)|(?<![\w.,])(\d{1,15}(?:[.,]\d{1,3})*)\s?"
+    r"([$€£¥]|usd\b|eur\b|gbp\b)"
+)
+_CENTS: Final = re.compile(r"[.,]\d{1,2}$")
+_DIGIT: Final = re.compile(r"\d")
+_CJK_BIGRAMS_PER_RUN: Final = 64
+# Single letters other than the English words "a" and "i" seldom stand alone in prose.
+_RARE_SINGLE_LETTERS: Final = frozenset("bcdefghjklmnopqrstuvwxyz0123456789")
+
+
+def magnitude(digits: int) -> str:
+    """Power-of-ten bucket of a whole number with ``digits`` digits ("0-9", "100-999", ...)."""
+    if digits >= 7:
+        return "1000000+"
+    low = 0 if digits <= 1 else 10 ** (digits - 1)
+    return f"{low}-{10**digits - 1}"
+
+
+def money_tokens(text: str) -> list[str]:
+    """ "money:<symbol>:<magnitude>" for amounts such as "$250", "€ 1.200,00" or "99 usd"."""
+    found: list[str] = []
+    for symbol, amount, amount2, symbol2 in _MONEY.findall(text):
+        currency = _CURRENCY.get(symbol or symbol2, "?")
+        whole = _CENTS.split(amount or amount2)[0]
+        digits = sum(ch.isdigit() for ch in whole)
+        found.append(f"money:{currency}:{magnitude(max(digits, 1))}")
+    return found
+
+
+def number_tokens(text: str) -> list[str]:
+    """ "num:len<d>" for free-standing numbers, d = digit count capped at "12+"."""
+    found = set(_NUMBER.findall(text))
+    lengths = {len(match) - match.count(".") - match.count(",") for match in found}
+    return [f"num:len{n}" if n < 12 else "num:len12+" for n in sorted(lengths)]
+
+
+def long_token(length: int) -> str:
+    """Bucket for a word longer than MAX_WORD: "long:<low>-<high>" in steps of 10."""
+    low = length // 10 * 10
+    return f"long:{low}-{low + 9}" if low < 60 else "long:60+"
+
+
+@dataclass
+class TextTokens:
+    """Tokens of one cleaned text.
+
+    Attributes
+    ----------
+    tokens : list of str
+        Unique tokens in order of first appearance: plain words, long-word buckets, numbers,
+        money, obfuscated words (both the decoded word and the raw form), CJK bigrams.
+    sequence : list of str
+        Plain words in text order, repeats kept (only when asked for; for bigrams).
+    rest : str
+        The distinct whitespace-separated chunks that are not plain words, sorted and joined
+        by spaces: everything a URL, number or obfuscation can be in.
+    """
+
+    tokens: list[str]
+    sequence: list[str]
+    rest: str
+
+
+def split_words(text: str, prefix: str = "", sequence: bool = False) -> TextTokens:
+    """Word tokens of cleaned (case-folded) text.
+
+    Most whitespace-separated chunks of ordinary text are plain words; they are taken as
+    they are, and the regular expressions run only over the distinct remaining chunks
+    (punctuation, digits, symbols), which keeps the common case to a few C-level passes.
+
+    Parameters
+    ----------
+    text : str
+        Output of ``normalize.clean_text``.
+    prefix : str
+        Put before every token ("subj:" for the subject; "" for body text).
+    sequence : bool
+        Also return the words in order with repeats (costs one more pass).
+    """
+    chunks = dict.fromkeys(text.split())
+    alpha = [c for c in chunks if c.isalpha()]
+    others = sorted(chunks.keys() - alpha)  # sorted: the same order in every process
+    rest = " ".join(others)
+    out = dict.fromkeys([w for w in alpha if len(w) >= MIN_WORD])
+    if rest:
+        out.update(dict.fromkeys([w for w in _WORD.findall(rest) if len(w) >= MIN_WORD]))
+    if max(map(len, out), default=0) > MAX_WORD:
+        out = dict.fromkeys([w if len(w) <= MAX_WORD else long_token(len(w)) for w in out])
+    if _DIGIT.search(rest):
+        out.update(dict.fromkeys(number_tokens(rest)))
+    if any(symbol in text for symbol in _CURRENCY):
+        out.update(dict.fromkeys(money_tokens(text)))
+    _add_obfuscated(others, out)
+    if len(chunks.keys() & _RARE_SINGLE_LETTERS) >= 2:  # "f r e e": letters as chunks
+        _add_spaced(text, out)
+    if not text.isascii():
+        for run in _CJK_RUN.findall(text):
+            run = run[: _CJK_BIGRAMS_PER_RUN + 1]
+            out.update(dict.fromkeys(run[i : i + 2] for i in range(len(run) - 1)))
+    out.pop("", None)
+    found = [prefix + token for token in out] if prefix else list(out)
+    order = [w for w in _WORD.findall(text) if MIN_WORD <= len(w) <= MAX_WORD] if sequence else []
+    return TextTokens(found, order, rest)
+
+
+def _add_obfuscated(chunks: list[str], out: dict[str, None]) -> None:
+    for raw, word in mixed_chunks(chunks):
+        if len(raw) <= MAX_WORD:
+            out[raw] = None
+        if word:
+            out[word if len(word) <= MAX_WORD else long_token(len(word))] = None
+            out["obf:leet"] = None
+    separated = [c for c in chunks if len(c) >= 7 and not c.isalnum()]  # "v-i-a-g-r-a"
+    if separated:
+        _add_spaced(" ".join(separated), out)
+
+
+def _add_spaced(text: str, out: dict[str, None]) -> None:
+    for raw, word in spaced_words(text):
+        out[raw] = None
+        out[word if len(word) <= MAX_WORD else long_token(len(word))] = None
+        out["obf:spaced"] = None
+
+
+def osb_pairs(sequence: Sequence[str], window: int) -> list[str]:
+    """Orthogonal sparse bigrams of a word sequence.
+
+    Every word is paired with each of the ``window - 1`` words before it; the token records
+    how many words lie between them: ``"osb:<k>:<earlier> <later>"`` with k = 0 .. window-2
+    (Siefkes et al., "Combining Winnow and Orthogonal Sparse Bigrams for Incremental Spam
+    Filtering", PKDD 2004).  For "buy cheap pills now" and window 3 the pairs are
+    "osb:0:buy cheap", "osb:0:cheap pills", "osb:1:buy pills", "osb:0:pills now",
+    "osb:1:cheap now".
+
+    Parameters
+    ----------
+    sequence : sequence of str, length L
+        Words in text order.
+    window : int
+        Window size N >= 2 (counting both ends).
+
+    Returns
+    -------
+    list of str, length <= L * (N - 1)
+        Pairs in order of their later word, nearest earlier word first.
+    """
+    pairs: list[str] = []
+    for i, later in enumerate(sequence):
+        for k in range(min(window - 1, i)):
+            pairs.append(f"osb:{k}:{sequence[i - 1 - k]} {later}")
+    return pairs
