@@ -33,7 +33,9 @@ class Reply:
     def __str__(self) -> str:
         """The reply as aiosmtpd pushes it; multi-line text becomes "code-" continuation lines
         (RFC 5321 section 4.2.1), each repeating the enhanced code (RFC 2034 section 4)."""
-        lines = [_UNSAFE.sub(" ", line).strip() for line in self.text.splitlines()] or [""]
+        # The next hop's text may hold control characters or undecodable bytes (surrogates).
+        text = self.text.encode("utf-8", "replace").decode("utf-8")
+        lines = [_UNSAFE.sub(" ", line).strip() for line in text.splitlines()] or [""]
         prefix = f"{self.enhanced} " if self.enhanced else ""
         head = [f"{self.code}-{prefix}{line}".rstrip() for line in lines[:-1]]
         return "\r\n".join([*head, f"{self.code} {prefix}{lines[-1]}".rstrip()])

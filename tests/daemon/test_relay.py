@@ -127,3 +127,8 @@ async def test_next_hop_session_resets_an_open_transaction_before_the_next(next_
 async def test_next_hop_session_without_transaction_cannot_send():
     with pytest.raises(NextHopUnavailable):
         await client(HostPort(LOCAL, free_port())).send(b"x\r\n")
+
+
+def test_reply_text_with_undecodable_bytes_still_renders():
+    text = b"Mailbox \xff full".decode("utf-8", "surrogateescape")
+    assert str(replies.Reply(452, "4.2.2", text)) == "452 4.2.2 Mailbox ? full"
