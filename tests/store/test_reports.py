@@ -1,4 +1,5 @@
-"""Reports over a real SQLite store, filled through the store's API (``ModelStore``).
+"""Reports over a real store (SQLite, and PostgreSQL when configured: see conftest.py), filled
+through the store's API (``ModelStore``).
 
 The expected figures are counted by hand from the constructed logs below (the definitions are
 in the docstring of ``store/reports.py``); the score histogram is checked against
@@ -10,7 +11,6 @@ from __future__ import annotations
 import datetime as dt
 import math
 import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -25,13 +25,6 @@ from sqlalchemy import Engine
 NOW = dt.datetime(2026, 11, 20, 12, tzinfo=dt.UTC).timestamp()
 HOUR = 3600.0
 FP, FN, OK = FeedbackKind.FALSE_POSITIVE, FeedbackKind.FALSE_NEGATIVE, FeedbackKind.CONFIRMATION
-
-
-@pytest.fixture
-def store(tmp_path: Path) -> Iterator[ModelStore]:
-    opened = ModelStore.open(str(tmp_path / "model.sqlite3"))
-    yield opened
-    opened.close()
 
 
 @pytest.fixture
