@@ -15,6 +15,7 @@ never blocks the event loop on SQL.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import datetime as dt
 import logging
 import math
@@ -82,7 +83,12 @@ def collect(engine: Engine, policy: PolicySettings, now: float, days: int = DAYS
 
 
 class StatusPage:
-    """Renders the page from the store; ``policy`` is read per request so a reload shows."""
+    """Renders the page from the store; ``policy`` is read per request so a reload shows.
+
+    The store's figures are kept for ``max_age`` seconds and requests arriving meanwhile
+    share one read, so a page left reloading (or many admins at once) cost the database
+    one set of queries per period.
+    """
 
     def __init__(
         self,
@@ -90,21 +96,36 @@ class StatusPage:
         policy: Callable[[], PolicySettings],
         *,
         days: int = DAYS,
+        max_age: float = 10.0,
         clock: Callable[[], float] = time.time,
     ) -> None:
         self._engine = engine
         self._policy = policy
         self._days = days
+        self._max_age = max_age
         self._clock = clock
+        self._lock = asyncio.Lock()
+        self._cached: StatusData | None = None
+        self.reads = 0  # store reads so far (tests, and a hint when tuning max_age)
 
     async def render(self) -> str:
-        policy, now = self._policy(), self._clock()
+        async with self._lock:
+            now = self._clock()
+            data = self._cached
+            if data is None or now - data.generated_at >= self._max_age or data.error:
+                data = await self._read(now)
+                self._cached = data
+        # The policy is cheap and may have been reloaded: always the current one.
+        return render_page(dataclasses.replace(data, policy=self._policy()))
+
+    async def _read(self, now: float) -> StatusData:
+        self.reads += 1
+        policy = self._policy()
         try:
-            data = await asyncio.to_thread(collect, self._engine, policy, now, self._days)
+            return await asyncio.to_thread(collect, self._engine, policy, now, self._days)
         except Exception as exc:
             log.exception("status page: reading the store failed")
-            data = StatusData(now, policy, error=f"{type(exc).__name__}: {exc}")
-        return render_page(data)
+            return StatusData(now, policy, error=f"{type(exc).__name__}: {exc}")
 
 
 # -- formatting ------------------------------------------------------------------------------
