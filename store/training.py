@@ -22,7 +22,6 @@ from mailweir.store.engine import sqlite_variable_limit
 from mailweir.store.errors import StoreBusy
 from sqlalchemy import (
     Connection,
-    Dialect,
     bindparam,
     delete,
     func,
@@ -66,18 +65,20 @@ def _chunks(values: list, size: int) -> list[list]:
 # -- ledger ----------------------------------------------------------------------------------
 
 
+_LOCK_LEDGER = (
+    select(schema.ledger.c.digest, schema.ledger.c.label)
+    .where(schema.ledger.c.digest.in_(bindparam("digests", expanding=True)))
+    .order_by(schema.ledger.c.digest)
+    .with_for_update()  # ignored on SQLite, where BEGIN IMMEDIATE already serialises writers
+)
+
+
 def _lock_ledger(conn: Connection, digests: list[bytes]) -> dict[bytes, int]:
     """Labels of the digests already in the ledger, row-locked until commit (PostgreSQL)."""
-    led = schema.ledger
     known: dict[bytes, int] = {}
     for part in _chunks(sorted(digests), chunk_size(conn)):
-        query = (
-            select(led.c.digest, led.c.label)
-            .where(led.c.digest.in_(part))
-            .order_by(led.c.digest)
-            .with_for_update()
-        )
-        known.update((bytes(d), int(label)) for d, label in conn.execute(query))
+        rows = conn.execute(_LOCK_LEDGER, {"digests": part}).fetchall()
+        known.update((bytes(d), int(label)) for d, label in rows)
     return known
 
 
@@ -205,47 +206,75 @@ def _plan(
 # -- counts ----------------------------------------------------------------------------------
 
 
-def _token_upsert(dialect: Dialect) -> tuple[str, tuple[str, ...] | None]:
-    """The count upsert compiled for *dialect*: SQL text and positional parameter order."""
-    cached = _UPSERT_SQL.get(dialect.name)
-    if cached is not None:
-        return cached
+def _sqlite_upsert() -> tuple[str, tuple[str, ...]]:
+    """The SQLite count upsert, compiled once: SQL text and positional parameter order."""
+    if _UPSERT_SQL:
+        return _UPSERT_SQL[0]
     t = schema.token
-    if dialect.name == "postgresql":
-        stmt, greatest = postgresql.insert(t), func.greatest
-    else:
-        stmt, greatest = sqlite.insert(t), func.max  # SQLite's two-argument max() is scalar
-    stmt = stmt.values(
+    stmt = sqlite.insert(t).values(
         hash=bindparam("h"), ham=bindparam("ih"), spam=bindparam("is"), last_seen=bindparam("day")
     )
     zero = literal_column("0")
     stmt = stmt.on_conflict_do_update(
         index_elements=[t.c.hash],
         set_={
-            "ham": greatest(t.c.ham + bindparam("dh"), zero),
-            "spam": greatest(t.c.spam + bindparam("ds"), zero),
+            # SQLite's two-argument max() is the scalar maximum
+            "ham": func.max(t.c.ham + bindparam("dh"), zero),
+            "spam": func.max(t.c.spam + bindparam("ds"), zero),
             "last_seen": stmt.excluded.last_seen,
         },
     )
-    compiled = stmt.compile(dialect=dialect)
-    order = tuple(compiled.positiontup) if compiled.positiontup else None
-    _UPSERT_SQL[dialect.name] = (str(compiled), order)
-    return _UPSERT_SQL[dialect.name]
+    compiled = stmt.compile(dialect=sqlite.dialect())
+    _UPSERT_SQL.append((str(compiled), tuple(compiled.positiontup or ())))
+    return _UPSERT_SQL[0]
 
 
-_UPSERT_SQL: dict[str, tuple[str, tuple[str, ...] | None]] = {}
-_UPSERT_COLUMNS = ("h", "ih", "is", "day", "dh", "ds")
+_UPSERT_SQL: list[tuple[str, tuple[str, ...]]] = []
+
+# PostgreSQL: three set-based statements over array parameters instead of one row at a time.
+# Existing rows are locked in hash order first (concurrent trainers then queue instead of
+# deadlocking), updated in place, and the remaining new tokens inserted; ON CONFLICT covers a
+# token another transaction inserted meanwhile.
+_PG_UNNEST = "unnest(%(h)s::bigint[], %(dh)s::integer[], %(ds)s::integer[]) AS u(h, dh, ds)"
+_PG_LOCK = "SELECT hash FROM weir_token WHERE hash = ANY(%(h)s::bigint[]) ORDER BY hash FOR UPDATE"
+_PG_UPDATE = (
+    "UPDATE weir_token AS t SET ham = GREATEST(t.ham + u.dh, 0), "
+    "spam = GREATEST(t.spam + u.ds, 0), last_seen = %(day)s "
+    f"FROM {_PG_UNNEST} WHERE t.hash = u.h RETURNING t.hash"
+)
+_PG_INSERT = (
+    "INSERT INTO weir_token (hash, ham, spam, last_seen) "
+    f"SELECT u.h, GREATEST(u.dh, 0), GREATEST(u.ds, 0), %(day)s FROM {_PG_UNNEST} "
+    "WHERE u.dh > 0 OR u.ds > 0 ORDER BY u.h "
+    "ON CONFLICT (hash) DO UPDATE SET ham = weir_token.ham + excluded.ham, "
+    "spam = weir_token.spam + excluded.spam, last_seen = excluded.last_seen"
+)
 
 
 def apply_counts(conn: Connection, hashes: TokenHashes, delta: TokenCounts, day: int) -> None:
     """Add *delta* (shape (n, 2)) to the tokens' counts; delete rows that reach 0/0.
 
-    Counts never go below zero: untraining a token that ``prune`` already removed is a no-op.
-    The upsert runs as one driver ``executemany`` over plain tuples: SQLAlchemy's per-row
-    parameter processing would cost more than SQLite's own work for bulk imports.
+    Counts never go below zero, and a negative delta never creates or touches a row that is
+    not there: untraining a token that ``prune`` already removed is a no-op.
     """
     if not len(hashes):
         return
+    if conn.dialect.name == "postgresql":
+        _apply_counts_pg(conn, hashes, delta, day)
+    else:
+        _apply_counts_sqlite(conn, hashes, delta, day)
+    shrinking = hashes[(delta < 0).any(axis=1)].tolist()
+    t = schema.token
+    for part in _chunks(shrinking, chunk_size(conn)):
+        conn.execute(delete(t).where(t.c.hash.in_(part), t.c.ham == 0, t.c.spam == 0))
+
+
+def _apply_counts_sqlite(
+    conn: Connection, hashes: TokenHashes, delta: TokenCounts, day: int
+) -> None:
+    # One driver executemany over plain tuples: SQLAlchemy's per-row parameter processing
+    # would cost more than SQLite's own work for bulk imports.
+    grows = (delta > 0).any(axis=1)
     inserted = np.maximum(delta, 0)
     values = {
         "h": hashes,
@@ -255,16 +284,50 @@ def apply_counts(conn: Connection, hashes: TokenHashes, delta: TokenCounts, day:
         "dh": delta[:, 0],
         "ds": delta[:, 1],
     }
-    sql, order = _token_upsert(conn.dialect)
-    names = order or _UPSERT_COLUMNS
-    rows: list = list(zip(*(values[name].tolist() for name in names), strict=True))
-    if order is None:  # named parameters (psycopg's pyformat)
-        rows = [dict(zip(names, row, strict=True)) for row in rows]
-    conn.exec_driver_sql(sql, rows)
-    shrinking = hashes[(delta < 0).any(axis=1)].tolist()
-    t = schema.token
-    for part in _chunks(shrinking, chunk_size(conn)):
-        conn.execute(delete(t).where(t.c.hash.in_(part), t.c.ham == 0, t.c.spam == 0))
+    sql, order = _sqlite_upsert()
+    if grows.any():
+        rows = list(zip(*(values[n][grows].tolist() for n in order), strict=True))
+        conn.exec_driver_sql(sql, rows)
+    if not grows.all():  # pure decrements update existing rows only
+        shrink = ~grows
+        conn.exec_driver_sql(
+            "UPDATE weir_token SET ham = max(ham + ?, 0), spam = max(spam + ?, 0) WHERE hash = ?",
+            list(
+                zip(
+                    delta[shrink, 0].tolist(),
+                    delta[shrink, 1].tolist(),
+                    hashes[shrink].tolist(),
+                    strict=True,
+                )
+            ),
+        )
+
+
+def _apply_counts_pg(conn: Connection, hashes: TokenHashes, delta: TokenCounts, day: int) -> None:
+    for start in range(0, len(hashes), 50_000):
+        part, change = hashes[start : start + 50_000], delta[start : start + 50_000]
+        conn.exec_driver_sql(_PG_LOCK, {"h": part.tolist()}).fetchall()
+        params = {
+            "h": part.tolist(),
+            "dh": change[:, 0].tolist(),
+            "ds": change[:, 1].tolist(),
+            "day": day,
+        }
+        updated = np.array(
+            [row[0] for row in conn.exec_driver_sql(_PG_UPDATE, params).fetchall()],
+            dtype=np.int64,
+        )
+        new = ~np.isin(part, updated)
+        if new.any():
+            conn.exec_driver_sql(
+                _PG_INSERT,
+                {
+                    "h": part[new].tolist(),
+                    "dh": change[new, 0].tolist(),
+                    "ds": change[new, 1].tolist(),
+                    "day": day,
+                },
+            )
 
 
 _BUMP = text(
