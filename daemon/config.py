@@ -13,6 +13,7 @@ never fall back silently to a default.
 from __future__ import annotations
 
 import dataclasses
+import ipaddress
 import os
 import tomllib
 import types
@@ -23,7 +24,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from mailweir.daemon.errors import ConfigError
-from mailweir.daemon.settings import HostPort, PolicySettings, Settings
+from mailweir.daemon.settings import FeedbackSettings, HostPort, PolicySettings, Settings
 
 ENV_PREFIX = "MAILWEIR_"
 CONFIG_PATH_ENV = "MAILWEIR_CONFIG"  # the file to read when --config is not given
@@ -217,6 +218,13 @@ def _coerce(key: str, raw: Any, hint: Any, origin: str) -> Any:
         if text and raw:
             return Path(raw)
         raise bad("a non-empty path")
+    if hint == tuple[str, ...]:
+        # A TOML array of strings, or one text of comma-separated items (environment, flags).
+        if text:
+            return tuple(item.strip() for item in raw.split(",") if item.strip())
+        if isinstance(raw, list) and all(isinstance(item, str) for item in raw):
+            return tuple(raw)
+        raise bad("a list of strings")
     if hint is HostPort:
         if text:
             try:
@@ -261,6 +269,7 @@ def validate(settings: Settings) -> None:
     if settings.log.level.lower() not in LOG_LEVELS:
         raise ConfigError("log.level", f"got {settings.log.level!r}; expected one of {LOG_LEVELS}")
     _check_method(settings.model.method)
+    _check_feedback(settings.feedback)
 
 
 def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
@@ -282,6 +291,8 @@ def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
         ("model.max_concurrent_scoring", s.model.max_concurrent_scoring, 1, inf, "at least 1"),
         ("log.verdict_retention_days", s.log.verdict_retention_days, 0, inf, "0 or more days"),
         ("log.verdict_batch_seconds", s.log.verdict_batch_seconds, 1e-3, 3600, "0 < s <= 3600"),
+        ("feedback.rate_limit_per_hour", s.feedback.rate_limit_per_hour, 0, inf, "0 or more"),
+        ("feedback.max_message_bytes", s.feedback.max_message_bytes, 1, inf, "at least 1"),
     ]
 
 
@@ -330,3 +341,25 @@ def _check_method(method: str) -> None:
         make_scorer(method)
     except (KeyError, ValueError) as exc:
         raise ConfigError("model.method", f"got {method!r}; {exc}") from exc
+
+
+def _check_feedback(feedback: FeedbackSettings) -> None:
+    for name in ("spam_address", "ham_address"):
+        address = getattr(feedback, name)
+        if address and (address.count("@") != 1 or address[0] == "@" or address[-1] == "@"):
+            raise ConfigError(f"feedback.{name}", f"got {address!r}; expected local@domain")
+    if feedback.spam_address and feedback.spam_address.lower() == feedback.ham_address.lower():
+        raise ConfigError(
+            "feedback.ham_address",
+            f"got {feedback.ham_address!r}, the same as feedback.spam_address; "
+            "expected two different addresses",
+        )
+    for network in feedback.trusted_networks:
+        try:
+            ipaddress.ip_network(network)
+        except ValueError as exc:
+            raise ConfigError(
+                "feedback.trusted_networks",
+                f"got {network!r} ({exc}); expected networks in CIDR form such as "
+                '"192.0.2.0/24" or "::1/128"',
+            ) from exc

@@ -1,8 +1,8 @@
 """The daemon's settings as typed values.
 
 Every field here is a configuration key: the TOML table is the dataclass name's section
-(``[smtp]``, ``[next_hop]``, ``[policy]``, ``[model]``, ``[http]``, ``[log]``) and the key is the
-field name.  Loading, environment overrides and validation live in ``config.py``.
+(``[smtp]``, ``[next_hop]``, ``[policy]``, ``[model]``, ``[http]``, ``[log]``, ``[feedback]``)
+and the key is the field name.  Loading, environment overrides and validation live in ``config.py``.
 """
 
 from __future__ import annotations
@@ -87,6 +87,18 @@ class LogSettings:
 
 
 @dataclass(frozen=True)
+class FeedbackSettings:
+    # Mail to these addresses is a correction, consumed here and never relayed; empty: off.
+    spam_address: str = ""  # "this should have been spam"
+    ham_address: str = ""  # "this was wanted mail"
+    # Only SMTP clients in these networks may train.  There is no authenticated submission on
+    # the SMTP side (it offers no AUTH), so trust comes from the client address alone.
+    trusted_networks: tuple[str, ...] = ("127.0.0.0/8", "::1/128")
+    rate_limit_per_hour: int = 60  # corrections per envelope sender; 0: no limit
+    max_message_bytes: int = 16 * 1024 * 1024
+
+
+@dataclass(frozen=True)
 class Settings:
     state_dir: Path = Path("/var/lib/mailweir")
     smtp: SmtpSettings = field(default_factory=SmtpSettings)
@@ -95,6 +107,7 @@ class Settings:
     model: ModelSettings = field(default_factory=ModelSettings)
     http: HttpSettings = field(default_factory=HttpSettings)
     log: LogSettings = field(default_factory=LogSettings)
+    feedback: FeedbackSettings = field(default_factory=FeedbackSettings)
 
     @property
     def database(self) -> str:
