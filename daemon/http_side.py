@@ -288,7 +288,7 @@ def _parse_json(body: bytes, client: str) -> FeedbackRequest:
     tracking_id = data.get("tracking_id")
     if not isinstance(tracking_id, str) or not TRACKING_ID.fullmatch(tracking_id):
         raise BadRequest(
-            f"tracking_id must be the id from the message's Mailweir header fields "
+            f"tracking_id must be the id from the message's Mailweir-Id header field "
             f"(1-64 letters, digits, - or _), got {tracking_id!r}"
         )
     correction = _correction(data.get("kind"), "JSON field ")
