@@ -37,7 +37,7 @@ from mailweir.store.training import (
 )
 from mailweir.store.verdicts import FeedbackRecord, VerdictRecord
 from mailweir.store.vocab import VocabularyTracker
-from sqlalchemy import Connection, Engine, delete, func, select
+from sqlalchemy import Connection, Engine, delete, select
 
 # Bulk training flushes a batch once it holds this many token occurrences.
 _BATCH_TOKENS = 300_000
@@ -177,17 +177,22 @@ class ModelStore:
         now = time.monotonic()
         if not force and now - self._checked < self._staleness:
             return
-        ct = schema.class_total
         with self._reading() as conn:
-            rows = conn.execute(select(ct.c.label, ct.c.messages, ct.c.revision)).all()
-        totals = np.zeros(2, dtype=np.int64)
-        for label, messages, _ in rows:
-            totals[label] = messages
-        revision = sum(int(row[2]) for row in rows)
+            revision, totals = self._read_totals(conn)
         with self._lock:
             if revision != self._revision:
                 self._reset(revision, totals)
             self._checked = now
+
+    @staticmethod
+    def _read_totals(conn: Connection) -> tuple[int, ClassCounts]:
+        """The database revision (sum over both class rows) and the class totals."""
+        ct = schema.class_total
+        rows = conn.execute(select(ct.c.label, ct.c.messages, ct.c.revision)).all()
+        totals = np.zeros(2, dtype=np.int64)
+        for label, messages, _ in rows:
+            totals[label] = messages
+        return sum(int(row[2]) for row in rows), totals
 
     def _reset(self, revision: int, totals: ClassCounts) -> None:
         self._cache.clear()
@@ -275,14 +280,13 @@ class ModelStore:
                 return self._vocab.snapshot()
         while True:
             with self._reading(snapshot=True) as conn, conn.begin():
-                revision = conn.execute(select(func.sum(schema.class_total.c.revision))).scalar()
+                revision, totals = self._read_totals(conn)
                 tracker = VocabularyTracker.load(conn)
             with self._lock:
-                if int(revision) < self._revision:
+                if revision < self._revision:
                     continue  # our own commit landed after the snapshot: read again
-                if int(revision) > self._revision:
-                    self._checked = float("-inf")
-                    self._reset(int(revision), self._totals)
+                if revision > self._revision:
+                    self._reset(revision, totals)
                 self._vocab = tracker
                 return tracker.snapshot()
 
@@ -352,7 +356,7 @@ class ModelStore:
 
     def stats(self) -> ModelStats:
         with self._reading() as conn:
-            totals = dict(
+            totals: dict[int, int] = dict(
                 conn.execute(
                     select(schema.class_total.c.label, schema.class_total.c.messages)
                 ).all()

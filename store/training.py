@@ -13,6 +13,7 @@ from __future__ import annotations
 import enum
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -31,6 +32,7 @@ from sqlalchemy import (
     update,
 )
 from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.sql.expression import ColumnElement
 
 TrainItem = tuple[TokenHashes, int, bytes, str]  # hashes, label, digest, source
 _LEDGER_ROUNDS = 10
@@ -82,7 +84,7 @@ def _lock_ledger(conn: Connection, digests: list[bytes]) -> dict[bytes, int]:
     return known
 
 
-def _insert_new(conn: Connection, rows: list[dict]) -> set[bytes]:
+def _insert_new(conn: Connection, rows: list[dict[str, Any]]) -> set[bytes]:
     """Insert ledger rows unless present; return the digests this transaction inserted."""
     if not rows:
         return set()
@@ -134,11 +136,12 @@ def resolve_training(conn: Connection, items: Sequence[TrainItem], now: float) -
             raise ValueError(f"label must be 0 (ham) or 1 (spam), got {label!r}")
         if not isinstance(digest, bytes) or not digest:
             raise ValueError("digest must be non-empty bytes")
-    known = _lock_ledger(conn, list({d for _, _, d, _ in items}))
+    digests: set[bytes] = {item[2] for item in items}
+    known = _lock_ledger(conn, list(digests))
     inserted: set[bytes] = set()
     for _ in range(_LEDGER_ROUNDS):
         results, deltas, final = _simulate(items, known)
-        rows = [
+        rows: list[dict[str, Any]] = [
             {"digest": d, "label": label, "trained_at": now, "source": source}
             for d, (label, source) in final.items()
             if d not in known and d not in inserted
@@ -152,7 +155,7 @@ def resolve_training(conn: Connection, items: Sequence[TrainItem], now: float) -
         known.update(_lock_ledger(conn, lost))
     else:
         raise StoreBusy("ledger kept changing under concurrent training; try again")
-    moved = [
+    moved: list[dict[str, Any]] = [
         {"d": d, "label": label, "source": source}
         for d, (label, source) in final.items()
         if d in known and known[d] != label
@@ -185,7 +188,7 @@ def _plan(
     active = np.flatnonzero(deltas.any(axis=1))
     if not active.size:
         return Plan(results)
-    parts = [np.asarray(items[i][0], dtype=np.int64).ravel() for i in active]
+    parts = [np.asarray(items[int(i)][0], dtype=np.int64).ravel() for i in active]
     owner = np.repeat(np.arange(len(active)), [len(p) for p in parts])
     every = np.concatenate(parts)
     # A hash repeated within one message counts once (presence): drop repeated (owner, hash).
@@ -214,7 +217,7 @@ def _sqlite_upsert() -> tuple[str, tuple[str, ...]]:
     stmt = sqlite.insert(t).values(
         hash=bindparam("h"), ham=bindparam("ih"), spam=bindparam("is"), last_seen=bindparam("day")
     )
-    zero = literal_column("0")
+    zero: ColumnElement[int] = literal_column("0")
     stmt = stmt.on_conflict_do_update(
         index_elements=[t.c.hash],
         set_={

@@ -267,3 +267,14 @@ def test_sqlite_pragmas_applied(tmp_path: Path) -> None:
             assert conn.exec_driver_sql("PRAGMA busy_timeout").scalar() > 0
     finally:
         store.close()
+
+
+def test_vocabulary_load_brings_class_totals_along(open_store: Callable[..., ModelStore]) -> None:
+    reader = open_store(staleness_seconds=3600.0)
+    writer = open_store()
+    writer.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    # The first vocabulary() reads a newer snapshot than the reader's memory: everything
+    # in memory must move to that snapshot together, class totals included.
+    assert reader.vocabulary().size == 2
+    assert reader.class_count().tolist() == [0, 1]
+    assert reader.lookup(hashes_of(1)).tolist() == [[0, 1]]
