@@ -6,7 +6,24 @@ the loop's default thread pool, and an ``asyncio.Semaphore`` caps how many messa
 pipeline at once (``model.max_concurrent_scoring``) so a burst queues instead of piling up
 memory.
 
-Pool choice (measured with ``bench/bench_pool.py``; figures in its docstring): POOL_CHOICE_NOTE
+Pool choice: a process pool (``POOL_KIND``), measured with ``bench/bench_pool.py`` on the
+2-core development machine (Python 3.11, 2 workers, 8 messages in flight, a 10 ms ticker on the
+loop; three alternating rounds each, ranges over the rounds; the machine is shared, so absolute
+figures move between runs, the comparison did not):
+
+    4 KB x 2,000    thread  185-253 msg/s, ticker late: median 2.1-2.8 ms, p99 15-19 ms
+                    process 183-206 msg/s, ticker late: median 1.2-1.4 ms, p99 11-17 ms
+    64 KB x 400     thread   75-99 msg/s,  ticker late: median 4.9-6.5 ms, p99 21-62 ms
+                    process  76-93 msg/s,  ticker late: median 1.0-1.1 ms, p99  6-15 ms
+
+Throughput is a wash (threads at most about 20 % ahead on small messages, and either is far
+beyond what a small organisation receives), but a thread pool shares the GIL with the loop, so
+every connection waits while a message is parsed: median lateness 2-6 times and p99 1.3-4 times
+that of the process pool, growing with message size.  Worker processes also keep a
+pathological message's CPU time off the loop entirely.  What the process pool costs: pickling
+each message to a worker (a memory copy), about 30 MB resident per worker, and a dead worker
+breaking the pool, which :class:`Judge` repairs by replacing it (``executor_factory``).  The
+database lookups stay in threads of the daemon's own process.
 
 ``Judge.judge`` never raises.  Any exception, a locked database included, becomes band
 ``"failed"``; the traceback is logged with the tracking id and the failure counted, and the SMTP
@@ -20,9 +37,11 @@ import base64
 import concurrent.futures
 import functools
 import logging
+import multiprocessing
 import os
 import time
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -36,7 +55,7 @@ from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabula
 log = logging.getLogger("mailweir.judge")
 
 JudgedBand = Literal["ham", "suspect", "spam", "unjudged", "failed"]
-POOL_KIND: Literal["thread", "process"] = "thread"  # see the module docstring
+POOL_KIND: Literal["thread", "process"] = "process"  # see the module docstring
 N_EVIDENCE = 4  # tokens listed each way, for the header and the log
 META_TOKENIZER = "tokenizer"
 META_METHOD = "method"
@@ -98,6 +117,19 @@ def score_step(
     return scorer.score(hashes, counts, class_count, vocabulary, N_EVIDENCE)
 
 
+def make_executor(
+    workers: int, kind: Literal["thread", "process"] = POOL_KIND
+) -> concurrent.futures.Executor:
+    """The pool for the CPU steps, of the kind chosen above."""
+    if kind == "process":
+        # forkserver, not fork: never fork a process that already runs threads and a loop.
+        # Preloading the judge makes each new worker start with the tokenizer imported.
+        context = multiprocessing.get_context("forkserver")
+        context.set_forkserver_preload(["mailweir.daemon.judge"])
+        return concurrent.futures.ProcessPoolExecutor(workers, mp_context=context)
+    return concurrent.futures.ThreadPoolExecutor(workers, thread_name_prefix="mailweir-score")
+
+
 @dataclass(frozen=True)
 class _ModelView:
     class_count: ClassCounts
@@ -113,9 +145,17 @@ class Judge:
         store: Any,
         settings: Settings,
         executor: concurrent.futures.Executor | None = None,
+        *,
+        executor_factory: Callable[[], concurrent.futures.Executor] | None = None,
     ) -> None:
+        """``executor`` runs the CPU steps (None: the loop's default thread pool).  With
+        ``executor_factory`` the judge makes its own and replaces it when it breaks (a process
+        pool whose worker died fails every later call otherwise)."""
         self._store = store
-        self._executor = executor
+        if executor is None and executor_factory is not None:
+            executor = executor_factory()
+        self.executor = executor
+        self._executor_factory = executor_factory
         self._semaphore = asyncio.Semaphore(settings.model.max_concurrent_scoring)
         self._policy = settings.policy
         self.options, self.scorer = _model_identity(store, settings)
@@ -132,23 +172,45 @@ class Judge:
     async def judge(self, raw: bytes) -> Judgement:
         tracking_id = new_tracking_id()
         policy = self._policy  # one policy for the whole message, even across a reload
+        executor = self.executor
         try:
             async with self._semaphore:
-                judgement = await self._judge(tracking_id, raw, policy)
-        except Exception:
+                judgement = await self._judge(tracking_id, raw, policy, executor)
+        except Exception as exc:
             log.exception("scoring failed for message %s", tracking_id)
             judgement = Judgement(tracking_id, "failed", None, (), None)
+            if isinstance(exc, concurrent.futures.BrokenExecutor):
+                self._replace_executor(executor)
         self.counts[judgement.band] += 1
         return judgement
 
-    async def _judge(self, tracking_id: str, raw: bytes, policy: PolicySettings) -> Judgement:
+    def close(self) -> None:
+        """Shut the executor down if the judge made it (waits for steps already running)."""
+        if self._executor_factory is not None and self.executor is not None:
+            self.executor.shutdown(wait=True, cancel_futures=True)
+            self.executor = None
+
+    def _replace_executor(self, broken: concurrent.futures.Executor | None) -> None:
+        if self._executor_factory is None or broken is None or self.executor is not broken:
+            return  # not ours to replace, or another message already replaced it
+        log.error("scoring pool broke (a worker died); starting a new one")
+        self.executor = self._executor_factory()
+        broken.shutdown(wait=False, cancel_futures=True)
+
+    async def _judge(
+        self,
+        tracking_id: str,
+        raw: bytes,
+        policy: PolicySettings,
+        executor: concurrent.futures.Executor | None,
+    ) -> Judgement:
         loop = asyncio.get_running_loop()
-        hashes, texts = await loop.run_in_executor(self._executor, tokenize_step, raw, self.options)
+        hashes, texts = await loop.run_in_executor(executor, tokenize_step, raw, self.options)
         view = await asyncio.to_thread(self._read_model, hashes, policy.min_trained)
         if view.counts is None or view.vocabulary is None:
             return Judgement(tracking_id, "unjudged", None, (), hashes)
         score = await loop.run_in_executor(
-            self._executor,
+            executor,
             functools.partial(
                 score_step, self.scorer, hashes, view.counts, view.class_count, view.vocabulary
             ),

@@ -14,11 +14,10 @@ from __future__ import annotations
 
 import argparse
 import asyncio
-import concurrent.futures
 import dataclasses
+import functools
 import json
 import logging
-import multiprocessing
 import os
 import signal
 import sys
@@ -29,8 +28,8 @@ from typing import Any
 
 from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource, validate
 from mailweir.daemon.errors import ConfigError
-from mailweir.daemon.judge import Judge
-from mailweir.daemon.settings import HostPort, ModelSettings, Settings
+from mailweir.daemon.judge import Judge, make_executor
+from mailweir.daemon.settings import HostPort, Settings
 from mailweir.daemon.verdict_log import VerdictLog
 
 log = logging.getLogger("mailweir.service")
@@ -39,26 +38,12 @@ log = logging.getLogger("mailweir.service")
 RESTART_ONLY = ("state_dir", "smtp", "next_hop", "model", "http")
 
 
-def make_executor(model: ModelSettings) -> concurrent.futures.Executor:
-    """The pool the judge runs CPU steps in; see the pool choice in ``judge.py``."""
-    from mailweir.daemon.judge import POOL_KIND
-
-    if POOL_KIND == "process":
-        # forkserver: never fork a process that already runs threads and an event loop.
-        context = multiprocessing.get_context("forkserver")
-        return concurrent.futures.ProcessPoolExecutor(model.scoring_workers, mp_context=context)
-    return concurrent.futures.ThreadPoolExecutor(
-        model.scoring_workers, thread_name_prefix="mailweir-score"
-    )
-
-
 class Service:
     def __init__(self, settings: Settings, source: ConfigSource | None = None) -> None:
         self.settings = settings
         self._source = source  # re-read on SIGHUP; None: reload() needs explicit settings
         self._stop = asyncio.Event()
         self.store: Any = None
-        self.executor: concurrent.futures.Executor | None = None
         self.judge: Judge | None = None
         self.verdict_log: VerdictLog | None = None
         self.handler: Any = None
@@ -190,9 +175,16 @@ class Service:
             cache_tokens=model.cache_tokens,
             staleness_seconds=model.staleness_seconds,
         )
-        self.executor = make_executor(model)
-        self.judge = Judge(self.store, self.settings, self.executor)
-        self.verdict_log = VerdictLog(self.store, self.settings.log.verdict_batch_seconds)
+        self.judge = Judge(
+            self.store,
+            self.settings,
+            executor_factory=functools.partial(make_executor, model.scoring_workers),
+        )
+        self.verdict_log = VerdictLog(
+            self.store,
+            self.settings.log.verdict_batch_seconds,
+            retention_days=self.settings.log.verdict_retention_days,
+        )
         await self.verdict_log.start()
         self.handler = _make_handler(self.settings, self.judge, self.verdict_log)
 
@@ -200,9 +192,9 @@ class Service:
         if self.verdict_log is not None:
             await self.verdict_log.close()
             self.verdict_log = None
-        if self.executor is not None:
-            self.executor.shutdown(wait=True, cancel_futures=True)
-            self.executor = None
+        if self.judge is not None:
+            await asyncio.to_thread(self.judge.close)
+            self.judge = None
         if self.store is not None:
             await asyncio.to_thread(self.store.close)
             self.store = None

@@ -16,6 +16,7 @@ import asyncio
 import collections
 import contextlib
 import logging
+import time
 from typing import Any
 
 log = logging.getLogger("mailweir.verdict_log")
@@ -24,6 +25,7 @@ log = logging.getLogger("mailweir.verdict_log")
 # is a few hundred MB at worst, the most a daemon should hold through a database outage.
 MAX_PENDING = 100_000
 BATCH_SIZE = 500
+EXPIRE_EVERY = 3600.0  # seconds between sweeps of token hashes past the retention window
 
 
 class VerdictLog:
@@ -33,7 +35,12 @@ class VerdictLog:
         batch_seconds: float,
         batch_size: int = BATCH_SIZE,
         max_pending: int = MAX_PENDING,
+        *,
+        retention_days: float | None = None,
+        expire_every: float = EXPIRE_EVERY,
     ) -> None:
+        """``retention_days``: token hashes older than this are erased from the log (the
+        verdict rows stay, for the rates); checked at start and every ``expire_every`` s."""
         self._store = store
         self._batch_seconds = batch_seconds
         self._batch_size = batch_size
@@ -42,6 +49,9 @@ class VerdictLog:
         self._wake = asyncio.Event()
         self._task: asyncio.Task[None] | None = None
         self._closing = False
+        self._retention_days = retention_days
+        self._expire_every = expire_every
+        self._next_expiry = 0.0  # monotonic time; 0: at the first round
         self.written = 0
         self.dropped = 0
         self.write_failures = 0
@@ -93,6 +103,20 @@ class VerdictLog:
             while self._pending and not self._closing:
                 if not await self._write_batch() or len(self._pending) < self._batch_size:
                     break
+            if self._retention_days is not None and time.monotonic() >= self._next_expiry:
+                self._next_expiry = time.monotonic() + self._expire_every
+                await self._expire()
+
+    async def _expire(self) -> None:
+        assert self._retention_days is not None
+        cutoff = time.time() - self._retention_days * 86400
+        try:
+            erased = await asyncio.to_thread(self._store.expire_verdict_tokens, cutoff)
+        except Exception:
+            log.exception("erasing token hashes past the retention window failed; will retry")
+            return
+        if erased:
+            log.info("erased token hashes of %d verdicts past the retention window", erased)
 
     async def _write_batch(self) -> bool:
         batch = [self._pending.popleft() for _ in range(min(self._batch_size, len(self._pending)))]

@@ -5,7 +5,7 @@ from __future__ import annotations
 import asyncio
 import concurrent.futures
 import dataclasses
-import multiprocessing
+import os
 import threading
 from collections.abc import Iterator
 from pathlib import Path
@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pytest
 from mailweir.daemon import judge as judge_module
-from mailweir.daemon.judge import Judge, band_for, new_tracking_id
+from mailweir.daemon.judge import Judge, band_for, make_executor, new_tracking_id
 from mailweir.daemon.settings import ModelSettings, PolicySettings, Settings
 from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import tokenize
@@ -309,11 +309,29 @@ async def test_judge_concurrency_capped_by_semaphore(monkeypatch: pytest.MonkeyP
 
 @pytest.mark.slow
 async def test_judge_runs_in_a_process_pool() -> None:
-    context = multiprocessing.get_context("forkserver")
-    with concurrent.futures.ProcessPoolExecutor(2, mp_context=context) as pool:
+    with judge_module.make_executor(2, "process") as pool:
         judgement = await Judge(FakeStore(), settings(), pool).judge(NEW_HAM)
     assert judgement.band == "ham"
     assert any(text for text, _ in judgement.evidence)
+
+
+def crash_worker() -> None:
+    os._exit(3)  # a worker dying the hard way (out of memory, a crash in C code)
+
+
+@pytest.mark.slow
+async def test_judge_replaces_a_broken_process_pool() -> None:
+    judge = Judge(FakeStore(), settings(), executor_factory=lambda: make_executor(1, "process"))
+    first = judge.executor
+    assert first is not None
+    assert (await judge.judge(NEW_HAM)).band == "ham"
+    with pytest.raises(concurrent.futures.process.BrokenProcessPool):
+        await asyncio.get_running_loop().run_in_executor(first, crash_worker)
+    assert (await judge.judge(NEW_HAM)).band == "failed"  # the message caught in the break
+    assert judge.executor is not first
+    assert (await judge.judge(NEW_HAM)).band == "ham"  # a fresh pool serves the next one
+    judge.close()
+    assert judge.executor is None
 
 
 async def test_judge_never_lets_cancellation_pass_as_failure() -> None:

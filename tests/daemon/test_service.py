@@ -110,7 +110,7 @@ async def test_service_startup_binds_port_zero_and_shuts_down_clean(
     assert handler.received and handler.received[0].endswith(MESSAGE.split(b"\r\n\r\n")[1])
     await service.shutdown(grace=5)
     assert port_is_free(address.port)
-    assert service.store is None and service.executor is None
+    assert service.store is None and service.judge is None
 
 
 async def test_service_shutdown_lets_transaction_in_flight_finish(

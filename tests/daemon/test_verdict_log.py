@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import threading
+import time
 from typing import Any
 
 import pytest
@@ -20,6 +21,11 @@ class RecordingStore:
         self.gate.set()
         self.entered = threading.Event()
         self.fail_next = 0
+        self.expiries: list[float] = []
+
+    def expire_verdict_tokens(self, older_than: float) -> int:
+        self.expiries.append(older_than)
+        return 3
 
     def record_verdicts(self, records: list[Any]) -> None:
         self.threads.add(threading.get_ident())
@@ -138,3 +144,24 @@ async def test_verdict_log_close_reports_unwritable_records(
     await log.close()
     assert log.dropped == 1
     assert "1 records unwritten" in caplog.text
+
+
+async def test_verdict_log_erases_token_hashes_past_retention() -> None:
+    store = RecordingStore()
+    log = VerdictLog(store, batch_seconds=0.01, retention_days=30, expire_every=3600)
+    await log.start()
+    await wait_until(lambda: bool(store.expiries))
+    await log.close()
+    month = 30 * 86400
+    assert len(store.expiries) == 1  # once at start, then not again within the hour
+    assert time.time() - month - 60 < store.expiries[0] <= time.time() - month
+
+
+async def test_verdict_log_without_retention_never_erases() -> None:
+    store = RecordingStore()
+    log = VerdictLog(store, batch_seconds=0.01)
+    await log.start()
+    log.add("a")
+    await wait_until(lambda: store.records == ["a"])
+    await log.close()
+    assert store.expiries == []
