@@ -45,15 +45,17 @@ class ConfigSource:
     path: Path | None = None
     env: Mapping[str, str] = field(default_factory=lambda: dict(os.environ))
     flags: Mapping[str, str] = field(default_factory=dict)  # dotted key -> text, from the CLI
+    flag_names: Mapping[str, str] = field(default_factory=dict)  # dotted key -> "--flag"
 
     def load(self) -> Settings:
-        return load_settings(self.path, self.env, self.flags)
+        return load_settings(self.path, self.env, self.flags, self.flag_names)
 
 
 def load_settings(
     path: Path | None = None,
     env: Mapping[str, str] | None = None,
     flags: Mapping[str, str] | None = None,
+    flag_names: Mapping[str, str] | None = None,
 ) -> Settings:
     """Build validated settings from a TOML file, the environment and flags (in that order)."""
     values: dict[str, tuple[Any, str]] = {}  # dotted key -> (raw value, where it came from)
@@ -61,9 +63,15 @@ def load_settings(
         values.update(_read_file(Path(path)))
     values.update(_read_env(os.environ if env is None else env))
     for key, text in (flags or {}).items():
-        values[key] = (text, f"command-line flag for {key}")
+        values[key] = (text, f"command-line flag {(flag_names or {}).get(key, key)}")
     settings = _build(values, os.environ if env is None else env)
-    validate(settings)
+    try:
+        validate(settings)
+    except ConfigError as exc:
+        if exc.key not in values:
+            raise
+        origin = values[exc.key][1]
+        raise ConfigError(exc.key, f"{exc.reason} (from {origin})") from exc.__cause__
     return settings
 
 

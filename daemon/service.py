@@ -61,7 +61,15 @@ class Service:
         except BaseException:
             await self._close_parts()
             raise
-        log.info("mailweir listening for SMTP on %s", self.smtp_address)
+        s = self.settings
+        log.info(
+            "mailweir listening for SMTP on %s, relaying to %s; mode %s, position %s; model %s",
+            self.smtp_address,
+            s.next_hop.address,
+            s.policy.mode,
+            s.policy.position,
+            s.database,
+        )
 
     async def wait_for_stop(self) -> None:
         await self._stop.wait()
@@ -302,9 +310,9 @@ FLAG_KEYS = {
 
 def source_from_args(args: argparse.Namespace) -> ConfigSource:
     flags = {key: getattr(args, attr) for attr, key in FLAG_KEYS.items()}
-    return ConfigSource(
-        args.config, dict(os.environ), {k: v for k, v in flags.items() if v is not None}
-    )
+    names = {key: "--" + attr.replace("_", "-") for attr, key in FLAG_KEYS.items()}
+    given = {key: text for key, text in flags.items() if text is not None}
+    return ConfigSource(args.config, dict(os.environ), given, names)
 
 
 def run_command(args: argparse.Namespace) -> int:

@@ -261,3 +261,20 @@ def test_config_empty_tls_means_none(tmp_path: Path) -> None:
 def test_config_parse_host_port(text: str, expected: HostPort) -> None:
     assert parse_host_port(text) == expected
     assert parse_host_port(str(expected)) == expected
+
+
+def test_config_range_error_names_where_the_value_came_from(tmp_path: Path) -> None:
+    env = {"MAILWEIR_POLICY_SPAM_CUTOFF": "1.5", "MAILWEIR_STATE_DIR": str(tmp_path)}
+    with pytest.raises(ConfigError) as caught:
+        load_settings(None, env=env)
+    assert caught.value.key == "policy.spam_cutoff"
+    assert "MAILWEIR_POLICY_SPAM_CUTOFF" in caught.value.reason
+    source = ConfigSource(
+        None,
+        env={},
+        flags={"smtp.listen": "127.0.0.1:70000"},
+        flag_names={"smtp.listen": "--listen"},
+    )
+    with pytest.raises(ConfigError) as caught:
+        source.load()
+    assert "--listen" in caught.value.reason

@@ -256,7 +256,7 @@ def test_run_command_bad_flag_exits_2_naming_key(
     monkeypatch.setenv("MAILWEIR_STATE_DIR", str(tmp_path))
     assert run_command(run_args("--listen", "127.0.0.1:99999")) == 2
     err = capsys.readouterr().err
-    assert "smtp.listen" in err and "99999" in err
+    assert "smtp.listen" in err and "99999" in err and "--listen" in err
     assert not any(tmp_path.iterdir())
 
 
