@@ -313,3 +313,39 @@ def test_run_command_serves_until_sigterm(
 @pytest.fixture
 def sink_port() -> int:
     return free_port()  # nothing listens there; the test sends no mail
+
+
+async def test_service_reload_reaches_messages_on_open_connections(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    handler, next_hop = sink
+    settings = make_settings(tmp_path, next_hop, mode="observe")
+    service = Service(settings)
+    await service.startup()
+    address = service.smtp_address
+
+    def two_messages_one_connection() -> None:
+        with smtplib.SMTP(address.host, address.port, timeout=30) as client:
+            client.sendmail(
+                "tobias.lindqvist@harbourlane.example", ["priya.raman@harbourlane.example"], MESSAGE
+            )
+            reloaded.wait(30)
+            client.sendmail(
+                "tobias.lindqvist@harbourlane.example", ["priya.raman@harbourlane.example"], MESSAGE
+            )
+
+    reloaded = threading.Event()
+    try:
+        sending = asyncio.create_task(asyncio.to_thread(two_messages_one_connection))
+        for _ in range(3000):
+            if handler.received:
+                break
+            await asyncio.sleep(0.01)
+        assert service.reload(dataclasses.replace(settings, policy=PolicySettings(mode="enforce")))
+        reloaded.set()
+        await sending
+    finally:
+        await service.shutdown(grace=5)
+    first, second = handler.received
+    assert b"Mailweir-" not in first  # observe mode: untouched
+    assert b"Mailweir-" in second  # enforce mode: marked (not yet judged: untrained model)
