@@ -6,8 +6,10 @@ SMTP port, so a bad configuration or an unreachable database fails before any so
 ``shutdown`` stops accepting, lets transactions in flight finish within a grace period, cancels
 the rest (logging how many), flushes the verdict log and closes the store.
 
-SIGTERM and SIGINT stop the daemon; SIGHUP re-reads the configuration and applies the policy
-(cut-offs, actions, cold-start guard) and the log level without touching listening sockets.
+SIGTERM and SIGINT stop the daemon (a second one during the grace period ends it at once);
+SIGHUP re-reads the configuration and applies the policy (cut-offs, actions, cold-start guard)
+and the log level without touching listening sockets; other changed keys are logged as needing
+a restart.
 """
 
 from __future__ import annotations
@@ -34,8 +36,9 @@ from mailweir.daemon.verdict_log import VerdictLog
 
 log = logging.getLogger("mailweir.service")
 
-# Sections whose changes need a restart (sockets, database, pools); SIGHUP only reports them.
-RESTART_ONLY = ("state_dir", "smtp", "next_hop", "model", "http")
+# What SIGHUP applies; every other key needs a restart (sockets, database, pools) and a reload
+# only names it in the log.
+RELOADABLE = ("policy", "log.level")
 
 
 class Service:
@@ -119,7 +122,7 @@ class Service:
         except ConfigError as exc:
             log.error("reload refused, keeping the running configuration: %s", exc)
             return False
-        changed = [n for n in RESTART_ONLY if getattr(settings, n) != getattr(self.settings, n)]
+        changed = _restart_only_changes(self.settings, settings)
         if changed:
             log.warning(
                 "reload: changes to %s take effect only after a restart", ", ".join(changed)
@@ -206,6 +209,22 @@ class Service:
         if self.store is not None:
             await asyncio.to_thread(self.store.close)
             self.store = None
+
+
+def _restart_only_changes(old: Settings, new: Settings) -> list[str]:
+    changed = []
+    for f in dataclasses.fields(Settings):
+        before, after = getattr(old, f.name), getattr(new, f.name)
+        if f.name in RELOADABLE or before == after:
+            continue
+        if dataclasses.is_dataclass(before):
+            for g in dataclasses.fields(before):
+                key = f"{f.name}.{g.name}"
+                if key not in RELOADABLE and getattr(before, g.name) != getattr(after, g.name):
+                    changed.append(key)
+        else:
+            changed.append(f.name)
+    return changed
 
 
 # -- the SMTP side (daemon/smtp.py) --------------------------------------------------------

@@ -193,7 +193,7 @@ async def test_service_reload_changes_cutoffs(
         assert service.judge.policy.spam_cutoff == 0.8
         assert service.handler.settings.policy.suspect_cutoff == 0.3
         assert service.smtp_address == address  # still listening where it was
-        assert "smtp take effect only after a restart" in caplog.text
+        assert "changes to smtp.listen, smtp.hostname take effect only after" in caplog.text
         bad = dataclasses.replace(settings, policy=PolicySettings(spam_cutoff=7.0))
         assert not service.reload(bad)
         assert service.judge.policy.spam_cutoff == 0.8
