@@ -21,6 +21,8 @@ stripped), so it is ignored and the original's own tokens are trained.
 from __future__ import annotations
 
 import asyncio
+import base64
+import binascii
 import collections
 import concurrent.futures
 import contextlib
@@ -58,6 +60,10 @@ log = logging.getLogger("mailweir.feedback")
 MIN_ID_AGREEMENT: Final = 0.75
 SPAM_BANDS: Final = ("spam", "suspect")
 HOUR: Final = 3600.0
+# An unknown id issued less than this long ago may sit in a verdict-log batch being written;
+# the intake then waits up to VERDICT_WAIT seconds for it.
+RECENT_ID_SECONDS: Final = 120.0
+VERDICT_WAIT: Final = 5.0
 
 # -- replies on the mail channel (RFC 5321 section 4.2 codes, RFC 3463 enhanced codes) -------
 # X.1.5 "Destination address valid" (RFC 3463 section 3.2).
@@ -94,6 +100,18 @@ class MetricsLike(Protocol):
 def hashes_of(raw: bytes, options: TokenizerOptions) -> TokenHashes:
     """The message's token hashes (module level, so a process pool can run it)."""
     return hash_tokens(tokens(raw, options))
+
+
+def issued_at(tracking_id: str) -> float | None:
+    """Unix time in a tracking id of ours (48 bits of milliseconds first, base32hex, see
+    ``judge.new_tracking_id``); None for an id of another shape."""
+    if len(tracking_id) != 16:
+        return None
+    try:
+        raw = base64.b32hexdecode(tracking_id.upper())
+    except (ValueError, binascii.Error):
+        return None
+    return int.from_bytes(raw[:6], "big") / 1000.0
 
 
 def kind_of(correction: Correction, band: str | None) -> FeedbackKind:
@@ -253,11 +271,22 @@ class FeedbackIntake:
         return self._outcome(result, kind, tracking_id, recorded is not None)
 
     async def _find_verdict(self, tracking_id: str) -> Any:
-        verdict = await asyncio.to_thread(self._store.find_verdict, tracking_id)
-        if verdict is None and self._verdict_log is not None and self._verdict_log.pending:
-            await self._verdict_log.flush()
+        """The verdict record, waiting briefly for one the verdict log has not written yet
+        (it writes in batches, so feedback can overtake it: queued records are flushed, and
+        a batch already being written is waited for when the id was issued moments ago)."""
+        deadline = time.monotonic() + VERDICT_WAIT
+        while True:
             verdict = await asyncio.to_thread(self._store.find_verdict, tracking_id)
-        return verdict
+            if verdict is not None or self._verdict_log is None:
+                return verdict
+            if self._verdict_log.pending:
+                await self._verdict_log.flush()
+                continue
+            issued = issued_at(tracking_id)
+            recent = issued is not None and self._clock() - issued < RECENT_ID_SECONDS
+            if not recent or time.monotonic() >= deadline:
+                return None
+            await asyncio.sleep(0.02)
 
     def _store_correction(
         self, hashes: TokenHashes, label: int, record: FeedbackRecord, request: FeedbackRequest

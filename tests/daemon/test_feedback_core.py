@@ -7,6 +7,7 @@ DESIGN.md, "Learning": presence counts, train and untrain exact inverses).
 
 from __future__ import annotations
 
+import asyncio
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -22,10 +23,12 @@ from mailweir.daemon.feedback import (
     TrustedNetworks,
     agreement,
     hashes_of,
+    issued_at,
     kind_of,
 )
 from mailweir.daemon.feedback_types import FeedbackRequest, FeedbackStatus
 from mailweir.daemon.forwarded import find_originals
+from mailweir.daemon.judge import new_tracking_id
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.settings import FeedbackSettings
 from mailweir.daemon.verdict_log import VerdictLog
@@ -179,6 +182,38 @@ async def test_feedback_core_waits_for_a_verdict_still_queued(store: ModelStore)
     assert outcome.status is FeedbackStatus.TRAINED
     assert outcome.kind == "false_positive"
     assert verdict_log.pending == 0
+
+
+async def test_feedback_core_waits_for_a_batch_being_written(store: ModelStore) -> None:
+    # The verdict log has taken the record off its queue and is writing it: nothing pending,
+    # nothing in the store yet.  A fresh id is waited for; the record lands a moment later.
+    _, hashes = _reminder()
+    tracking = new_tracking_id()
+
+    class Writing:
+        pending = 0
+
+        async def flush(self) -> None:
+            raise AssertionError("nothing is queued")
+
+    async def land() -> None:
+        await asyncio.sleep(0.2)
+        await asyncio.to_thread(_verdict, store, hashes, "spam", tracking)
+
+    writer = asyncio.create_task(land())
+    outcome = await _intake(store, verdict_log=Writing())(
+        FeedbackRequest("ham", "http", tracking_id=tracking)
+    )
+    await writer
+    assert (outcome.status, outcome.kind) == (FeedbackStatus.TRAINED, "false_positive")
+
+
+def test_feedback_core_issued_at_reads_our_ids() -> None:
+    before = time.time()
+    stamp = issued_at(new_tracking_id())
+    assert stamp is not None and before - 0.01 <= stamp <= time.time() + 0.01
+    assert issued_at("not-one-of-ours") is None
+    assert issued_at("zzzzzzzzzzzzzzzz") is None  # not base32hex
 
 
 # -- by message ------------------------------------------------------------------------------
