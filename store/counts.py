@@ -22,7 +22,7 @@ from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabula
 from mailweir.store import schema, verdicts
 from mailweir.store.cache import CountCache
 from mailweir.store.engine import NO_BEGIN, READ_ONLY, make_engine
-from mailweir.store.errors import store_errors
+from mailweir.store.errors import StoreBusy, retryable, store_errors
 from mailweir.store.lookup import CountReader
 from mailweir.store.meta import database_bytes, get_meta, row_count, set_meta
 from mailweir.store.migrations import migrate
@@ -41,6 +41,7 @@ from sqlalchemy import Connection, Engine, delete, select
 
 # Bulk training flushes a batch once it holds this many token occurrences.
 _BATCH_TOKENS = 300_000
+_WRITE_ATTEMPTS = 3
 
 
 @dataclass(frozen=True)
@@ -321,6 +322,17 @@ class ModelStore:
         return self._write(lambda conn: resolve_training(conn, batch, time.time()))
 
     def _write(self, resolve: Callable[[Connection], Plan]) -> list[TrainResult]:
+        # A transaction of our own that PostgreSQL picked as a deadlock victim is run again.
+        outermost = getattr(self._local, "conn", None) is None
+        for attempt in range(_WRITE_ATTEMPTS if outermost else 1):
+            try:
+                return self._write_once(resolve)
+            except StoreBusy as exc:
+                if attempt + 1 >= _WRITE_ATTEMPTS or not outermost or not retryable(exc):
+                    raise
+        raise AssertionError("unreachable")
+
+    def _write_once(self, resolve: Callable[[Connection], Plan]) -> list[TrainResult]:
         with self.transaction() as conn:
             plan = resolve(conn)
             if plan.messages.any() or len(plan.hashes):

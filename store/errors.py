@@ -68,6 +68,14 @@ def _classify(exc: Exception) -> type[StoreError]:
     return StoreError
 
 
+def retryable(exc: BaseException) -> bool:
+    """True when *exc* came from a deadlock or serialization failure: the whole transaction
+    may simply be run again (PostgreSQL chose it as the victim)."""
+    cause = exc.__cause__
+    orig = getattr(cause, "orig", None)
+    return getattr(orig, "sqlstate", None) in ("40001", "40P01")
+
+
 @contextmanager
 def store_errors() -> Iterator[None]:
     """Translate SQLAlchemy errors raised inside the block into the store's error tree."""

@@ -234,24 +234,26 @@ def _sqlite_upsert() -> tuple[str, tuple[str, ...]]:
 
 _UPSERT_SQL: list[tuple[str, tuple[str, ...]]] = []
 
-# PostgreSQL: three set-based statements over array parameters instead of one row at a time.
-# Existing rows are locked in hash order first (concurrent trainers then queue instead of
-# deadlocking), updated in place, and the remaining new tokens inserted; ON CONFLICT covers a
-# token another transaction inserted meanwhile.
+# PostgreSQL: set-based statements over array parameters instead of one row at a time.
+# Growing tokens (training) go through one INSERT ... ON CONFLICT whose rows are taken in hash
+# order, so concurrent trainers lock rows in the same order and queue instead of deadlocking.
+# Shrinking tokens (untraining, moves) lock their existing rows in hash order, update exactly
+# those, and insert only the growing part of any that are missing.
 _PG_UNNEST = "unnest(%(h)s::bigint[], %(dh)s::integer[], %(ds)s::integer[]) AS u(h, dh, ds)"
-_PG_LOCK = "SELECT hash FROM weir_token WHERE hash = ANY(%(h)s::bigint[]) ORDER BY hash FOR UPDATE"
-_PG_UPDATE = (
-    "UPDATE weir_token AS t SET ham = GREATEST(t.ham + u.dh, 0), "
-    "spam = GREATEST(t.spam + u.ds, 0), last_seen = %(day)s "
-    f"FROM {_PG_UNNEST} WHERE t.hash = u.h RETURNING t.hash"
-)
-_PG_INSERT = (
+_PG_UPSERT = (
     "INSERT INTO weir_token (hash, ham, spam, last_seen) "
     f"SELECT u.h, GREATEST(u.dh, 0), GREATEST(u.ds, 0), %(day)s FROM {_PG_UNNEST} "
     "WHERE u.dh > 0 OR u.ds > 0 ORDER BY u.h "
     "ON CONFLICT (hash) DO UPDATE SET ham = weir_token.ham + excluded.ham, "
     "spam = weir_token.spam + excluded.spam, last_seen = excluded.last_seen"
 )
+_PG_LOCK = "SELECT hash FROM weir_token WHERE hash = ANY(%(h)s::bigint[]) ORDER BY hash FOR UPDATE"
+_PG_UPDATE = (
+    "UPDATE weir_token AS t SET ham = GREATEST(t.ham + u.dh, 0), "
+    "spam = GREATEST(t.spam + u.ds, 0), last_seen = %(day)s "
+    f"FROM {_PG_UNNEST} WHERE t.hash = u.h"
+)
+_PG_CHUNK = 50_000
 
 
 def apply_counts(conn: Connection, hashes: TokenHashes, delta: TokenCounts, day: int) -> None:
@@ -307,30 +309,28 @@ def _apply_counts_sqlite(
 
 
 def _apply_counts_pg(conn: Connection, hashes: TokenHashes, delta: TokenCounts, day: int) -> None:
-    for start in range(0, len(hashes), 50_000):
-        part, change = hashes[start : start + 50_000], delta[start : start + 50_000]
-        conn.exec_driver_sql(_PG_LOCK, {"h": part.tolist()}).fetchall()
-        params = {
-            "h": part.tolist(),
-            "dh": change[:, 0].tolist(),
-            "ds": change[:, 1].tolist(),
+    def arrays(mask: npt.NDArray[np.bool_]) -> dict[str, Any]:
+        return {
+            "h": hashes[mask].tolist(),
+            "dh": delta[mask, 0].tolist(),
+            "ds": delta[mask, 1].tolist(),
             "day": day,
         }
-        updated = np.array(
-            [row[0] for row in conn.exec_driver_sql(_PG_UPDATE, params).fetchall()],
-            dtype=np.int64,
-        )
-        new = ~np.isin(part, updated)
-        if new.any():
-            conn.exec_driver_sql(
-                _PG_INSERT,
-                {
-                    "h": part[new].tolist(),
-                    "dh": change[new, 0].tolist(),
-                    "ds": change[new, 1].tolist(),
-                    "day": day,
-                },
-            )
+
+    shrinks = (delta < 0).any(axis=1)
+    for start in range(0, len(hashes), _PG_CHUNK):
+        window = np.zeros(len(hashes), dtype=np.bool_)
+        window[start : start + _PG_CHUNK] = True
+        if (window & ~shrinks).any():
+            conn.exec_driver_sql(_PG_UPSERT, arrays(window & ~shrinks))
+        if not (window & shrinks).any():
+            continue
+        rows = conn.exec_driver_sql(_PG_LOCK, {"h": hashes[window & shrinks].tolist()})
+        locked = np.isin(hashes, np.array([r[0] for r in rows.fetchall()], dtype=np.int64))
+        if (window & shrinks & locked).any():
+            conn.exec_driver_sql(_PG_UPDATE, arrays(window & shrinks & locked))
+        if (window & shrinks & ~locked).any():  # pruned tokens: only the growing part returns
+            conn.exec_driver_sql(_PG_UPSERT, arrays(window & shrinks & ~locked))
 
 
 _BUMP = text(

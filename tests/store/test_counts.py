@@ -278,3 +278,12 @@ def test_vocabulary_load_brings_class_totals_along(open_store: Callable[..., Mod
     assert reader.vocabulary().size == 2
     assert reader.class_count().tolist() == [0, 1]
     assert reader.lookup(hashes_of(1)).tolist() == [[0, 1]]
+
+
+def test_move_after_prune_counts_only_the_new_class(store: ModelStore) -> None:
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(2), SPAM, digest=digest_of("b"), source="t")
+    store.prune(max_count=1, unseen_days=0, today=10**6)  # token 1 goes
+    result = store.train(hashes_of(1, 2), HAM, digest=digest_of("a"), source="t")
+    assert result is TrainResult.MOVED
+    assert token_rows(store) == {1: (1, 0), 2: (1, 1)}

@@ -15,6 +15,7 @@ from mailweir.store import (
     StoreUnavailable,
     store_errors,
 )
+from mailweir.store.errors import retryable
 from sqlalchemy import event
 from sqlalchemy import exc as sa_exc
 
@@ -89,3 +90,12 @@ def test_unreachable_postgres_is_store_unavailable() -> None:
     # Port 9 (discard) on the loopback: nothing listens there in the test environment.
     with pytest.raises(StoreUnavailable):
         ModelStore.open("postgresql+psycopg://nobody@127.0.0.1:9/none?connect_timeout=2")
+
+
+@pytest.mark.parametrize(
+    ("sqlstate", "expected"), [("40P01", True), ("40001", True), ("55P03", False)]
+)
+def test_retryable_only_for_deadlock_and_serialization(sqlstate: str, expected: bool) -> None:
+    with pytest.raises(StoreError) as caught, store_errors():
+        raise wrapped(FakePgError(sqlstate))
+    assert retryable(caught.value) is expected
