@@ -189,7 +189,7 @@ async def run_demo(run_dir: Path, http_port: int, keep_running: bool) -> int:
         print_table(rows, ("from", "subject", "verdict", "score", "delivered to"))
         print()
         await correction(service, run_dir)
-        status = getattr(service, "http_address", None)
+        status = service.http_address
         if status is not None:
             print(f"\n5. Status page: http://{status}/   (metrics at http://{status}/metrics)")
         if keep_running and sys.stdin.isatty():

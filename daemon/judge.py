@@ -147,11 +147,13 @@ class Judge:
         executor: concurrent.futures.Executor | None = None,
         *,
         executor_factory: Callable[[], concurrent.futures.Executor] | None = None,
+        metrics: Any = None,
     ) -> None:
         """``executor`` runs the CPU steps (None: the loop's default thread pool).  With
         ``executor_factory`` the judge makes its own and replaces it when it breaks (a process
         pool whose worker died fails every later call otherwise)."""
         self._store = store
+        self._metrics = metrics  # daemon.metrics.Metrics: parsing and scoring time
         if executor is None and executor_factory is not None:
             executor = executor_factory()
         self.executor = executor
@@ -205,7 +207,9 @@ class Judge:
         executor: concurrent.futures.Executor | None,
     ) -> Judgement:
         loop = asyncio.get_running_loop()
+        started = time.perf_counter()
         hashes, texts = await loop.run_in_executor(executor, tokenize_step, raw, self.options)
+        parsed = time.perf_counter()
         view = await asyncio.to_thread(self._read_model, hashes, policy.min_trained)
         if view.counts is None or view.vocabulary is None:
             return Judgement(tracking_id, "unjudged", None, (), hashes)
@@ -215,6 +219,9 @@ class Judge:
                 score_step, self.scorer, hashes, view.counts, view.class_count, view.vocabulary
             ),
         )
+        if self._metrics is not None:
+            self._metrics.parsing_seconds.observe(parsed - started)
+            self._metrics.scoring_seconds.observe(time.perf_counter() - parsed)
         probability = float(score.spam_probability)
         evidence = _evidence_text(score, hashes, texts)
         return Judgement(tracking_id, band_for(probability, policy), probability, evidence, hashes)

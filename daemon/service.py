@@ -30,7 +30,10 @@ from typing import Any
 
 from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource, validate
 from mailweir.daemon.errors import ConfigError
+from mailweir.daemon.http_side import FeedbackHandler
 from mailweir.daemon.judge import Judge, make_executor
+from mailweir.daemon.metrics import Metrics
+from mailweir.daemon.observing import Observing
 from mailweir.daemon.settings import HostPort, Settings
 from mailweir.daemon.verdict_log import VerdictLog
 
@@ -50,6 +53,9 @@ class Service:
         self.judge: Judge | None = None
         self.verdict_log: VerdictLog | None = None
         self.handler: Any = None
+        self.metrics: Metrics = Metrics()
+        self.feedback: FeedbackHandler | None = None  # the intake, when configured
+        self.observing: Observing | None = None
         self.smtp_server: Any = None
         self._signals: list[signal.Signals] = []
 
@@ -61,7 +67,20 @@ class Service:
         try:
             await self._open_parts()
             self.smtp_server = await _create_smtp_server(self.settings, self.handler)
+            self.observing = Observing(
+                self.settings,
+                self.metrics,
+                self.store,
+                lambda: self.judge.policy if self.judge else self.settings.policy,
+                lambda: bool(self.smtp_server and self.smtp_server.is_serving()),
+                self.feedback,
+            )
+            await self.observing.start()
         except BaseException:
+            if self.smtp_server is not None:
+                self.smtp_server.close()
+                self.smtp_server = None
+            self.observing = None
             await self._close_parts()
             raise
         s = self.settings
@@ -93,8 +112,16 @@ class Service:
                     grace,
                 )
             self.smtp_server = None
+        if self.observing is not None:
+            await self.observing.stop()
+            self.observing = None
         await self._close_parts()
         log.info("mailweir stopped")
+
+    @property
+    def http_address(self) -> HostPort | None:
+        """The HTTP side's address (metrics, status page, feedback), once it listens."""
+        return self.observing.address if self.observing is not None else None
 
     @property
     def smtp_address(self) -> HostPort:
@@ -190,6 +217,7 @@ class Service:
             self.store,
             self.settings,
             executor_factory=functools.partial(make_executor, model.scoring_workers),
+            metrics=self.metrics,
         )
         self.verdict_log = VerdictLog(
             self.store,
@@ -197,7 +225,8 @@ class Service:
             retention_days=self.settings.log.verdict_retention_days,
         )
         await self.verdict_log.start()
-        self.handler = _make_handler(self.settings, self.judge, self.verdict_log)
+        self.metrics.watch_verdict_log(self.verdict_log)
+        self.handler = _make_handler(self.settings, self.judge, self.verdict_log, self.metrics)
 
     async def _close_parts(self) -> None:
         if self.verdict_log is not None:
@@ -230,10 +259,12 @@ def _restart_only_changes(old: Settings, new: Settings) -> list[str]:
 # -- the SMTP side (daemon/smtp.py) --------------------------------------------------------
 
 
-def _make_handler(settings: Settings, judge: Judge, verdict_log: VerdictLog) -> Any:
+def _make_handler(
+    settings: Settings, judge: Judge, verdict_log: VerdictLog, metrics: Metrics
+) -> Any:
     from mailweir.daemon.smtp import FilterHandler
 
-    return TransactionWatch(FilterHandler(settings, judge, verdict_log))
+    return TransactionWatch(FilterHandler(settings, judge, verdict_log, metrics=metrics))
 
 
 async def _create_smtp_server(settings: Settings, handler: Any) -> Any:

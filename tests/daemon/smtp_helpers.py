@@ -6,6 +6,7 @@ Everything listens on 127.0.0.1, on ports the OS picks, inside the test's own ev
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import smtplib
 import socket
 from collections.abc import AsyncIterator, Sequence
@@ -334,7 +335,9 @@ async def running_service(settings: Settings) -> AsyncIterator[HostPort]:
     port; yields the SMTP address it bound."""
     from mailweir.daemon.service import Service
 
-    service = Service(settings)
+    # The HTTP side binds too: a free port, so tests never collide with each other or a demo.
+    http = dataclasses.replace(settings.http, listen=HostPort("127.0.0.1", 0))
+    service = Service(dataclasses.replace(settings, http=http))
     await service.startup()
     try:
         yield service.smtp_address

@@ -70,6 +70,7 @@ def make_settings(tmp_path: Path, next_hop: HostPort, **policy: Any) -> Settings
         smtp=SmtpSettings(listen=HostPort("127.0.0.1", 0), hostname="filter.harbourlane.example"),
         next_hop=dataclasses.replace(base.next_hop, address=next_hop),
         policy=PolicySettings(**policy),
+        http=dataclasses.replace(base.http, listen=HostPort("127.0.0.1", 0)),
     )
 
 
