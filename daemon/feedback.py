@@ -381,7 +381,9 @@ class FeedbackIntake:
         except StoreError as exc:
             log.warning("feedback from %s not stored: %s", client, exc)
             return NOT_STORED
-        return _summary(outcomes, [o.form for o in originals])
+        reply = _summary(outcomes, [o.form for o in originals])
+        log.info("feedback from %s (%s): %s -> %s", client, peer, corrections[0], reply.text)
+        return reply
 
 
 def _summary(outcomes: list[FeedbackOutcome], forms: list[str]) -> Reply:

@@ -225,6 +225,27 @@ async def test_feedback_smtp_without_id_trains_the_attached_message(
         assert daemon.feedback_rows() == [(None, "confirmation", "mail")]
 
 
+async def test_feedback_smtp_inline_without_id_trains_the_rebuilt_text(
+    tmp_path: Path, next_hop: NextHop
+) -> None:
+    # Most programs leave our fields out of an inline forward.  Then the rebuilt original is
+    # all there is: it is trained as wanted mail, but it is not the judged message, so the
+    # spam counts the original was imported with stay (the lossy case the id exists for).
+    async with feedback_daemon(tmp_path, next_hop) as daemon:
+        delivered, _ = await _deliver_reminder(daemon)
+        without_id = re.sub(rb"Mailweir-[^\r]*\r\n", b"", delivered)
+        hashes = hashes_of(scenario.overdue_reminder().raw, DEFAULT_OPTIONS)
+        before, totals = daemon.counts(hashes), daemon.store.class_count()
+        sent = await send(daemon.port, as_inline(without_id), [WANTED], TOBIAS)
+        code, text = _reply(sent)
+        assert code == 250 and "1 trained" in text and "no tracking id" in text, text
+        assert (daemon.store.class_count() - totals).tolist() == [1, 0]
+        change = daemon.counts(hashes) - before
+        assert (change[:, 1] == 0).all()  # the spam column is untouched
+        assert 0.8 < change[:, 0].mean() < 1.0  # most of its tokens, not all, gained ham
+        assert daemon.feedback_rows() == [(None, "confirmation", "mail")]
+
+
 # -- refusals ----------------------------------------------------------------------------------
 
 
