@@ -223,11 +223,16 @@ class FeedbackIntake:
     # -- the core ------------------------------------------------------------------------------
 
     async def __call__(self, request: FeedbackRequest) -> FeedbackOutcome:
-        """Store one correction.  Raises only a store error, and then nothing changed."""
+        """Store one correction.  Raises only a store error, and then nothing changed.
+
+        A tracking id given in the request is taken as is (the HTTP side's caller holds the
+        token); one read from the message is checked against the message."""
+        return await self._correct(request, check_id=request.tracking_id is None)
+
+    async def _correct(self, request: FeedbackRequest, *, check_id: bool) -> FeedbackOutcome:
         tracking_id = request.tracking_id
-        from_message = False
         if tracking_id is None and request.raw is not None:
-            tracking_id, from_message = forwarded.tracking_id(request.raw), True
+            tracking_id = forwarded.tracking_id(request.raw)
         verdict = await self._find_verdict(tracking_id) if tracking_id else None
         recorded = None if verdict is None else verdict.token_hashes
         hashes = None
@@ -235,7 +240,7 @@ class FeedbackIntake:
             loop = asyncio.get_running_loop()
             work = functools.partial(hashes_of, request.raw, self._options)
             hashes = await loop.run_in_executor(self._executor, work)
-        if recorded is not None and hashes is not None and from_message:
+        if recorded is not None and hashes is not None and check_id:
             share = agreement(hashes, recorded)
             if share < MIN_ID_AGREEMENT:
                 log.warning(
@@ -377,7 +382,7 @@ class FeedbackIntake:
                 request = FeedbackRequest(
                     corrections[0], "mail", original.tracking_id, original.raw, client
                 )
-                outcomes.append(await self(request))
+                outcomes.append(await self._correct(request, check_id=True))
         except StoreError as exc:
             log.warning("feedback from %s not stored: %s", client, exc)
             return NOT_STORED

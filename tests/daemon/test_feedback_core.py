@@ -37,7 +37,7 @@ from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.model.types import SPAM
 from mailweir.store import ModelStore, StoreBusy, VerdictRecord
 from mailweir.store.reports import misfiling_rates
-from test_forwarded import as_inline, delivered
+from test_forwarded import as_attachment, as_inline, delivered
 
 TRACKING = "0ljq3k2c5g1a9b7e"
 SETTINGS = FeedbackSettings(
@@ -364,3 +364,19 @@ def test_feedback_core_screen_recipient(store: ModelStore) -> None:
     assert screen(local, "t@harbourlane.example", ["SIZE=200000"], [], spam).code == 552
     assert _refused(metrics, "untrusted") == 1
     assert _refused(metrics, "invalid") == 1
+
+
+async def test_feedback_core_mail_checks_a_forged_id_too(store: ModelStore) -> None:
+    # The same forgery arriving as an attachment at the spam address.
+    _, wanted = _reminder()
+    _verdict(store, wanted, band="ham")
+    junk = scenario.generate(1, "spam", 5)[0].raw
+    forward = as_attachment(delivered(junk, TRACKING, band="ham"))
+    intake = _intake(store)
+    reply = await intake.receive_mail(
+        ("127.0.0.1", 5000), "t@harbourlane.example", [SETTINGS.spam_address], forward
+    )
+    assert reply.code == 250 and "no tracking id" in reply.text
+    only_wanted = np.setdiff1d(wanted, hashes_of(junk, DEFAULT_OPTIONS))
+    assert (_counts(store, only_wanted) == 0).all()
+    assert _feedback_rows(store) == [(None, "confirmation", "mail")]
