@@ -137,10 +137,9 @@ def _attachments(top: Part) -> list[bytes]:
         following: list[Part] = []
         for part in level:
             if part.content_type in ("message/rfc822", "message/global") or _is_eml(part):
-                if part.depth > 0:  # the feedback message itself is not its own original
-                    body = part.decoded_body(MAX_TEXT_BYTES * 32)[0]
-                    if body.strip():
-                        found.append(body)
+                body = part.decoded_body(MAX_TEXT_BYTES * 32)[0]
+                if body.strip():
+                    found.append(body)
                 continue
             if not part.content_type.startswith("multipart/") or part.depth >= MAX_DEPTH:
                 continue

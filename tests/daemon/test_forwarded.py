@@ -173,6 +173,13 @@ def test_forwarded_attachment_inside_attachment_takes_the_outer_one() -> None:
     assert found.tracking_id == "outer00000000000"
 
 
+def test_forwarded_whole_message_as_rfc822() -> None:
+    # Some tools send the original as the entire body, typed message/rfc822.
+    original = reminder()
+    (found,) = find_originals(_head("Misfiled", "message/rfc822") + original)
+    assert (found.form, found.raw, found.tracking_id) == ("attachment", original, TRACKING)
+
+
 # -- inline ----------------------------------------------------------------------------------
 
 
