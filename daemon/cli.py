@@ -399,7 +399,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     handler: Handler = args.handler
     try:
         return handler(args)
-    except (SourceError, learning.ModelMismatch) as exc:
+    except (SourceError, learning.ModelMismatch, ValueError) as exc:
         print(f"mailweir: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:

@@ -1,0 +1,35 @@
+"""The quick start's first command: the demo must keep working end to end."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+from mailweir.daemon import scenario
+from mailweir.daemon.demo import read_landed, run_demo
+
+
+@pytest.mark.slow
+async def test_demo_delivers_ham_quarantines_spam_and_learns_a_correction(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    run_dir = tmp_path / "demo"
+    assert await run_demo(run_dir, http_port=0, keep_running=False) == 0
+    out = capsys.readouterr().out
+
+    landed = read_landed(run_dir / "maildirs")
+    morning = scenario.incoming()
+    assert len(landed) == len(morning)  # every message delivered exactly once somewhere
+    for message in morning:
+        where = next(v for k, v in landed.items() if k and k in message.raw.decode())
+        if message.label == "spam":
+            assert where.mailbox == scenario.QUARANTINE
+            assert where.message["Mailweir-Original-Recipients"]
+        else:
+            assert where.mailbox == message.recipients[0]
+        assert where.message["Mailweir-Verdict"] in {"ham", "suspect", "spam"}
+
+    before, after = map(float, re.search(r"([\d.]+) before, ([\d.]+) after", out).groups())  # type: ignore[union-attr]
+    assert after < before
+    assert re.search(r"Status page: http://127\.0\.0\.1:\d+/", out)
