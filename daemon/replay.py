@@ -162,8 +162,9 @@ def write_roc(path: Path, results: Sequence[MethodResult]) -> None:
     """The ROC curve of every method as an SVG image."""
     series = []
     for result in results:
-        fpr, tpr, _ = evaluate.roc_curve(result.labels, result.scores)
-        auc = evaluate.one_minus_auc_percent(result.labels, result.scores)
+        labels, scores = result.labels[result.warmup :], result.scores[result.warmup :]
+        fpr, tpr, _ = evaluate.roc_curve(labels, scores)
+        auc = evaluate.one_minus_auc_percent(labels, scores)
         series.append(Series(f"{result.method} (1-AUC)% = {auc:.3f}", fpr, tpr))
     svg = line_chart(
         series,
