@@ -44,7 +44,7 @@ _LEET_CHARS: Final = "01345 7@$€!|£¡".replace(" ", "")
 
 _PLAIN_ALNUM: Final = re.compile(r"\d+[^\W\d_]+|[^\W\d_]+\d")
 # A letter next to a leet character: the sign of a chunk worth de-obfuscating.
-_LEET_NEIGHBOUR: Final = re.compile(
+LEET_NEIGHBOUR: Final = re.compile(
     r"[^\W\d_][" + re.escape(_LEET_CHARS) + r"]|[" + re.escape(_LEET_CHARS) + r"][^\W\d_]"
 )
 MAX_CHUNK: Final = 40
@@ -107,7 +107,7 @@ def mixed_chunks(chunks: Iterable[str]) -> list[tuple[str, str]]:
     """
     pairs: list[tuple[str, str]] = []
     for chunk in chunks:
-        if len(chunk) > MAX_CHUNK or not _LEET_NEIGHBOUR.search(chunk):
+        if len(chunk) > MAX_CHUNK or not LEET_NEIGHBOUR.search(chunk):
             continue
         raw = chunk.strip(_EDGE_PUNCT)
         if len(raw) >= 3 and not raw.isalpha():

@@ -10,12 +10,14 @@ from __future__ import annotations
 import re
 from collections.abc import Sequence
 from dataclasses import dataclass
+from itertools import compress
 from typing import Final
 
-from .normalize import mixed_chunks, spaced_words
+from .normalize import LEET_NEIGHBOUR, mixed_chunks, spaced_words
 
 MIN_WORD: Final = 3
 MAX_WORD: Final = 20
+_LONG_ENOUGH: Final = (MIN_WORD - 1).__lt__  # len -> len >= MIN_WORD
 # Letters, with an inner apostrophe kept ("don't"); CJK scripts are handled apart because
 # they are written without spaces.
 _CJK: Final = "\u3040-\u30ff\u3400-\u4dbf\u4e00-\u9fff\uac00-\ud7af\uf900-\ufaff"
@@ -27,6 +29,9 @@ _MONEY: Final = re.compile(
     r"([$€£¥])\s?(\d{1,15}(?:[.,]\d{1,3})*)|(?<![\w.,])(\d{1,15}(?:[.,]\d{1,3})*)\s?"
     r"([$€£¥]|usd\b|eur\b|gbp\b)"
 )
+# Cheap tests that decide whether the slower obfuscation checks run at all.
+_LEET_HINT: Final = LEET_NEIGHBOUR
+_SEPARATED_HINT: Final = re.compile(r"\b\w[-._*+~·•]\w[-._*+~·•]\w[-._*+~·•]\w\b")
 _CENTS: Final = re.compile(r"[.,]\d{1,2}$")
 _DIGIT: Final = re.compile(r"\d")
 _CJK_BIGRAMS_PER_RUN: Final = 64
@@ -103,20 +108,25 @@ def split_words(text: str, prefix: str = "", sequence: bool = False) -> TextToke
     sequence : bool
         Also return the words in order with repeats (costs one more pass).
     """
+    # filter/compress/map keep the per-chunk work in C: no bytecode runs per word.
     chunks = dict.fromkeys(text.split())
-    alpha = [c for c in chunks if c.isalpha()]
+    alpha = list(filter(str.isalpha, chunks))
     others = sorted(chunks.keys() - alpha)  # sorted: the same order in every process
     rest = " ".join(others)
-    out = dict.fromkeys([w for w in alpha if len(w) >= MIN_WORD])
+    out = dict.fromkeys(compress(alpha, map(_LONG_ENOUGH, map(len, alpha))))
     if rest:
-        out.update(dict.fromkeys([w for w in _WORD.findall(rest) if len(w) >= MIN_WORD]))
+        found = _WORD.findall(rest)
+        out.update(dict.fromkeys(compress(found, map(_LONG_ENOUGH, map(len, found)))))
     if max(map(len, out), default=0) > MAX_WORD:
         out = dict.fromkeys([w if len(w) <= MAX_WORD else long_token(len(w)) for w in out])
     if _DIGIT.search(rest):
         out.update(dict.fromkeys(number_tokens(rest)))
     if any(symbol in text for symbol in _CURRENCY):
         out.update(dict.fromkeys(money_tokens(text)))
-    _add_obfuscated(others, out)
+    if _LEET_HINT.search(rest):
+        _add_obfuscated(others, out)
+    if _SEPARATED_HINT.search(rest):  # "v-i-a-g-r-a"
+        _add_spaced(rest, out)
     if len(chunks.keys() & _RARE_SINGLE_LETTERS) >= 2:  # "f r e e": letters as chunks
         _add_spaced(text, out)
     if not text.isascii():
@@ -136,9 +146,6 @@ def _add_obfuscated(chunks: list[str], out: dict[str, None]) -> None:
         if word:
             out[word if len(word) <= MAX_WORD else long_token(len(word))] = None
             out["obf:leet"] = None
-    separated = [c for c in chunks if len(c) >= 7 and not c.isalnum()]  # "v-i-a-g-r-a"
-    if separated:
-        _add_spaced(" ".join(separated), out)
 
 
 def _add_spaced(text: str, out: dict[str, None]) -> None:
