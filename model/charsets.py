@@ -96,7 +96,10 @@ def decode_bytes(data: bytes, charset: str = "") -> tuple[str, bool]:
     if high * 5 > len(data):
         detected = _detect(data[:DETECT_SAMPLE])
         if detected is not None:
-            return data.decode(detected, "replace"), True
+            try:
+                return data.decode(detected, "replace"), True
+            except (LookupError, ValueError, TypeError):
+                pass
     return data.decode("cp1252", "replace"), bool(declared) or codec is None
 
 

@@ -13,8 +13,9 @@ import re
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Final
+from urllib.parse import unquote
 
-from .charsets import b64decode_lenient, decode_header_value
+from .charsets import b64decode_lenient, decode_header_value, text_codec
 
 MAX_FIELDS: Final = 200
 MAX_FIELD_BYTES: Final = 16 * 1024
@@ -158,10 +159,6 @@ def _rfc2231_value(text: str, first: bool) -> str:
     charset = "utf-8"
     if first and text.count("'") >= 2:
         charset, _, text = text.split("'", 2)
-    from urllib.parse import unquote
-
-    from .charsets import text_codec
-
     return unquote(text, encoding=text_codec(charset) or "utf-8", errors="replace")
 
 

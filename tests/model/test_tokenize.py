@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import base64
 import quopri
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -290,6 +292,27 @@ def test_tokens_part_byte_limit() -> None:
 def test_tokens_not_bytes_does_not_raise() -> None:
     assert tokens("not bytes") == ["mime:failed"]  # type: ignore[arg-type]
     assert tokens(None) == ["mime:failed"]  # type: ignore[arg-type]
+
+
+def test_tokens_same_order_in_processes_with_different_hash_seeds() -> None:
+    # Set iteration order follows PYTHONHASHSEED; the token order (which decides what
+    # max_tokens keeps) must not.
+    code = (
+        "import sys; from mailweir.model.tokenize import tokens; "
+        "print(repr(tokens(sys.stdin.buffer.read())))"
+    )
+    raw = plain("Order 40 doses at $1,250, v1agra 10am f r e e https://shop.vetsupply.example/x.")
+    outputs = {
+        subprocess.run(
+            [sys.executable, "-c", code],
+            input=raw,
+            capture_output=True,
+            check=True,
+            env={"PYTHONHASHSEED": seed},
+        ).stdout
+        for seed in ("0", "1", "2")
+    }
+    assert len(outputs) == 1
 
 
 def test_tokenize_equals_hash_of_tokens() -> None:
