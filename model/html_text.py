@@ -27,7 +27,7 @@ _ANCHOR: Final = re.compile(r"(?i)<(/?)a\b([^<>]*)>")
 _SRC_ATTR: Final = re.compile(r"(?i)<(?:img|area|form|iframe)\b[^<>]*?\b(?:src|href|action)\s*=")
 _ATTR_VALUE: Final = re.compile(r"""\s*(?:"([^"]*)"|'([^']*)'|([^\s"'>]+))""")
 _HREF: Final = re.compile(r"(?i)\bhref\s*=")
-_HIDDEN_STYLE: Final = re.compile(r"(?i)display\s*:\s*none|font-size\s*:\s*[01](?:px|pt)?\b")
+_HIDDEN_STYLE: Final = re.compile(r"(?i)display\s*:\s*none|font-size\s*:\s*[01](?:px|pt)?(?![\d.])")
 MAX_LINKS: Final = 200
 
 

@@ -77,6 +77,13 @@ def test_tokens_html_only_and_visible_text() -> None:
     assert not {"scriptword", "commentword", "color", "hidden"} & found
 
 
+def test_tokens_html_hidden_style() -> None:
+    hidden = '<p>Hello</p><div style="font-size:0px">salad words</div>'
+    shown = '<p style="font-size:1.5em">Hello</p><p style="font-size: 10px">small print</p>'
+    assert "html:hidden-style" in tokens(html_message(hidden))
+    assert "html:hidden-style" not in tokens(html_message(shown))
+
+
 def test_tokens_html_link_host_mismatch() -> None:
     markup = (
         '<p>Your account: <a href="https://login.payments-check.example/x">'
