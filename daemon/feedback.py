@@ -230,6 +230,29 @@ class FeedbackIntake:
         return await self._correct(request, check_id=request.tracking_id is None)
 
     async def _correct(self, request: FeedbackRequest, *, check_id: bool) -> FeedbackOutcome:
+        verdict, hashes, exact = await self._evidence(request, check_id)
+        if hashes is None or not len(hashes):
+            self._refused("no_original")
+            detail = (
+                "no message came and the verdict log has no tokens for this id "
+                "(unknown, or past log.verdict_retention_days)"
+                if request.raw is None
+                else "the message has no tokens to learn from"
+            )
+            return FeedbackOutcome(FeedbackStatus.NO_ORIGINAL, detail, None, request.tracking_id)
+        tracking_id = None if verdict is None else verdict.tracking_id
+        kind = kind_of(request.correction, None if verdict is None else verdict.band)
+        channel = FeedbackChannel(request.channel)
+        record = FeedbackRecord(kind, channel, self._clock(), tracking_id, message_digest(hashes))
+        label = SPAM if request.correction == "spam" else HAM
+        result = await asyncio.to_thread(self._store_correction, hashes, label, record, request)
+        return self._outcome(result, kind, tracking_id, exact)
+
+    async def _evidence(
+        self, request: FeedbackRequest, check_id: bool
+    ) -> tuple[Any, TokenHashes | None, bool]:
+        """The verdict record (None when unknown or not believed), the hashes to train and
+        whether they are the verdict's own (exact)."""
         tracking_id = request.tracking_id
         if tracking_id is None and request.raw is not None:
             tracking_id = forwarded.tracking_id(request.raw)
@@ -237,9 +260,8 @@ class FeedbackIntake:
         recorded = None if verdict is None else verdict.token_hashes
         hashes = None
         if request.raw is not None:
-            loop = asyncio.get_running_loop()
             work = functools.partial(hashes_of, request.raw, self._options)
-            hashes = await loop.run_in_executor(self._executor, work)
+            hashes = await asyncio.get_running_loop().run_in_executor(self._executor, work)
         if recorded is not None and hashes is not None and check_id:
             share = agreement(hashes, recorded)
             if share < MIN_ID_AGREEMENT:
@@ -251,29 +273,10 @@ class FeedbackIntake:
                     tracking_id,
                     100 * share,
                 )
-                verdict, recorded, tracking_id = None, None, None
+                return None, hashes, False
         if recorded is not None:
-            hashes = recorded  # exact: the tokens the message was judged on
-        if hashes is None or not len(hashes):
-            self._refused("no_original")
-            detail = (
-                "no message came and the verdict log has no tokens for this id "
-                "(unknown, or past log.verdict_retention_days)"
-                if request.raw is None
-                else "the message has no tokens to learn from"
-            )
-            return FeedbackOutcome(FeedbackStatus.NO_ORIGINAL, detail, None, tracking_id)
-        kind = kind_of(request.correction, None if verdict is None else verdict.band)
-        record = FeedbackRecord(
-            kind,
-            FeedbackChannel(request.channel),
-            self._clock(),
-            tracking_id if verdict is not None else None,
-            message_digest(hashes),
-        )
-        label = SPAM if request.correction == "spam" else HAM
-        result = await asyncio.to_thread(self._store_correction, hashes, label, record, request)
-        return self._outcome(result, kind, tracking_id, recorded is not None)
+            return verdict, recorded, True  # exact: the tokens the message was judged on
+        return verdict, hashes, False
 
     async def _find_verdict(self, tracking_id: str) -> Any:
         """The verdict record, waiting briefly for one the verdict log has not written yet
