@@ -22,7 +22,7 @@ def enforce(**changes: object) -> PolicySettings:
     )
 
 
-@pytest.mark.parametrize(("band", "action"), itertools.product(BANDS, ACTIONS))
+@pytest.mark.parametrize(("band", "action"), list(itertools.product(BANDS, ACTIONS)))
 def test_observe_mode_never_changes_or_stops_a_message(band, action):
     policy = PolicySettings(
         mode="observe",
