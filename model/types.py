@@ -54,6 +54,7 @@ class Vocabulary:
         histogram = np.stack([np.bincount(counts[:, c], minlength=top) for c in (HAM, SPAM)])
         return Vocabulary(len(counts), counts.sum(axis=0), histogram.astype(np.int64))
 
+
 OWN_HEADER_PREFIX: Final = "mailweir-"
 """Lower-case name prefix of every header field mailweir adds.  The tokenizer never reads such
 fields and the daemon strips incoming ones, so a sender cannot forge a verdict."""
