@@ -14,7 +14,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "daemon"))
 
-from reliability_helpers import FaultyNextHop  # noqa: E402
+from reliability_helpers import FaultyNextHop
 
 
 @pytest.fixture

@@ -53,9 +53,11 @@ def load_message(index: int, rng: random.Random) -> bytes:
 
     Bodies vary in length and wording so the scorer sees different token sets; a few carry
     8-bit text and a leading-dot line (SMTP transparency, RFC 5321 section 4.5.2)."""
-    topics = ["vaccine order", "invoice 20-%d" % index, "appointment for Bella", "lab results"]
+    topics = ["vaccine order", f"invoice 20-{index}", "appointment for Bella", "lab results"]
     words = ["kennel", "sutures", "dispatch", "payment", "cheap", "winner", "dose", "clinic"]
-    body_lines = [" ".join(rng.choices(words, k=rng.randint(3, 12))) for _ in range(rng.randint(1, 40))]
+    body_lines = [
+        " ".join(rng.choices(words, k=rng.randint(3, 12))) for _ in range(rng.randint(1, 40))
+    ]
     if index % 7 == 0:
         body_lines.append(".a line that starts with a dot")
     if index % 11 == 0:
@@ -118,10 +120,14 @@ class Ledger:
 
 async def _submit(client: aiosmtplib.SMTP, raw: bytes, timeout: float) -> int:
     """One transaction on an open connection; the final code, raising on a lost connection."""
-    answer = await client.execute_command(b"MAIL", b"FROM:<" + SENDER.encode() + b">", timeout=timeout)
+    answer = await client.execute_command(
+        b"MAIL", b"FROM:<" + SENDER.encode() + b">", timeout=timeout
+    )
     if answer.code != 250:
         return answer.code
-    answer = await client.execute_command(b"RCPT", b"TO:<" + RECIPIENT.encode() + b">", timeout=timeout)
+    answer = await client.execute_command(
+        b"RCPT", b"TO:<" + RECIPIENT.encode() + b">", timeout=timeout
+    )
     if answer.code != 250:
         await client.execute_command(b"RSET", timeout=timeout)
         return answer.code
@@ -214,9 +220,7 @@ class FaultyNextHop(NextHop):
         return Counter(message_id(d.content) or "?" for d in self.deliveries)
 
 
-def check_nothing_lost(
-    messages: dict[str, bytes], ledger: Ledger, sink: NextHop
-) -> dict[str, int]:
+def check_nothing_lost(messages: dict[str, bytes], ledger: Ledger, sink: NextHop) -> dict[str, int]:
     """The zero-loss oracle; returns the figures for the report.
 
     Every message the upstream got 250 for arrived exactly once, byte for byte apart from our

@@ -30,7 +30,9 @@ MESSAGES = int(os.environ.get("MAILWEIR_LOAD_MESSAGES", "2000"))
 CLIENTS = int(os.environ.get("MAILWEIR_LOAD_CLIENTS", "32"))
 
 
-async def run_load(tmp_path: Path, sink: FaultyNextHop, count: int, clients: int) -> dict[str, float]:
+async def run_load(
+    tmp_path: Path, sink: FaultyNextHop, count: int, clients: int
+) -> dict[str, float]:
     trained_store(tmp_path / "model.sqlite3")
     rng = random.Random(7)
     messages = {f"load-{i}@mail.example": load_message(i, rng) for i in range(count)}
