@@ -77,7 +77,7 @@ class ModelStore:
         self._revision = -1
         self._checked = float("-inf")
         self._epoch = 0  # advances on every in-memory change; guards cache fills
-        self._writers = 0  # write transactions in flight in this process
+        self._writers = 0  # transactions in flight in this process that may change counts
         self._lookup_conns: list[Connection] = []
         postgres = engine.dialect.name == "postgresql"
         self._autocommit: dict[str, Any] = (
@@ -119,34 +119,48 @@ class ModelStore:
     # -- transactions --------------------------------------------------------------------------
 
     @contextmanager
-    def transaction(self) -> Iterator[Connection]:
-        """A write transaction; nested use opens a savepoint on the same connection."""
+    def transaction(self, *, counts: bool = True) -> Iterator[Connection]:
+        """A write transaction; nested use opens a savepoint on the same connection.
+
+        ``counts=False`` promises that this level leaves token counts alone (the verdict and
+        feedback logs, meta): lookups running meanwhile may then keep what they read.
+        """
         local = self._local
         conn: Connection | None = getattr(local, "conn", None)
         with store_errors():
             if conn is not None:
+                if counts:
+                    self._counting()
                 yield from self._nested(conn)
                 return
             conn = self._engine.connect()
-            local.conn, local.after = conn, [[]]
-            with self._lock:
-                self._writers += 1
-                self._epoch += 1
+            local.conn, local.after, local.counting = conn, [[]], False
             committed = False
             try:
+                if counts:
+                    self._counting()
                 with conn.begin():
                     yield conn
                 committed = True
             finally:
-                after = local.after[0]
-                local.conn, local.after = None, None
+                after, counting = local.after[0], local.counting
+                local.conn, local.after, local.counting = None, None, False
                 conn.close()
                 with self._lock:
                     if committed:
                         for step in after:
                             step()
-                    self._writers -= 1
-                    self._epoch += 1
+                    if counting:
+                        self._writers -= 1
+                        self._epoch += 1
+
+    def _counting(self) -> None:
+        """Mark this thread's transaction as one that may change counts, before it does."""
+        if not self._local.counting:
+            with self._lock:
+                self._writers += 1
+                self._epoch += 1
+            self._local.counting = True
 
     def _nested(self, conn: Connection) -> Iterator[Connection]:
         after = self._local.after
@@ -390,13 +404,13 @@ class ModelStore:
             return get_meta(conn, key)
 
     def set_meta(self, key: str, value: str) -> None:
-        with self.transaction() as conn:
+        with self.transaction(counts=False) as conn:
             set_meta(conn, key, value)
 
     # -- verdict and feedback logs -------------------------------------------------------------
 
     def record_verdicts(self, records: Sequence[VerdictRecord]) -> None:
-        with self.transaction() as conn:
+        with self.transaction(counts=False) as conn:
             verdicts.record_verdicts(conn, records)
 
     def find_verdict(self, tracking_id: str) -> VerdictRecord | None:
@@ -405,9 +419,9 @@ class ModelStore:
 
     def expire_verdict_tokens(self, older_than: float) -> int:
         """Drop the token hashes of verdicts received before *older_than*; keep the rows."""
-        with self.transaction() as conn:
+        with self.transaction(counts=False) as conn:
             return verdicts.expire_verdict_tokens(conn, older_than)
 
     def record_feedback(self, entry: FeedbackRecord) -> None:
-        with self.transaction() as conn:
+        with self.transaction(counts=False) as conn:
             verdicts.record_feedback(conn, entry)

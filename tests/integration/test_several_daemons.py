@@ -16,6 +16,7 @@ checked right after the write, against a bound of an hour.
 from __future__ import annotations
 
 import asyncio
+import concurrent.futures
 import dataclasses
 import multiprocessing
 import os
@@ -366,5 +367,21 @@ def test_several_daemons_cache_keeps_counts_until_a_large_bound(
         clock = types.SimpleNamespace(monotonic=lambda: later, time=time.time)
         monkeypatch.setattr(store_counts, "time", clock)
         assert _view(store) == ([[1, 1]] * 3, [1, 1], 3, [3, 3])
+    finally:
+        store.close()
+
+
+def test_several_daemons_cache_fills_while_the_verdict_log_writes(database: str) -> None:
+    # A daemon's verdict log commits a batch every log.verdict_batch_seconds; a lookup that
+    # overlaps such a write must still be cached (it changes no count), or the daemon reads
+    # newer counts than its bound promises and pays a query for it.
+    store = ModelStore.open(database, staleness_seconds=3600.0)
+    try:
+        store.train(WORDS, HAM, digest=b"first-message-16", source="here")
+        # The log's transaction stays open (as record_verdicts holds it) while a lookup runs.
+        with store.transaction(counts=False), concurrent.futures.ThreadPoolExecutor(1) as pool:
+            assert pool.submit(store.lookup, WORDS).result().tolist() == [[1, 0]] * 3
+        _other_process_trains(database, SPAM, b"other-message-16")
+        assert store.lookup(WORDS).tolist() == [[1, 0]] * 3
     finally:
         store.close()
