@@ -192,10 +192,16 @@ class ModelStore:
         now = time.monotonic()
         if not force and now - self._checked < self._staleness:
             return
+        with self._lock:
+            epoch = self._epoch
         with self._reading() as conn:
             revision, totals = self._read_totals(conn)
         with self._lock:
-            if revision != self._revision:
+            # An own commit that landed during the read moved memory past what was read; it
+            # is then newer than the read, so it stays.  Otherwise a revision that differs
+            # (higher, or lower after the database was recreated) replaces memory.
+            raced = epoch != self._epoch and revision < self._revision
+            if revision != self._revision and not raced:
                 self._reset(revision, totals)
             self._checked = now
 

@@ -385,3 +385,29 @@ def test_several_daemons_cache_fills_while_the_verdict_log_writes(database: str)
         assert store.lookup(WORDS).tolist() == [[1, 0]] * 3
     finally:
         store.close()
+
+
+def test_several_daemons_freshness_check_racing_an_own_commit_keeps_the_commit(
+    database: str,
+) -> None:
+    # A scoring thread reads the revision, this process commits a correction (memory moves
+    # on to the new revision), then the scoring thread's check lands.  It must not put the
+    # older revision and totals back: the correction would vanish from this daemon until
+    # its next check, an hour here.
+    store = ModelStore.open(database, staleness_seconds=3600.0)
+    try:
+        store.train(WORDS, HAM, digest=b"first-message-16", source="here")
+        read = store._read_totals
+
+        def read_then_commit(conn: Any) -> Any:
+            found = read(conn)
+            store.train(WORDS, SPAM, digest=b"other-message-16", source="here")
+            return found
+
+        store._read_totals = read_then_commit  # type: ignore[method-assign]
+        store._check_fresh(force=True)
+        store._read_totals = read  # type: ignore[method-assign]
+        assert store.class_count().tolist() == [1, 1]  # before vocabulary() reloads anything
+        assert _view(store) == ([[1, 1]] * 3, [1, 1], 3, [3, 3])
+    finally:
+        store.close()
