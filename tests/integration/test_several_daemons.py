@@ -195,6 +195,33 @@ async def test_several_daemons_correction_through_one_changes_the_others_score(
         assert await _eventually_other_than(b, reminder, old) == new
 
 
+async def test_several_daemons_correction_through_another_daemon_than_the_judge(
+    database: str, tmp_path: Path
+) -> None:
+    # Behind one mail server the user's forward may reach any daemon: B finds A's verdict in
+    # the shared log and retrains exactly the tokens A judged on; A then scores it anew.
+    _train_scenario(database)
+    reminder = scenario.overdue_reminder().raw
+    hashes = hashes_of(reminder, DEFAULT_OPTIONS)
+    async with _daemons(database, tmp_path, STALENESS, STALENESS) as (a, b):
+        old, tracking_id = await a.score(reminder)
+        assert a.service.verdict_log is not None
+        await a.service.verdict_log.flush()
+        before = ModelStore.open(database)
+        counts, totals = before.lookup(hashes), before.class_count()
+        before.close()
+
+        await _correct_as_wanted(b, tracking_id)
+
+        after = ModelStore.open(database)
+        try:
+            assert (after.lookup(hashes) - counts).tolist() == [[1, -1]] * len(hashes)
+            assert (after.class_count() - totals).tolist() == [1, -1]
+        finally:
+            after.close()
+        assert await _eventually_other_than(a, reminder, old) < old
+
+
 # -- concurrent corrections through the feedback intake lose no count ----------------------------
 
 WORKERS = 4
