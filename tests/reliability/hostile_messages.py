@@ -26,7 +26,7 @@ def head(name: str, content_type: str = "text/plain; charset=utf-8", extra: str 
         f"Content-Type: {content_type}\r\n"
         f"{extra}"
         "\r\n"
-    ).encode("utf-8")
+    ).encode()
 
 
 def deep_nesting(depth: int = 5000) -> bytes:

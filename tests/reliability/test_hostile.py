@@ -18,7 +18,6 @@ import resource
 import time
 import tracemalloc
 from collections.abc import Iterator
-from pathlib import Path
 
 import pytest
 from hostile_messages import CRAFTED, MB, fixed_messages
@@ -29,7 +28,7 @@ from reliability_helpers import message_id, without_own_fields
 from threaded_daemon import ThreadedDaemon, as_sent, threaded_daemon
 
 TOKENIZER_MEMORY_BOUND = 64 * MB
-ALL = {**{name: make for name, make in CRAFTED.items()}}
+
 FIXED = fixed_messages()
 
 
