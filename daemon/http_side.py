@@ -280,6 +280,8 @@ def _parse_json(body: bytes, client: str) -> FeedbackRequest:
         raise BadRequest(
             f"malformed JSON: {exc.msg} at line {exc.lineno} column {exc.colno}"
         ) from exc
+    except RecursionError as exc:  # "[[[[..." past the interpreter's depth: not a request
+        raise BadRequest("malformed JSON: nested too deeply") from exc
     if not isinstance(data, dict):
         raise BadRequest(f"JSON body must be an object, got {type(data).__name__}")
     unknown = sorted(set(data) - {"tracking_id", "kind"})
