@@ -201,7 +201,20 @@ class FaultyNextHop(NextHop):
     def __init__(self) -> None:
         super().__init__()
         self.fault: Callable[[bytes], str | None] = lambda content: None
+        self.mail_fault: Callable[[], str | None] = lambda: None  # a reply to MAIL FROM
         self.faults: Counter[str] = Counter()
+
+    async def handle_MAIL(
+        self, server: SMTP, session: Session, envelope: Envelope, address: str, options: list[str]
+    ) -> str:
+        fault = self.mail_fault()
+        if fault is None:
+            return await super().handle_MAIL(server, session, envelope, address, options)
+        self.faults["MAIL " + fault.split(" ")[0]] += 1
+        if fault.startswith("421"):
+            assert server.transport is not None
+            asyncio.get_running_loop().call_later(0.01, server.transport.close)
+        return fault
 
     async def handle_DATA(self, server: SMTP, session: Session, envelope: Envelope) -> str:
         fault = self.fault(envelope.original_content or b"")

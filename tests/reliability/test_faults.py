@@ -59,9 +59,12 @@ class Gate:
     """A TCP pass-through in front of the next hop that can go down (refuse connections and
     reset the ones open, as a next hop restarting does) and come back on the same port."""
 
-    def __init__(self, target: HostPort) -> None:
+    def __init__(self, target: HostPort, cut_share: float = 0.0) -> None:
         self.target = target
         self.port = 0
+        self.cut_share = cut_share  # share of message contents cut off halfway (then RST)
+        self.cuts = 0
+        self._rng = random.Random(11)
         self._server: asyncio.Server | None = None
         self._writers: set[asyncio.StreamWriter] = set()
 
@@ -88,9 +91,19 @@ class Gate:
             return
         self._writers.add(far_writer)
 
-        async def copy(src: asyncio.StreamReader, dst: asyncio.StreamWriter) -> None:
+        async def copy(
+            src: asyncio.StreamReader, dst: asyncio.StreamWriter, upstream: bool
+        ) -> None:
+            after_data = False  # the chunk after a DATA command is message content
             try:
                 while data := await src.read(65536):
+                    if upstream and after_data and self._rng.random() < self.cut_share:
+                        self.cuts += 1
+                        dst.write(data[: len(data) // 2])
+                        await dst.drain()
+                        writer.transport.abort()
+                        break
+                    after_data = upstream and data.endswith(b"DATA\r\n")
                     dst.write(data)
                     await dst.drain()
             except OSError:
@@ -98,7 +111,7 @@ class Gate:
             finally:
                 dst.transport.abort()
 
-        await asyncio.gather(copy(reader, far_writer), copy(far_reader, writer))
+        await asyncio.gather(copy(reader, far_writer, True), copy(far_reader, writer, False))
         self._writers.discard(writer)
         self._writers.discard(far_writer)
 
@@ -190,6 +203,60 @@ async def test_faults_next_hop_refusing_connections_loses_nothing(
     row(
         "next hop refuses connections (down, then back)",
         {**first, "after_retry_accepted": figures["accepted"]},
+    )
+
+
+@pytest.mark.slow
+async def test_faults_next_hop_connection_cut_mid_data_loses_nothing(
+    tmp_path: Path, sink: FaultyNextHop
+) -> None:
+    """The connection to the next hop breaks halfway through the message content (a proxy
+    passes half of it, then resets both sides)."""
+    messages = batch(5)
+    ledger = Ledger()
+    gate = Gate(sink.address, cut_share=0.3)
+    await gate.up()
+    try:
+        async with daemon(tmp_path, HostPort(LOCAL, gate.port)) as service:
+            port = service.smtp_address.port
+            await upstream(port, messages, ledger, clients=CLIENTS)
+            first = check_nothing_lost(messages, ledger, sink)
+            gate.cut_share = 0.0
+            await retry_held(port, messages, ledger)
+    finally:
+        await gate.down()
+    figures = check_nothing_lost(messages, ledger, sink)
+    assert gate.cuts > 0 and first["held"] > 0
+    assert figures["accepted"] == COUNT, figures
+    row(
+        "next hop connection reset halfway through the content",
+        {**first, "after_retry_accepted": figures["accepted"], "cuts": gate.cuts},
+    )
+
+
+@pytest.mark.slow
+async def test_faults_next_hop_refusing_senders_loses_nothing(
+    tmp_path: Path, sink: FaultyNextHop
+) -> None:
+    """The next hop answers MAIL FROM with 421, 451 or 550 at random (so the upstream hears
+    it at RCPT, where the relay opens the next-hop transaction)."""
+    messages = batch(6)
+    ledger = Ledger()
+    rng = random.Random(6)
+    choices = ["421 4.3.2 Closing", "451 4.3.0 Busy", "550 5.7.1 Sender refused"]
+    sink.mail_fault = lambda: rng.choice(choices) if rng.random() < 0.3 else None
+    async with daemon(tmp_path, sink.address) as service:
+        port = service.smtp_address.port
+        await upstream(port, messages, ledger, clients=CLIENTS)
+        first = check_nothing_lost(messages, ledger, sink)
+        sink.mail_fault = lambda: None
+        await retry_held(port, messages, ledger)
+    figures = check_nothing_lost(messages, ledger, sink)
+    assert first["held"] > 0 and first["bounced"] > 0, first
+    assert figures["held"] == 0 and figures["accepted"] + figures["bounced"] == COUNT
+    row(
+        "next hop refuses MAIL FROM at random (421/451/550)",
+        {**first, "after_retry_accepted": figures["accepted"], "faults": dict(sink.faults)},
     )
 
 
