@@ -165,5 +165,6 @@ async def test_crash_sigkill_mid_transaction_loses_nothing(
     print(
         f"\nFAULT | daemon SIGKILLed mid-transaction, restarted | {at_kill} | "
         f"in_flight_at_kill={in_flight_at_kill} | after_retry_accepted={figures['accepted']} | "
+        f"duplicated by the retry={figures['duplicates_on_retry']} | "
         f"verdict rows lost with the kill={at_kill['accepted'] - rows_after_kill}"
     )
