@@ -287,7 +287,9 @@ class FeedbackIntake:
             verdict = await asyncio.to_thread(self._store.find_verdict, tracking_id)
             if verdict is not None or self._verdict_log is None:
                 return verdict
-            if self._verdict_log.pending:
+            # Bounded by the deadline too: a flush that keeps failing (a locked database)
+            # leaves records pending, and the correction must get its 451 rather than spin.
+            if self._verdict_log.pending and time.monotonic() < deadline:
                 await self._verdict_log.flush()
                 continue
             issued = issued_at(tracking_id)
