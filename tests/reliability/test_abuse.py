@@ -10,8 +10,11 @@ are row for row what they were before (the "unchanged" oracle, reliability_helpe
 
 from __future__ import annotations
 
+import asyncio
 import dataclasses
 import json
+import sqlite3
+import time
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from dataclasses import dataclass
@@ -19,7 +22,9 @@ from pathlib import Path
 from typing import Any
 
 import aiohttp
+import pytest
 from hostile_messages import fixed_messages
+from mailweir.daemon import feedback as feedback_module
 from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
 from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.judge import Judge
@@ -27,7 +32,9 @@ from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.settings import FeedbackSettings
 from mailweir.daemon.smtp import FilterHandler, create_smtp_server
 from mailweir.daemon.verdict_log import VerdictLog
+from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.store import ModelStore
+from mailweir.store import engine as store_engine
 from prometheus_client.parser import text_string_to_metric_families
 from reliability_helpers import (
     LOCAL,
@@ -39,6 +46,7 @@ from reliability_helpers import (
     verdict_rows,
 )
 from smtp_helpers import send
+from test_forwarded import as_attachment
 
 TOKEN = "harbour-lane-feedback-3f9c1e"
 SPAM_ADDRESS = "report-spam@harbourlane.example"
@@ -273,3 +281,78 @@ async def test_abuse_http_requests_refused_counted_model_unchanged(
         f"\nABUSE | HTTP | {len(cases)} requests | "
         f"statuses {sorted({s for _, s, _ in got})} | counted {counted}"
     )
+
+
+# -- a correction while the database is locked -------------------------------------------------
+
+
+async def test_abuse_feedback_while_database_locked_is_deferred_not_lost(
+    tmp_path: Path, sink: FaultyNextHop, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Another process holds SQLite's write lock: the correction is answered 451 (the mail
+    server keeps it and retries) within a bounded time, nothing changes; after the lock is
+    gone the retry trains it once, and a second retry changes nothing."""
+    pragmas = tuple(
+        (name, "100" if name == "busy_timeout" else value)
+        for name, value in store_engine.SQLITE_PRAGMAS
+    )
+    monkeypatch.setattr(store_engine, "SQLITE_PRAGMAS", pragmas)
+    async with daemon(tmp_path, sink, ("127.0.0.0/8",)) as running:
+        first = await send(running.port, message())
+        assert first.data is not None and first.data[0] == 250
+        correction = as_attachment(sink.deliveries[-1].content)
+        lock = sqlite3.connect(running.database, isolation_level=None)
+        try:
+            lock.execute("BEGIN EXCLUSIVE")
+            before = model_dump(running.database)
+            started = time.monotonic()
+            locked = await asyncio.wait_for(send(running.port, correction, [SPAM_ADDRESS]), 60)
+            locked_seconds = time.monotonic() - started
+            during = model_dump(running.database)
+        finally:
+            lock.rollback()
+            lock.close()
+        retried = await send(running.port, correction, [SPAM_ADDRESS])
+        again = await send(running.port, correction, [SPAM_ADDRESS])
+        after = model_dump(running.database)
+        stored = sum(
+            running.sample("mailweir_feedback_total", kind=k)
+            for k in ("false_positive", "false_negative", "confirmation")
+        )
+    assert locked.data is not None and locked.data[0] == 451, locked
+    assert during == before
+    assert retried.data is not None and retried.data[0] == 250, retried
+    assert again.data is not None and again.data[0] == 250, again
+    assert after != before and stored == 1
+    print(
+        f"\nABUSE | feedback while the database is locked | 451 after {locked_seconds:.1f} s, "
+        "then trained once on retry"
+    )
+
+
+class _StuckLog:
+    """A verdict log whose writes keep failing: records stay pending however often flushed."""
+
+    pending = 1
+
+    async def flush(self) -> None:
+        await asyncio.sleep(0.01)
+
+
+class _NoVerdicts:
+    def find_verdict(self, tracking_id: str) -> None:
+        return None
+
+
+async def test_abuse_feedback_verdict_wait_is_bounded_when_the_log_cannot_write(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """Regression: the wait for a not-yet-written verdict flushed the log and looped while
+    records stayed pending, with no deadline on that path; under a lasting database lock a
+    correction spun until a background write happened to empty the queue."""
+    monkeypatch.setattr(feedback_module, "VERDICT_WAIT", 0.2)
+    intake = FeedbackIntake(
+        _NoVerdicts(), FeedbackSettings(), DEFAULT_OPTIONS, verdict_log=_StuckLog()
+    )
+    found = await asyncio.wait_for(intake._find_verdict("06h3911p06b1oaj2"), 30)
+    assert found is None
