@@ -12,7 +12,9 @@ like-for-like comparison.
 
 from __future__ import annotations
 
+import dataclasses
 import tempfile
+import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,12 +22,21 @@ from pathlib import Path
 import numpy as np
 from mailweir.daemon.charts import Series, line_chart
 from mailweir.daemon.learning import OpenModel, Progress, open_model
+from mailweir.daemon.replay_counts import MemoryCounts
 from mailweir.daemon.sources import LabelledMessage
 from mailweir.model import evaluate
 from mailweir.model.hashing import hash_tokens, message_digest
-from mailweir.model.nb import make_scorer
-from mailweir.model.tokenize import tokens
-from mailweir.model.types import LABELS
+from mailweir.model.nb import NaiveBayes, make_scorer
+from mailweir.model.tokenize import DEFAULT_OPTIONS, tokens
+from mailweir.model.types import (
+    HAM,
+    LABELS,
+    SPAM,
+    ClassCounts,
+    TokenCounts,
+    TokenHashes,
+    Vocabulary,
+)
 
 
 @dataclass(frozen=True)
@@ -37,6 +48,7 @@ class ReplayPlan:
     ignore_headers: tuple[str, ...] = ()
     database: str | None = None  # None: a throw-away SQLite file
     train_only_on_errors_margin: float | None = None  # thick threshold, in log-odds (None: off)
+    in_memory: bool = False  # counts in numpy arrays, no database (see MemoryCounts)
 
 
 @dataclass
@@ -88,7 +100,17 @@ class ReplayResult:
 def replay(
     corpus: Sequence[LabelledMessage], plan: ReplayPlan, *, progress: Progress
 ) -> ReplayResult:
-    """Run the plan over the corpus and collect every method's scores in corpus order."""
+    """Run the plan over the corpus and collect every method's scores in corpus order.
+
+    With ``plan.in_memory`` the counts live in numpy arrays (:class:`MemoryCounts`) instead of a
+    model database: the same figures, much faster, but no database size to report.
+    """
+    if plan.in_memory:
+        options = dataclasses.replace(
+            DEFAULT_OPTIONS, bigrams=plan.bigrams, ignore_headers=plan.ignore_headers
+        )
+        hashes = [hash_tokens(tokens(m.raw, options)) for m in corpus]
+        return replay_hashes(hashes, [m.label for m in corpus], [m.name for m in corpus], plan)
     with tempfile.TemporaryDirectory(prefix="mailweir-replay-") as scratch:
         target = plan.database or str(Path(scratch) / "replay.sqlite3")
         model = open_model(
@@ -98,6 +120,85 @@ def replay(
             return _run(model, corpus, plan, progress)
         finally:
             model.close()
+
+
+def replay_hashes(
+    messages: Sequence[TokenHashes],
+    labels: Sequence[int],
+    names: Sequence[str],
+    plan: ReplayPlan,
+    scorers: Sequence[NaiveBayes] | None = None,
+    *,
+    log_odds: bool = False,
+) -> ReplayResult:
+    """The replay of already tokenized messages, counts in memory (for benchmarks and sweeps).
+
+    ``scorers`` (default: ``plan.methods`` with default parameters) may carry parameters; with
+    a thick threshold the first one decides what is trained.  With ``log_odds`` the scores are
+    ``jll[spam] - jll[ham]`` instead of probabilities: the same order, but without the ties a
+    probability rounded to 1.0 makes among the most certain messages.
+    """
+    chosen = list(scorers) if scorers is not None else [make_scorer(m) for m in plan.methods]
+    counts = MemoryCounts(messages)
+    started = time.monotonic()
+    n_train = int(len(messages) * plan.train_fraction) if plan.protocol == "split" else 0
+    ledger: set[bytes] = set()  # as the store's ledger: an exact copy is not counted twice
+
+    def learn(i: int) -> None:
+        digest = message_digest(messages[i])
+        if digest not in ledger:
+            ledger.add(digest)
+            counts.train(i, labels[i])
+
+    for i in range(n_train):
+        learn(i)
+    scores = np.zeros((len(chosen), len(messages) - n_train))
+    for i in range(n_train, len(messages)):
+        found, classes, vocabulary = counts.lookup(i), counts.class_count(), counts.vocabulary()
+        for m, scorer in enumerate(chosen):
+            scores[m, i - n_train] = _score(scorer, found, classes, vocabulary, log_odds)
+        first = scores[0, i - n_train]
+        if plan.protocol == "online" and (
+            _logit_should_train(first, labels[i], plan)
+            if log_odds
+            else _should_train(first, labels[i], plan)
+        ):
+            learn(i)
+    label_array = np.asarray(labels[n_train:], dtype=np.int64)
+    kept = list(names[n_train:])
+    return ReplayResult(
+        [MethodResult(_describe(s), scores[m], label_array, kept) for m, s in enumerate(chosen)],
+        trained=len(ledger),
+        seconds=time.monotonic() - started,
+        tokens=counts.tokens,
+    )
+
+
+def _score(
+    scorer: NaiveBayes,
+    found: TokenCounts,
+    classes: ClassCounts,
+    vocabulary: Vocabulary,
+    log_odds: bool,
+) -> float:
+    if not log_odds:
+        return scorer.spam_probability(found, classes, vocabulary)
+    if not (classes > 0).all():
+        return 0.0
+    with np.errstate(divide="ignore"):
+        jll = scorer.joint_log_likelihood(found, classes, vocabulary)
+    return float(np.clip(jll[SPAM] - jll[HAM], -1e300, 1e300))
+
+
+def _describe(scorer: NaiveBayes) -> str:
+    """``name`` or ``name(param=value, ...)`` for parameters away from their defaults."""
+    default = type(scorer)()
+    changed = [
+        f"{f.name}={getattr(scorer, f.name)}"
+        for f in dataclasses.fields(scorer)  # type: ignore[arg-type]
+        if getattr(scorer, f.name) != getattr(default, f.name)
+    ]
+    return f"{scorer.name}({', '.join(changed)})" if changed else scorer.name
 
 
 def _run(
@@ -121,7 +222,7 @@ def _run(
         counts = model.store.lookup(hashes)
         classes, vocabulary = model.store.class_count(), model.store.vocabulary()
         for m, scorer in enumerate(scorers):
-            scores[m, i] = scorer.score(hashes, counts, classes, vocabulary, 0).spam_probability
+            scores[m, i] = scorer.spam_probability(counts, classes, vocabulary)
         if plan.protocol == "online" and _should_train(scores[0, i], message.label, plan):
             model.store.train(hashes, message.label, digest=message_digest(hashes), source="replay")
             trained += 1
@@ -144,7 +245,12 @@ def _should_train(probability: float, label: int, plan: ReplayPlan) -> bool:
     if plan.train_only_on_errors_margin is None:
         return True
     p = min(max(probability, 1e-300), 1 - 1e-16)
-    logit = float(np.log(p) - np.log1p(-p))
+    return _logit_should_train(float(np.log(p) - np.log1p(-p)), label, plan)
+
+
+def _logit_should_train(logit: float, label: int, plan: ReplayPlan) -> bool:
+    if plan.train_only_on_errors_margin is None:
+        return True
     signed = logit if label == 1 else -logit  # > 0: judged the right way
     return signed < plan.train_only_on_errors_margin
 
