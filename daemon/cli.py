@@ -13,7 +13,7 @@ import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from mailweir.daemon import exchange_commands, learning
+from mailweir.daemon import calibrate, exchange_commands, learning
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.sources import SourceError, read_corpus
 from mailweir.model.hashing import token_hash
@@ -366,6 +366,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_replay_command(sub)
     _add_model_commands(sub)
     exchange_commands.add_commands(sub)
+    calibrate.add_command(sub)
     return parser
 
 
