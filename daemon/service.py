@@ -30,6 +30,7 @@ from typing import Any
 
 from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource, validate
 from mailweir.daemon.errors import ConfigError
+from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
 from mailweir.daemon.http_side import FeedbackHandler
 from mailweir.daemon.judge import Judge, make_executor
 from mailweir.daemon.metrics import Metrics
@@ -226,7 +227,17 @@ class Service:
         )
         await self.verdict_log.start()
         self.metrics.watch_verdict_log(self.verdict_log)
-        self.handler = _make_handler(self.settings, self.judge, self.verdict_log, self.metrics)
+        intake = FeedbackIntake(
+            self.store,
+            self.settings.feedback,
+            self.judge.options,
+            self.metrics,
+            verdict_log=self.verdict_log,
+        )
+        self.feedback = intake
+        self.handler = _make_handler(
+            self.settings, self.judge, self.verdict_log, self.metrics, intake
+        )
 
     async def _close_parts(self) -> None:
         if self.verdict_log is not None:
@@ -260,11 +271,17 @@ def _restart_only_changes(old: Settings, new: Settings) -> list[str]:
 
 
 def _make_handler(
-    settings: Settings, judge: Judge, verdict_log: VerdictLog, metrics: Metrics
+    settings: Settings,
+    judge: Judge,
+    verdict_log: VerdictLog,
+    metrics: Metrics,
+    intake: FeedbackIntake,
 ) -> Any:
+    """The SMTP handler: feedback transactions answered by the gate, the rest filtered."""
     from mailweir.daemon.smtp import FilterHandler
 
-    return TransactionWatch(FilterHandler(settings, judge, verdict_log, metrics=metrics))
+    filtering = FilterHandler(settings, judge, verdict_log, metrics=metrics)
+    return TransactionWatch(FeedbackGate(filtering, intake))
 
 
 async def _create_smtp_server(settings: Settings, handler: Any) -> Any:
@@ -305,10 +322,11 @@ class TransactionWatch:
         return [c for c in self.open_connections() if c.envelope.rcpt_tos]
 
     def reload(self, settings: Settings) -> None:
-        if hasattr(self.handler, "reload"):
-            self.handler.reload(settings)
-        else:
-            self.handler.settings = settings  # FilterHandler reads its policy per message
+        # Unwrap to the FilterHandler (under the feedback gate): it reads its policy per message.
+        target = self.handler
+        while "handler" in vars(target):
+            target = target.handler
+        target.settings = settings
 
 
 async def _drain(watch: Any, grace: float) -> int:
