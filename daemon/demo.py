@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import contextlib
+import dataclasses
 import email
 import mailbox
 import shutil
@@ -18,15 +19,16 @@ import sys
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass
-from email.message import Message
+from email.message import EmailMessage, Message
 from pathlib import Path
 
 import aiosmtplib
 from aiosmtpd.smtp import SMTP, Envelope, Session
 from mailweir.daemon import scenario
-from mailweir.daemon.learning import model_hashes_only, open_model, score_message
+from mailweir.daemon.learning import model_hashes_only, open_model
 from mailweir.daemon.service import Service
 from mailweir.daemon.settings import (
+    FeedbackSettings,
     HostPort,
     HttpSettings,
     ModelSettings,
@@ -90,6 +92,9 @@ def demo_settings(run_dir: Path, sink_port: int, http_port: int) -> Settings:
         ),
         model=ModelSettings(database=str(run_dir / "model.sqlite3")),
         http=HttpSettings(listen=HostPort(LOCALHOST, http_port)),
+        feedback=FeedbackSettings(
+            spam_address=scenario.FEEDBACK_SPAM, ham_address=scenario.FEEDBACK_HAM
+        ),
     )
 
 
@@ -188,7 +193,7 @@ async def run_demo(run_dir: Path, http_port: int, keep_running: bool) -> int:
         print("3. The morning's mail, as it landed:\n")
         print_table(rows, ("from", "subject", "verdict", "score", "delivered to"))
         print()
-        await correction(service, run_dir)
+        await correction(service, maildirs)
         status = service.http_address
         if status is not None:
             print(f"\n5. Status page: http://{status}/   (metrics at http://{status}/metrics)")
@@ -203,21 +208,41 @@ async def run_demo(run_dir: Path, http_port: int, keep_running: bool) -> int:
     return 0
 
 
-async def correction(service: Service, run_dir: Path) -> None:
-    """The practice manager sends the supplier's reminder back as wanted mail."""
+def forward_as_attachment(landed: Message, sender: str, to: str) -> bytes:
+    """What a mail client makes of "Forward as attachment": the original as message/rfc822."""
+    forward = EmailMessage()
+    forward["From"] = sender
+    forward["To"] = to
+    forward["Subject"] = f"Fwd: {landed['Subject']}"
+    forward.set_content("This one is from our linen supplier; it is wanted mail.\n")
+    forward.add_attachment(landed)
+    return forward.as_bytes()
+
+
+async def correction(service: Service, maildirs: Path) -> None:
+    """The practice manager sends the supplier's reminder back to the wanted-mail address."""
     reminder = scenario.overdue_reminder()
-    model = open_model(str(run_dir / "model.sqlite3"))
-    try:
-        before, _ = score_message(model, reminder.raw)
-        hashes = model_hashes_only(model, reminder.raw)
-        model.store.train(hashes, HAM, digest=message_digest(hashes), source="feedback")
-        after, _ = score_message(model, reminder.raw)
-    finally:
-        model.close()
-    print(f'4. Tobias marks "{reminder.subject}" as wanted mail.')
+    msgid = str(email.message_from_bytes(reminder.raw)["Message-ID"])
+    landed = read_landed(maildirs)[msgid].message
+    tobias = reminder.recipients[0]
+    forward = scenario.ScenarioMessage(
+        "ham",
+        tobias,
+        (scenario.FEEDBACK_HAM,),
+        "Fwd",
+        forward_as_attachment(landed, tobias, scenario.FEEDBACK_HAM),
+    )
+    reply = await send(service.smtp_address, forward)
+    print(f'4. Tobias forwards "{reminder.subject}" to {scenario.FEEDBACK_HAM}:')
+    print(f"   mailweir answered: {reply}")
+    again = reminder.raw.replace(msgid.encode(), msgid.replace("@", ".again@").encode())
+    await send(service.smtp_address, dataclasses.replace(reminder, raw=again))
+    await asyncio.sleep(0.2)
+    resent = read_landed(maildirs)[msgid.replace("@", ".again@")].message
     print(
-        f"   Its spam probability: {before.spam_probability:.4f} before, "
-        f"{after.spam_probability:.4f} after the correction."
+        f"   The same reminder sent again now scores {resent['Mailweir-Score']} "
+        f"({resent['Mailweir-Verdict']}); before the correction it scored "
+        f"{landed['Mailweir-Score']} ({landed['Mailweir-Verdict']})."
     )
 
 
