@@ -54,6 +54,8 @@ def check(data: bytes) -> None:
             raise AssertionError(f"{peak} bytes allocated for a {len(data)}-byte input")
     if seconds > _state["slowest"]:
         _state["slowest"], _state["slowest_size"] = seconds, len(data)
+        if _state["runs"] > 1000:  # past the seeds; libFuzzer may exit without atexit
+            report()
     if "mime:failed" in found:
         raise AssertionError("the tokenizer caught an exception (mime:failed)")
     if len(found) > DEFAULT_OPTIONS.max_tokens or not all(found):
@@ -62,7 +64,8 @@ def check(data: bytes) -> None:
 
 def report() -> None:
     print(
-        f"\nfuzz_tokenizer: {_state['runs']} inputs; slowest {_state['slowest'] * 1000:.1f} ms "
+        f"\nfuzz_tokenizer: {_state['runs']} inputs so far; "
+        f"slowest {_state['slowest'] * 1000:.1f} ms "
         f"({_state['slowest_size']} bytes)",
         file=sys.stderr,
     )
