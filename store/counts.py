@@ -300,13 +300,15 @@ class ModelStore:
             if self._vocab is not None:
                 return self._vocab.snapshot()
         while True:
+            with self._lock:
+                epoch = self._epoch
             with self._reading(snapshot=True) as conn, conn.begin():
                 revision, totals = self._read_totals(conn)
                 tracker = VocabularyTracker.load(conn)
             with self._lock:
-                if revision < self._revision:
+                if revision < self._revision and epoch != self._epoch:
                     continue  # our own commit landed after the snapshot: read again
-                if revision > self._revision:
+                if revision != self._revision:  # lower: the database was restored
                     self._reset(revision, totals)
                 self._vocab = tracker
                 return tracker.snapshot()
