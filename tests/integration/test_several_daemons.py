@@ -18,6 +18,8 @@ from __future__ import annotations
 import asyncio
 import concurrent.futures
 import dataclasses
+import email
+import email.policy
 import multiprocessing
 import os
 import random
@@ -111,7 +113,8 @@ class Daemon:
         return self.service.smtp_address.port
 
     async def score(self, raw: bytes) -> tuple[float, str]:
-        """Send ``raw`` through this daemon; the score and id its next hop received."""
+        """Send ``raw`` through this daemon; the score and id its next hop received (the copy
+        itself is ``sink.deliveries[-1]``)."""
         sent = await send(self.port, raw, [TOBIAS], SUPPLIER)
         assert sent.data is not None and sent.data[0] == 250, sent
         delivered = self.sink.deliveries[-1].content
@@ -148,20 +151,22 @@ async def _daemons(url: str, tmp_path: Path, *bounds: float) -> AsyncIterator[li
         yield daemons
 
 
-async def _correct_as_wanted(daemon: Daemon, tracking_id: str) -> None:
-    """A false-positive correction by tracking id through the daemon's own feedback intake,
-    on its store, tokenizer options, metrics and verdict log."""
-    service = daemon.service
-    assert service.judge is not None
-    intake = FeedbackIntake(
-        service.store,
-        service.settings.feedback,
-        service.judge.options,
-        service.metrics,
-        verdict_log=service.verdict_log,
-    )
-    outcome = await intake(FeedbackRequest("ham", "http", tracking_id=tracking_id))
-    assert outcome.status is FeedbackStatus.MOVED, outcome
+async def _correct_as_wanted(daemon: Daemon, delivered: bytes) -> str:
+    """Tobias forwards the delivered copy as an attachment to the daemon's wanted-mail address
+    over SMTP from 127.0.0.1 (in the default feedback.trusted_networks); the reply text."""
+    forward = email.message.EmailMessage()
+    forward["From"] = f"Tobias Lindqvist <{TOBIAS}>"
+    forward["To"] = scenario.FEEDBACK_HAM
+    forward["Subject"] = "Fwd: Payment reminder: invoice 20417 overdue"
+    forward.set_content("This is our linen supplier, not junk.\n")
+    original = email.message_from_bytes(delivered, policy=email.policy.default)
+    forward.add_attachment(original)  # message/rfc822 (RFC 2046 section 5.2.1)
+    raw = forward.as_bytes(policy=email.policy.SMTP)
+    sent = await send(daemon.port, raw, [scenario.FEEDBACK_HAM], TOBIAS)
+    assert sent.data is not None, sent
+    code, text = sent.data
+    assert code == 250 and b"1 moved" in text, sent.data
+    return text.decode()
 
 
 async def _eventually_other_than(daemon: Daemon, raw: bytes, old: float) -> float:
@@ -185,7 +190,7 @@ async def test_several_daemons_correction_through_one_changes_the_others_score(
         (old,) = scores
         assert old >= 0.9  # filed as junk: the correction below is a false positive
 
-        await _correct_as_wanted(a, before[0][1])
+        await _correct_as_wanted(a, a.sink.deliveries[-1].content)
 
         # A applied its own commit in memory; the hour-bound daemon still scores from its
         # cache, read before the correction.
@@ -212,7 +217,7 @@ async def test_several_daemons_correction_through_another_daemon_than_the_judge(
         counts, totals = before.lookup(hashes), before.class_count()
         before.close()
 
-        await _correct_as_wanted(b, tracking_id)
+        assert tracking_id in await _correct_as_wanted(b, a.sink.deliveries[-1].content)
 
         after = ModelStore.open(database)
         try:
