@@ -62,7 +62,7 @@ mydomain = harbourlane.example
 mydestination =
 inet_interfaces = loopback-only
 inet_protocols = ipv4
-mynetworks = 127.0.0.0/8
+mynetworks = 127.0.0.1/32
 smtputf8_enable = yes
 alias_maps =
 alias_database =
@@ -99,7 +99,11 @@ anvil     unix  -       -       n       -       1       anvil
 scache    unix  -       -       n       -       1       scache
 postlog   unix-dgram n  -       n       -       1       postlogd
 """
-MAILBOXES = ("tobias", "priya", "quarantine")
+# The feedback addresses are mailboxes too: Postfix must know them (the snippet says so), and
+# anything mailweir wrongly relayed there would show up in them.
+FEEDBACK_SPAM = "report-spam@harbourlane.example"  # as in the after-queue mailweir.toml
+MAILBOXES = ("tobias", "priya", "quarantine", "report-spam", "report-wanted")
+OUTSIDER = "127.0.0.2"  # a client address outside the test's mynetworks (127.0.0.1/32)
 
 
 # -- messages we write ----------------------------------------------------------------------
@@ -230,11 +234,15 @@ def _write_postfix_config(root: Path, position: str, ports: dict[str, int]) -> N
             r"^smtp(\s+inet\s)", rf"127.0.0.1:{ports['front']}\1", text, flags=re.MULTILINE
         )
         assert public == (1 if position == "before-queue" and name == "master.cf" else 0)
-        return text
+        # Postfix tables named by the snippets are read from the instance's own directory.
+        return text.replace("texthash:/etc/postfix/", f"texthash:{conf}/")
 
     nobody = pwd.getpwnam("nobody")
     conf = root / "conf"
     conf.mkdir()
+    for table in ("mailweir_feedback",):
+        if (POSTFIX_SNIPPETS / position / table).exists():
+            shutil.copy(POSTFIX_SNIPPETS / position / table, conf / table)
     main_cf = BASE_MAIN_CF.format(root=root, uid=nobody.pw_uid, gid=nobody.pw_gid)
     (conf / "main.cf").write_text(main_cf + "\n" + ours("main.cf"))
     front = FRONT_SMTPD.format(front=ports["front"]) if position == "after-queue" else ""
@@ -362,9 +370,17 @@ def _start_mailweir(inst: Instance) -> subprocess.Popen[bytes]:
         return subprocess.Popen(command, stdout=out, stderr=subprocess.STDOUT, env=env)
 
 
-def _submit(inst: Instance, rcpt: str, raw: bytes) -> None:
-    with smtplib.SMTP("127.0.0.1", inst.front, timeout=WAIT) as client:
-        refused = client.sendmail("jo.hartley@mail.example", [rcpt], raw)
+def _submit(
+    inst: Instance,
+    rcpt: str,
+    raw: bytes,
+    sender: str = "jo.hartley@mail.example",
+    client_address: str = "127.0.0.1",
+) -> None:
+    with smtplib.SMTP(
+        "127.0.0.1", inst.front, timeout=WAIT, source_address=(client_address, 0)
+    ) as client:
+        refused = client.sendmail(sender, [rcpt], raw)
     assert refused == {}
 
 
@@ -437,3 +453,76 @@ def test_postfix_before_queue_refuses_spam_in_the_session(before_queue: Instance
     # Refused means not queued: nothing may reach any mailbox.
     assert before_queue.delivered("priya") == []
     assert before_queue.delivered("quarantine") == []
+
+
+def _stored(inst: Instance, tracking_id: str) -> tuple[list[list[int]], list[int]] | None:
+    """The counts of the tokens a verdict was judged on and the class totals, once the
+    verdict is in the log (read from the daemon's own database, as ``mailweir stats`` does)."""
+    from mailweir.store import ModelStore
+
+    store = ModelStore.open(str(inst.db), create=False)
+    try:
+        verdict = store.find_verdict(tracking_id)
+        if verdict is None or verdict.token_hashes is None:
+            return None
+        return store.lookup(verdict.token_hashes).tolist(), store.class_count().tolist()
+    finally:
+        store.close()
+
+
+def _forward(message: email.message.EmailMessage, to: str) -> bytes:
+    """Tobias's mail client forwarding ``message`` as an attachment."""
+    forward = email.message.EmailMessage()
+    forward["From"] = "Tobias Lindqvist <tobias@harbourlane.example>"
+    forward["To"] = to
+    forward["Subject"] = f"Fwd: {message['Subject']}"
+    forward["Date"] = "Tue, 01 Dec 2026 10:00:00 +0000"
+    forward["Message-ID"] = "<fwd-1@harbourlane.example>"
+    forward.set_content("This one is junk, please learn from it.\n")
+    forward.add_attachment(message)  # message/rfc822 (RFC 2046 section 5.2.1)
+    return forward.as_bytes(policy=email.policy.SMTP)
+
+
+def test_postfix_after_queue_forward_to_feedback_address_retrains(after_queue: Instance) -> None:
+    instance = after_queue
+    body = f"{HAM_LINES[2]}\r\n{HAM_LINES[5]}"
+    raw = _message("jo.hartley@mail.example", "tobias@harbourlane.example", "Booster", body)
+    _submit(instance, "tobias@harbourlane.example", raw)
+    _wait_for("delivery to tobias", lambda: bool(instance.delivered("tobias")), instance.logs)
+    (path,) = instance.delivered("tobias")
+    delivered = _read(path)
+    tracking_id = str(delivered["Mailweir-Id"])
+    _wait_for(
+        "the verdict logged", lambda: _stored(instance, tracking_id) is not None, instance.logs
+    )
+    before = _stored(instance, tracking_id)
+    assert before is not None
+    counts, totals = before
+
+    _submit(
+        instance,
+        FEEDBACK_SPAM,
+        _forward(delivered, FEEDBACK_SPAM),
+        sender="tobias@harbourlane.example",
+    )
+    # Learned exactly once from the tokens the message was judged on (DESIGN.md "Feedback"):
+    # each gains one spam message, the spam total one.
+    expected = ([[ham, spam + 1] for ham, spam in counts], [totals[0], totals[1] + 1])
+    _wait_for(
+        "the correction stored", lambda: _stored(instance, tracking_id) == expected, instance.logs
+    )
+    assert "Correction stored" in instance.postfix_log.read_text(errors="replace")
+    assert instance.delivered("report-spam") == []  # consumed by mailweir, never delivered
+
+
+def test_postfix_after_queue_refuses_feedback_from_outside(after_queue: Instance) -> None:
+    # Postfix's check from the snippet (mailweir_feedback): a client outside mynetworks that
+    # is not logged in may not write to a feedback address.  RFC 5321 section 4.2.2: 554.
+    raw = _message("offers@prize-centre.invalid", FEEDBACK_SPAM, "Learn this", HAM_LINES[0])
+    with pytest.raises(smtplib.SMTPRecipientsRefused) as refused:
+        _submit(after_queue, FEEDBACK_SPAM, raw, "offers@prize-centre.invalid", OUTSIDER)
+    ((code, text),) = refused.value.recipients.values()
+    assert code == 554 and b"5.7.1" in text, (code, text)
+    # Other mail from the same client is still accepted and delivered.
+    _submit(after_queue, "priya@harbourlane.example", raw, client_address=OUTSIDER)
+    _wait_for("delivery to priya", lambda: bool(after_queue.delivered("priya")), after_queue.logs)
