@@ -151,18 +151,31 @@ async def _daemons(url: str, tmp_path: Path, *bounds: float) -> AsyncIterator[li
         yield daemons
 
 
+def _forward(delivered: bytes, address: str) -> bytes:
+    """Tobias's mail client forwarding the delivered copy as an attachment."""
+    forward = email.message.EmailMessage()
+    forward["From"] = f"Tobias Lindqvist <{TOBIAS}>"
+    forward["To"] = address
+    forward["Subject"] = "Fwd: misfiled"
+    forward.set_content("Please learn from the attached message.\n")
+    original = email.message_from_bytes(delivered, policy=email.policy.default)
+    forward.add_attachment(original)  # message/rfc822 (RFC 2046 section 5.2.1)
+    return forward.as_bytes(policy=email.policy.SMTP)
+
+
+def _stored_as(sent: Any) -> str:
+    """What a 250 reply to a correction says happened: trained, moved or already known."""
+    assert sent.data is not None and sent.data[0] == 250, sent
+    match = re.search(rb"stored: 1 ([a-z ]+) \(", sent.data[1])
+    assert match is not None, sent.data
+    return match.group(1).decode()
+
+
 async def _correct_as_wanted(daemon: Daemon, delivered: bytes) -> str:
     """Tobias forwards the delivered copy as an attachment to the daemon's wanted-mail address
     over SMTP from 127.0.0.1 (in the default feedback.trusted_networks); the reply text."""
-    forward = email.message.EmailMessage()
-    forward["From"] = f"Tobias Lindqvist <{TOBIAS}>"
-    forward["To"] = scenario.FEEDBACK_HAM
-    forward["Subject"] = "Fwd: Payment reminder: invoice 20417 overdue"
-    forward.set_content("This is our linen supplier, not junk.\n")
-    original = email.message_from_bytes(delivered, policy=email.policy.default)
-    forward.add_attachment(original)  # message/rfc822 (RFC 2046 section 5.2.1)
-    raw = forward.as_bytes(policy=email.policy.SMTP)
-    sent = await send(daemon.port, raw, [scenario.FEEDBACK_HAM], TOBIAS)
+    forward = _forward(delivered, scenario.FEEDBACK_HAM)
+    sent = await send(daemon.port, forward, [scenario.FEEDBACK_HAM], TOBIAS)
     assert sent.data is not None, sent
     code, text = sent.data
     assert code == 250 and b"1 moved" in text, sent.data
@@ -226,6 +239,46 @@ async def test_several_daemons_correction_through_another_daemon_than_the_judge(
         finally:
             after.close()
         assert await _eventually_other_than(a, reminder, old) < old
+
+
+async def test_several_daemons_same_forward_to_two_daemons_at_once_counts_once(
+    database: str, tmp_path: Path
+) -> None:
+    # A user (or a mail server retrying) sends the same correction to two daemons at the same
+    # moment: both answer 250, the ledger lets exactly one of them change the model.
+    _train_scenario(database)
+    wanted = scenario.generate(4, "ham", 77)
+    async with _daemons(database, tmp_path, STALENESS, STALENESS) as (a, b):
+        jobs = []  # (message as sent, its delivered copy, feedback address, change per token)
+        for raw, address, change in [
+            (scenario.overdue_reminder().raw, scenario.FEEDBACK_HAM, [1, -1]),
+            *((m.raw, scenario.FEEDBACK_SPAM, [0, 1]) for m in wanted),
+        ]:
+            await a.score(raw)
+            jobs.append((raw, a.sink.deliveries[-1].content, address, change))
+        expected: dict[int, np.ndarray] = {}  # the tokens each message was judged on
+        for raw, _, _, change in jobs:
+            for h in hashes_of(raw, DEFAULT_OPTIONS).tolist():
+                expected[h] = expected.get(h, np.zeros(2, np.int64)) + change
+        keys = np.array(sorted(expected), dtype=np.int64)
+        store = ModelStore.open(database)
+        counts, totals = store.lookup(keys), store.class_count()
+        store.close()
+
+        replies = []
+        for _, delivered, address, _ in jobs:
+            forward = _forward(delivered, address)
+            both = await asyncio.gather(*(send(d.port, forward, [address], TOBIAS) for d in (a, b)))
+            replies.append(sorted(_stored_as(sent) for sent in both))
+
+        assert replies == [["already known", "moved"]] + [["already known", "trained"]] * 4
+        store = ModelStore.open(database)
+        try:
+            change = np.array([expected[k] for k in keys.tolist()])
+            assert (store.lookup(keys) - counts).tolist() == change.tolist()
+            assert (store.class_count() - totals).tolist() == [1, 3]
+        finally:
+            store.close()
 
 
 # -- concurrent corrections through the feedback intake lose no count ----------------------------
