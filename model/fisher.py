@@ -102,13 +102,15 @@ class RobinsonFisher(NaiveBayes):
     Parameters
     ----------
     strength : float
-        s > 0, the weight of the assumed probability, in messages.
+        s > 0, the weight of the assumed probability, in messages (Robinson suggests 1; 0.1
+        measured better here).
     assumed : float
         x in (0, 1), the probability of a token with no data.
     min_deviation : float
         Tokens with ``|f - 0.5|`` below this are ignored; 0.0 keeps every non-neutral token.
     max_tokens : int or None
-        Use at most this many tokens, the largest ``|f - 0.5|`` first; None for no cap.
+        Use at most this many tokens, the largest ``|f - 0.5|`` first; None for no cap.  A cap
+        keeps the chi-square combining from being swamped by many weak, correlated tokens.
 
     References
     ----------
@@ -118,10 +120,13 @@ class RobinsonFisher(NaiveBayes):
     """
 
     name: ClassVar[str] = "fisher"
-    strength: float = 1.0
+    # Defaults chosen by measured accuracy (bench/ACCURACY.md): on the Enron-Spam development
+    # corpus a light prior and the 25 most extreme tokens gave (1-AUC)% 0.163 against 0.301
+    # for Robinson's s = 1 with every token, and caught 80% of spam at 0.1% false positives.
+    strength: float = 0.1
     assumed: float = 0.5
     min_deviation: float = 0.0
-    max_tokens: int | None = None
+    max_tokens: int | None = 25
 
     def __post_init__(self) -> None:
         if not (self.strength > 0 and math.isfinite(self.strength)):

@@ -106,7 +106,7 @@ def test_status_page_shows_figures() -> None:
     assert "123,456" in page  # tokens
     assert "2 (2.22 %)" in page  # 24 h false positives: 2 of 90
     assert "9 (1.50 %)" in page  # 7 d: 9 of 600
-    assert "score ≥ 0.99 → tag" in page and "score ≥ 0.5 → tag" in page
+    assert "score ≥ 0.98 → tag" in page and "score ≥ 0.5 → tag" in page
     assert "2 hours ago" in page
     assert "observe" in page
 
