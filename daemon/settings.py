@@ -95,8 +95,10 @@ class FeedbackSettings:
     # Mail to these addresses is a correction, consumed here and never relayed; empty: off.
     spam_address: str = ""  # "this should have been spam"
     ham_address: str = ""  # "this was wanted mail"
-    # Only SMTP clients in these networks may train.  There is no authenticated submission on
-    # the SMTP side (it offers no AUTH), so trust comes from the client address alone.
+    # Only SMTP clients in these networks may train.  mailweir sees only its direct client:
+    # behind a mail server that is the server, for mail from inside and outside alike, so the
+    # server must refuse outside mail to the feedback addresses.  The SMTP side offers no
+    # AUTH, so there is no authenticated submission to trust instead.
     trusted_networks: tuple[str, ...] = ("127.0.0.0/8", "::1/128")
     rate_limit_per_hour: int = 60  # corrections per envelope sender; 0: no limit
     max_message_bytes: int = 16 * 1024 * 1024
