@@ -12,6 +12,10 @@ tokenized.  The ledger (by :func:`~mailweir.model.hashing.message_digest`) makes
 of a message trained the other way a move and a repeat a no-op; only a correction that changed
 the model is written to the feedback log and counted, so a second send counts once.
 
+Who may train: SMTP clients in ``feedback.trusted_networks``.  mailweir sees only its direct
+client; behind a mail server that is the server for all mail, so the server decides who may
+write to the feedback addresses (deploy/postfix shows how).  There is no SMTP AUTH here.
+
 An id taken from the message itself is checked against the message: when too few of the
 original's tokens are among the verdict's hashes, the id belongs to another message (a sender
 can write any ``Mailweir-Id`` into mail that passes in observe mode, where nothing is
