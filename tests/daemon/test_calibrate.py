@@ -124,3 +124,12 @@ def test_calibrate_without_both_classes_proposes_nothing(
         store.close()
     assert cli.main(["calibrate", "--db", db, "--now", str(NOW)]) == 1
     assert "no proposal" in capsys.readouterr().out
+
+
+def test_calibrate_top_score_ham_proposes_just_above_it() -> None:
+    # The surest message was wanted mail: only a cut-off above every score keeps FP at zero.
+    history = calibrate.History(np.array([0.2, 0.9, 0.97]), np.array([0, 1, 0]), corrected=1)
+    found = calibrate.propose(history, 0.0, 0.0, calibrate.PolicySettings())
+    spam = next(p for p in found if p.name == "proposed spam_cutoff")
+    assert spam.cutoff == np.nextafter(0.97, np.inf)
+    assert (spam.false_positives, spam.false_negatives) == (0, 1)
