@@ -57,9 +57,9 @@ REFUSAL_REASONS: Final = ("untrusted", "rate_limited", "no_original", "unauthori
 RATE_WINDOWS: Final = {"24h": 24 * 3600.0, "7d": 7 * 24 * 3600.0}
 
 # Spam probabilities crowd both ends of [0, 1], so the buckets are fine at the ends and coarse
-# in the middle; 0.5 and 0.99 sit on the default cut-offs (settings.py).
+# in the middle; 0.5 and 0.98 sit on the default cut-offs (settings.py).
 SCORE_BUCKETS: Final = (
-    0.001, 0.01, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99, 0.999, 1.0,
+    0.001, 0.01, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.98, 0.99, 0.999, 1.0,
 )  # fmt: skip
 # Parsing and scoring take milliseconds; a 64 MB message can take seconds.
 CPU_BUCKETS: Final = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 10)
