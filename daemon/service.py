@@ -397,15 +397,19 @@ def run_command(args: argparse.Namespace) -> int:
 
 async def _serve(settings: Settings, source: ConfigSource) -> int:
     service = Service(settings, source)
+    # Handlers first: a SIGTERM that arrives while the HTTP side is still starting (the SMTP
+    # port already listens) must stop us cleanly, not kill the process mid-start.
+    service.install_signal_handlers()
     try:
         await service.startup()
     except ConfigError as exc:
+        service.remove_signal_handlers()
         print(f"mailweir: configuration error: {exc}", file=sys.stderr)
         return 2
     except Exception as exc:
+        service.remove_signal_handlers()
         log.exception("mailweir could not start: %s", exc)
         return 1
-    service.install_signal_handlers()
     await service.wait_for_stop()
     await service.shutdown()
     return 0
