@@ -41,6 +41,7 @@ from pathlib import Path
 from typing import Any, ClassVar
 
 import numpy as np
+
 from mailweir.daemon.replay import ReplayPlan, replay_hashes
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.sources import LabelledMessage, read_corpus

@@ -16,9 +16,10 @@ import time
 from pathlib import Path
 
 import numpy as np
+from sqlalchemy import text
+
 from mailweir.store import ModelStore
 from mailweir.store.engine import NO_BEGIN
-from sqlalchemy import text
 
 TOKENS_PER_MESSAGE = 300
 _MIX = np.uint64(0x9E3779B97F4A7C15)

@@ -21,11 +21,12 @@ import time
 from dataclasses import asdict, dataclass
 
 import numpy as np
+from sqlalchemy import Engine, func, select
+
 from mailweir.daemon.settings import PolicySettings
 from mailweir.model import evaluate
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore, schema
-from sqlalchemy import Engine, func, select
 
 DAY = 86400.0
 WANTED = "false_positive"  # store.verdicts.FeedbackKind: filed as spam, was wanted mail

@@ -24,6 +24,7 @@ from pathlib import Path
 
 import aiosmtplib
 from aiosmtpd.smtp import SMTP, Envelope, Session
+
 from mailweir.daemon import scenario
 from mailweir.daemon.learning import model_hashes_only, open_model
 from mailweir.daemon.service import Service

@@ -16,10 +16,11 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, TextIO
 
+from sqlalchemy import func, select
+
 from mailweir.daemon.settings import Settings
 from mailweir.store import ModelStore, StoreError, schema
 from mailweir.store.exchange import ExchangeSummary, ModelExport, export_model, import_model
-from sqlalchemy import func, select
 
 # The same default and environment variable as the other model commands in cli.py.
 DB_ENV = "MAILWEIR_DB"

@@ -38,6 +38,7 @@ from collections.abc import Callable, Sequence
 from typing import Any, Final, Protocol
 
 import numpy as np
+
 from mailweir.daemon import forwarded
 from mailweir.daemon.actions import ID_FIELD
 from mailweir.daemon.feedback_types import (

@@ -31,6 +31,7 @@ from typing import Any, Final
 
 from aiohttp import web
 from aiohttp.typedefs import Handler
+
 from mailweir.daemon.feedback_types import (
     FeedbackOutcome,
     FeedbackRequest,

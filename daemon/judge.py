@@ -46,6 +46,7 @@ from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
+
 from mailweir.daemon.settings import PolicySettings, Settings
 from mailweir.model.hashing import hash_tokens, token_hash
 from mailweir.model.nb import NaiveBayes, Score, make_scorer

@@ -27,9 +27,6 @@ from collections.abc import Callable, Iterator
 from importlib import metadata
 from typing import Any, Final, Protocol
 
-from mailweir.daemon import replies
-from mailweir.daemon.errors import NextHopRejected, RelayError
-from mailweir.store.reports import MisfilingRates, ModelSummary
 from prometheus_client import (
     CollectorRegistry,
     Counter,
@@ -41,6 +38,10 @@ from prometheus_client import (
 )
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
+
+from mailweir.daemon import replies
+from mailweir.daemon.errors import NextHopRejected, RelayError
+from mailweir.store.reports import MisfilingRates, ModelSummary
 
 log = logging.getLogger("mailweir.metrics")
 

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 
 import aiosmtplib
 from aiosmtplib import errors as smtp_errors
+
 from mailweir.daemon import replies
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
 from mailweir.daemon.replies import Reply

@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+
 from mailweir.daemon.charts import Series, line_chart
 from mailweir.daemon.learning import OpenModel, Progress, open_model
 from mailweir.daemon.replay_counts import MemoryCounts

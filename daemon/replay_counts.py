@@ -13,6 +13,7 @@ from collections.abc import Sequence
 
 import numpy as np
 import numpy.typing as npt
+
 from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
 
 

@@ -18,6 +18,7 @@ from contextlib import contextmanager
 from typing import TYPE_CHECKING, Any, AnyStr, Protocol
 
 from aiosmtpd.smtp import SMTP, Envelope, Session
+
 from mailweir.daemon import actions, headers, replies
 from mailweir.daemon.errors import NextHopUnavailable, RelayError, reply_for
 from mailweir.daemon.relay import HEADER_ALLOWANCE, MailParameters, NextHopSession, RelayTimeouts

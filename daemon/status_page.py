@@ -25,12 +25,13 @@ from dataclasses import dataclass, field
 from html import escape
 from typing import Final
 
+from sqlalchemy import Engine
+
 from mailweir.daemon.bar_charts import BarSeries, category_line_chart, stacked_bar_chart
 from mailweir.daemon.metrics import RATE_WINDOWS
 from mailweir.daemon.settings import PolicySettings
 from mailweir.store import reports
 from mailweir.store.reports import DayReport, MisfilingRates, ModelSummary, ScoreHistogram
-from sqlalchemy import Engine
 
 log = logging.getLogger("mailweir.status_page")
 

@@ -7,6 +7,7 @@ from typing import ClassVar
 
 import numpy as np
 import numpy.typing as npt
+
 from mailweir.model.nb_base import (
     FloatArray,
     NaiveBayes,

@@ -11,6 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
+
 from mailweir.model.types import HAM, SPAM
 
 FloatArray = npt.NDArray[np.float64]

@@ -22,6 +22,7 @@ from typing import ClassVar
 
 import numpy as np
 import numpy.typing as npt
+
 from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
 
 FloatArray = npt.NDArray[np.float64]

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 import numpy.typing as npt
+
 from mailweir.model.types import TokenCounts, TokenHashes
 
 _MIN_RECENT = 4096

@@ -18,6 +18,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from sqlalchemy import Connection, Engine, delete, select
+
 from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
 from mailweir.store import schema, verdicts
 from mailweir.store.cache import CountCache
@@ -37,7 +39,6 @@ from mailweir.store.training import (
 )
 from mailweir.store.verdicts import FeedbackRecord, VerdictRecord
 from mailweir.store.vocab import VocabularyTracker
-from sqlalchemy import Connection, Engine, delete, select
 
 # Bulk training flushes a batch once it holds this many token occurrences.
 _BATCH_TOKENS = 300_000

@@ -6,10 +6,11 @@ import sqlite3
 from pathlib import Path
 from typing import Any
 
-from mailweir.store.errors import StoreUnavailable
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.engine import URL, make_url
 from sqlalchemy.exc import ArgumentError
+
+from mailweir.store.errors import StoreUnavailable
 
 # Connection settings for SQLite files.  WAL lets the scoring path read while a trainer
 # writes; synchronous=NORMAL is durable across application crashes in WAL mode (a power

@@ -41,12 +41,13 @@ from contextlib import AbstractContextManager, contextmanager
 from dataclasses import asdict, dataclass
 from typing import Any, Protocol, TextIO
 
+from sqlalchemy import Connection, Engine, Table, insert, select, update
+from sqlalchemy import exc as sa_exc
+
 from mailweir.model.types import HAM, LABELS, SPAM
 from mailweir.store import schema
 from mailweir.store.engine import READ_ONLY
 from mailweir.store.errors import StoreError, store_errors
-from sqlalchemy import Connection, Engine, Table, insert, select, update
-from sqlalchemy import exc as sa_exc
 
 FORMAT = "mailweir-model"
 VERSION = 1

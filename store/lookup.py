@@ -10,9 +10,10 @@ and stay in the driver's prepared-statement cache.  PostgreSQL gets one array pa
 from __future__ import annotations
 
 import numpy as np
+from sqlalchemy import Connection
+
 from mailweir.model.types import TokenCounts, TokenHashes
 from mailweir.store.engine import sqlite_variable_limit
-from sqlalchemy import Connection
 
 _SELECT = "SELECT hash, ham, spam FROM weir_token WHERE hash"
 _PG_SQL = f"{_SELECT} = ANY(CAST(%s AS BIGINT[]))"

@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
-from mailweir.store import schema
 from sqlalchemy import Connection, Table, func, select, text
 from sqlalchemy.dialects import postgresql, sqlite
+
+from mailweir.store import schema
 
 # Keys other parts of mailweir read back: the tokenizer's fingerprint (training and scoring
 # must agree on it) and the scoring method the model was tuned for.

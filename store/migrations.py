@@ -15,9 +15,10 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 
+from sqlalchemy import Connection, Engine, insert, inspect, select, text
+
 from mailweir.store import schema
 from mailweir.store.errors import SchemaTooNew, StoreUnavailable
-from sqlalchemy import Connection, Engine, insert, inspect, select, text
 
 Migration = tuple[str, Callable[[Connection], None]]
 

@@ -39,12 +39,13 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from typing import Any, Final
 
-from mailweir.store import schema
-from mailweir.store.engine import READ_ONLY
-from mailweir.store.errors import store_errors
 from sqlalchemy import Connection, Engine, Integer, and_, case, func, select
 from sqlalchemy.ext.compiler import compiles
 from sqlalchemy.sql.expression import ColumnElement, FunctionElement
+
+from mailweir.store import schema
+from mailweir.store.engine import READ_ONLY
+from mailweir.store.errors import store_errors
 
 DAY: Final = 86400.0
 JUDGED_BANDS: Final = ("ham", "suspect", "spam")

@@ -17,10 +17,6 @@ from typing import Any
 
 import numpy as np
 import numpy.typing as npt
-from mailweir.model.types import TokenCounts, TokenHashes
-from mailweir.store import schema
-from mailweir.store.engine import sqlite_variable_limit
-from mailweir.store.errors import StoreBusy
 from sqlalchemy import (
     Connection,
     bindparam,
@@ -33,6 +29,11 @@ from sqlalchemy import (
 )
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.sql.expression import ColumnElement
+
+from mailweir.model.types import TokenCounts, TokenHashes
+from mailweir.store import schema
+from mailweir.store.engine import sqlite_variable_limit
+from mailweir.store.errors import StoreBusy
 
 TrainItem = tuple[TokenHashes, int, bytes, str]  # hashes, label, digest, source
 _LEDGER_ROUNDS = 10

@@ -12,9 +12,10 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from sqlalchemy import Connection, insert, select, update
+
 from mailweir.model.types import TokenHashes
 from mailweir.store import schema
-from sqlalchemy import Connection, insert, select, update
 
 
 class FeedbackKind(enum.StrEnum):

@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import numpy.typing as npt
+from sqlalchemy import Connection, func, select
+
 from mailweir.model.types import HAM, SPAM, TokenCounts, Vocabulary
 from mailweir.store import schema
-from sqlalchemy import Connection, func, select
 
 
 class VocabularyTracker:

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 from aiosmtpd.smtp import SMTP, Envelope, Session
+
 from mailweir.daemon.settings import (
     HostPort,
     NextHopSettings,

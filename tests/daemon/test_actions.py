@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 
 import pytest
+
 from mailweir.daemon import actions
 from mailweir.daemon.settings import PolicySettings
 

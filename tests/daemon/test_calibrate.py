@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+
 from mailweir.daemon import calibrate, cli
 from mailweir.model import evaluate
 from mailweir.store import ModelStore

@@ -6,6 +6,7 @@ import json
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon import cli, scenario
 from mailweir.daemon.learning import ModelMismatch, open_model
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon.config import ConfigSource, env_name, load_settings, parse_host_port
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.settings import HostPort, Settings

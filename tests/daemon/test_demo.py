@@ -6,6 +6,7 @@ import re
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon import scenario
 from mailweir.daemon.demo import read_landed, run_demo
 

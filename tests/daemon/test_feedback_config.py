@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon.config import load_settings
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.settings import FeedbackSettings

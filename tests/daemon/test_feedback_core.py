@@ -15,6 +15,8 @@ from typing import Any
 
 import numpy as np
 import pytest
+from test_forwarded import as_attachment, as_inline, delivered
+
 from mailweir.daemon import scenario
 from mailweir.daemon.feedback import (
     MIN_ID_AGREEMENT,
@@ -37,7 +39,6 @@ from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.model.types import SPAM
 from mailweir.store import ModelStore, StoreBusy, VerdictRecord
 from mailweir.store.reports import misfiling_rates
-from test_forwarded import as_attachment, as_inline, delivered
 
 TRACKING = "0ljq3k2c5g1a9b7e"
 SETTINGS = FeedbackSettings(

@@ -11,13 +11,14 @@ from contextlib import asynccontextmanager
 from pathlib import Path
 
 import aiohttp
+from smtp_helpers import NextHop, send
+from test_feedback_smtp import TOBIAS, Daemon, _deliver_reminder, feedback_daemon
+from test_forwarded import as_attachment
+
 from mailweir.daemon import scenario
 from mailweir.daemon.feedback import hashes_of
 from mailweir.daemon.http_side import HttpSide
 from mailweir.model.tokenize import DEFAULT_OPTIONS
-from smtp_helpers import NextHop, send
-from test_feedback_smtp import TOBIAS, Daemon, _deliver_reminder, feedback_daemon
-from test_forwarded import as_attachment
 
 TOKEN = "aGFyYm91cmxhbmUtZmVlZGJhY2s"
 

@@ -11,6 +11,11 @@ import re
 from pathlib import Path
 
 import aiohttp
+from prometheus_client.parser import text_string_to_metric_families
+from smtp_helpers import LOCAL, NextHop, daemon_settings, send
+from test_feedback_smtp import SUPPLIER, TOBIAS, _train
+from test_forwarded import as_attachment
+
 from mailweir.daemon import scenario
 from mailweir.daemon.feedback import hashes_of
 from mailweir.daemon.service import Service
@@ -19,10 +24,6 @@ from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.model.types import SPAM
 from mailweir.store import ModelStore
-from prometheus_client.parser import text_string_to_metric_families
-from smtp_helpers import LOCAL, NextHop, daemon_settings, send
-from test_feedback_smtp import SUPPLIER, TOBIAS, _train
-from test_forwarded import as_attachment
 
 TOKEN = "aGFyYm91cmxhbmUtc2VydmljZQ"
 

@@ -22,6 +22,10 @@ from typing import Any
 
 import numpy as np
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
+from smtp_helpers import NextHop, daemon_settings, send
+from test_forwarded import as_attachment, as_inline, as_resent
+
 from mailweir.daemon import scenario
 from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake, hashes_of
 from mailweir.daemon.judge import Judge
@@ -34,9 +38,6 @@ from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore
 from mailweir.store.reports import misfiling_rates, model_summary
-from prometheus_client.parser import text_string_to_metric_families
-from smtp_helpers import NextHop, daemon_settings, send
-from test_forwarded import as_attachment, as_inline, as_resent
 
 TOBIAS = "tobias.lindqvist@harbourlane.example"
 SUPPLIER = "accounts@coastal-linen.example"

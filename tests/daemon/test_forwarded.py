@@ -12,6 +12,7 @@ from __future__ import annotations
 import base64
 
 import pytest
+
 from mailweir.daemon import actions, headers, scenario
 from mailweir.daemon.forwarded import MAX_ORIGINALS, find_originals, tracking_id
 from mailweir.model.hashing import hash_tokens

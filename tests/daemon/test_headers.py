@@ -9,6 +9,7 @@ from __future__ import annotations
 from email.header import decode_header, make_header
 
 import pytest
+
 from mailweir.daemon import headers
 
 RAW = (

@@ -8,11 +8,12 @@ from dataclasses import dataclass, field
 
 import aiohttp
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
+
 from mailweir.daemon.feedback_types import FeedbackOutcome, FeedbackRequest, FeedbackStatus
 from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.metrics import Metrics
 from mailweir.store.errors import StoreBusy
-from prometheus_client.parser import text_string_to_metric_families
 
 TOKEN = "c2VjcmV0LWhhcmJvdXJsYW5l"
 MESSAGE = (

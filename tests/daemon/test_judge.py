@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+
 from mailweir.daemon import judge as judge_module
 from mailweir.daemon.judge import Judge, band_for, make_executor, new_tracking_id
 from mailweir.daemon.settings import ModelSettings, PolicySettings, Settings

@@ -8,14 +8,15 @@ import time
 from pathlib import Path
 
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
+from prometheus_client.samples import Sample
+
 from mailweir.daemon import replies
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
 from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, failure_kind
 from mailweir.daemon.replies import Reply
 from mailweir.store import ModelStore, reports
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
-from prometheus_client.parser import text_string_to_metric_families
-from prometheus_client.samples import Sample
 
 # The families a scrape must show, as the parser names them (counters without ``_total``).
 EXPECTED_FAMILIES = {

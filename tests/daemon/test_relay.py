@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import pytest
 from aiosmtplib import errors as smtp_errors
+from smtp_helpers import LOCAL, free_port, silent_server
+
 from mailweir.daemon import replies
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, reply_for
 from mailweir.daemon.relay import (
@@ -14,7 +16,6 @@ from mailweir.daemon.relay import (
     relay_errors,
 )
 from mailweir.daemon.settings import HostPort, NextHopSettings
-from smtp_helpers import LOCAL, free_port, silent_server
 
 pytestmark = pytest.mark.timeout(30)
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon.learning import DEFAULT_METHOD, Progress
 from mailweir.daemon.replay import ReplayPlan, replay
 from mailweir.daemon.sources import read_corpus

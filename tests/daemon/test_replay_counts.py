@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from mailweir.daemon import scenario
 from mailweir.daemon.learning import Progress
 from mailweir.daemon.replay import ReplayPlan, replay, replay_hashes

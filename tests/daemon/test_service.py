@@ -18,6 +18,7 @@ from typing import Any
 
 import pytest
 from aiosmtpd.smtp import SMTP, Envelope, Session
+
 from mailweir.daemon import service as service_module
 from mailweir.daemon.config import ConfigSource
 from mailweir.daemon.errors import ConfigError

@@ -6,7 +6,6 @@ import asyncio
 import smtplib
 
 import pytest
-from mailweir.daemon import replies
 from smtp_helpers import (
     HAM,
     LOCAL,
@@ -19,6 +18,8 @@ from smtp_helpers import (
     running_daemon,
     send,
 )
+
+from mailweir.daemon import replies
 
 pytestmark = pytest.mark.timeout(60)
 

@@ -8,8 +8,9 @@ from dataclasses import replace
 
 import aiosmtplib
 import pytest
-from mailweir.daemon import replies
 from smtp_helpers import LOCAL, daemon_settings, message, running_daemon, send
+
+from mailweir.daemon import replies
 
 pytestmark = pytest.mark.timeout(60)
 

@@ -8,8 +8,6 @@ import asyncio
 import smtplib
 
 import pytest
-from mailweir.daemon import replies
-from mailweir.daemon.settings import HostPort
 from smtp_helpers import (
     LOCAL,
     FakeJudge,
@@ -20,6 +18,9 @@ from smtp_helpers import (
     send,
     silent_server,
 )
+
+from mailweir.daemon import replies
+from mailweir.daemon.settings import HostPort
 
 pytestmark = pytest.mark.timeout(60)
 

@@ -10,7 +10,6 @@ from dataclasses import replace
 from pathlib import Path
 
 import pytest
-from mailweir.daemon.settings import Settings
 from smtp_helpers import (
     LOCAL,
     daemon_settings,
@@ -19,6 +18,8 @@ from smtp_helpers import (
     running_service,
     send,
 )
+
+from mailweir.daemon.settings import Settings
 
 pytestmark = pytest.mark.timeout(60)
 

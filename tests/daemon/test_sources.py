@@ -8,6 +8,7 @@ import tarfile
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon.sources import SourceError, read_corpus, read_messages
 from mailweir.model.types import HAM, SPAM
 

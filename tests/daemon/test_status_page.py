@@ -11,6 +11,7 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon import status_page
 from mailweir.daemon.bar_charts import (
     BarSeries,

@@ -23,6 +23,7 @@ from typing import Any
 
 import aiohttp
 import pytest
+
 from mailweir.daemon.feedback_types import FeedbackOutcome, FeedbackRequest, FeedbackStatus
 from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.metrics import Metrics

@@ -8,6 +8,7 @@ import time
 from typing import Any
 
 import pytest
+
 from mailweir.daemon.verdict_log import VerdictLog
 
 

@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.settings import HttpSettings
 

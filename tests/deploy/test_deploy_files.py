@@ -13,6 +13,7 @@ import subprocess
 from pathlib import Path
 
 import pytest
+
 from mailweir.daemon.config import load_settings
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"

@@ -37,6 +37,9 @@ from typing import Any
 
 import numpy as np
 import pytest
+from sqlalchemy import create_engine
+from sqlalchemy.engine import make_url
+
 from mailweir.daemon import scenario
 from mailweir.daemon.feedback import FeedbackIntake, hashes_of
 from mailweir.daemon.feedback_types import FeedbackRequest, FeedbackStatus
@@ -47,8 +50,6 @@ from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore
 from mailweir.store import counts as store_counts
-from sqlalchemy import create_engine
-from sqlalchemy.engine import make_url
 
 # The next-hop sink and the SMTP sender of the daemon tests (tests/daemon has no package).
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "daemon"))

@@ -8,6 +8,9 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from sklearn.metrics import roc_auc_score
+from sklearn.metrics import roc_curve as oracle_roc_curve
+
 from mailweir.model.evaluate import (
     Rates,
     cutoff_for_false_positive_rate,
@@ -17,8 +20,6 @@ from mailweir.model.evaluate import (
     roc_curve,
     spam_caught_at_false_positive_rate,
 )
-from sklearn.metrics import roc_auc_score
-from sklearn.metrics import roc_curve as oracle_roc_curve
 
 
 def _tied_scores(seed: int, size: int = 300) -> tuple[np.ndarray, np.ndarray]:

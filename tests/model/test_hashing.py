@@ -15,6 +15,7 @@ import sys
 import numpy as np
 from hypothesis import given
 from hypothesis import strategies as st
+
 from mailweir.model.hashing import hash_tokens, message_digest, token_hash
 
 

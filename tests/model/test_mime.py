@@ -5,6 +5,7 @@ from __future__ import annotations
 import base64
 
 import pytest
+
 from mailweir.model.charsets import b64decode_lenient, decode_bytes, decode_header_value
 from mailweir.model.mime import Limits, parse_entity, parse_params, split_multipart, walk
 

@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sklearn.naive_bayes import BernoulliNB as OracleBernoulliNB
+
 from mailweir.model.nb import BernoulliNB
 from mailweir.model.types import HAM, SPAM, Vocabulary
-from sklearn.naive_bayes import BernoulliNB as OracleBernoulliNB
 
 
 def _presence_data(seed: int, docs: int = 40, features: int = 30) -> tuple[np.ndarray, np.ndarray]:

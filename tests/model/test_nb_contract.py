@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+
 from mailweir.model.nb import (
     METHODS,
     UNTRAINED_PROBABILITY,

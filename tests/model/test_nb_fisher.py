@@ -7,9 +7,10 @@ from decimal import Decimal, localcontext
 
 import numpy as np
 import pytest
+from scipy.stats import chi2, combine_pvalues
+
 from mailweir.model.nb import RobinsonFisher, chi2_log_survival_even, chi2_survival_even
 from mailweir.model.types import HAM, SPAM, Vocabulary
-from scipy.stats import chi2, combine_pvalues
 
 GRID_DOF = [2, 4, 6, 10, 20, 50, 100, 400, 1000, 4000, 10000]
 GRID_STATISTIC = [0.0, 1e-8, 0.01, 0.5, 1.0, 3.0, 10.0, 50.0, 200.0, 1000.0, 5000.0, 2e4]

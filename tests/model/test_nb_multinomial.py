@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sklearn.naive_bayes import MultinomialNB as OracleMultinomialNB
+
 from mailweir.model.nb import MultinomialBooleanNB
 from mailweir.model.types import HAM, SPAM, Vocabulary
-from sklearn.naive_bayes import MultinomialNB as OracleMultinomialNB
 
 
 def _presence_data(seed: int, docs: int = 40, features: int = 30) -> tuple[np.ndarray, np.ndarray]:

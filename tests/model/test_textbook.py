@@ -20,6 +20,7 @@ from fractions import Fraction
 
 import numpy as np
 import pytest
+
 from mailweir.model.nb import BernoulliNB, MultinomialBooleanNB
 from mailweir.model.types import HAM, SPAM, Vocabulary
 

@@ -13,6 +13,7 @@ import sys
 
 import numpy as np
 import pytest
+
 from mailweir.model.hashing import hash_tokens
 from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokenize, tokens
 

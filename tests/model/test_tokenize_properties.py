@@ -13,6 +13,7 @@ from email.mime.text import MIMEText
 import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
 from mailweir.model.hashing import hash_tokens
 from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens
 

@@ -21,6 +21,8 @@ from typing import Any
 
 import aiosmtplib
 from aiosmtpd.smtp import SMTP, Envelope, Session
+from smtp_helpers import NextHop
+
 from mailweir.daemon import scenario
 from mailweir.daemon.feedback import hashes_of
 from mailweir.daemon.service import Service
@@ -38,7 +40,6 @@ from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore
-from smtp_helpers import NextHop
 
 LOCAL = "127.0.0.1"
 SENDER = "orders@vetsupply.example"

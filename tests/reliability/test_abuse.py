@@ -24,17 +24,6 @@ from typing import Any
 import aiohttp
 import pytest
 from hostile_messages import fixed_messages
-from mailweir.daemon import feedback as feedback_module
-from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
-from mailweir.daemon.http_side import HttpSide
-from mailweir.daemon.judge import Judge
-from mailweir.daemon.metrics import Metrics
-from mailweir.daemon.settings import FeedbackSettings
-from mailweir.daemon.smtp import FilterHandler, create_smtp_server
-from mailweir.daemon.verdict_log import VerdictLog
-from mailweir.model.tokenize import DEFAULT_OPTIONS
-from mailweir.store import ModelStore
-from mailweir.store import engine as store_engine
 from prometheus_client.parser import text_string_to_metric_families
 from reliability_helpers import (
     LOCAL,
@@ -47,6 +36,18 @@ from reliability_helpers import (
 )
 from smtp_helpers import send
 from test_forwarded import as_attachment
+
+from mailweir.daemon import feedback as feedback_module
+from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
+from mailweir.daemon.http_side import HttpSide
+from mailweir.daemon.judge import Judge
+from mailweir.daemon.metrics import Metrics
+from mailweir.daemon.settings import FeedbackSettings
+from mailweir.daemon.smtp import FilterHandler, create_smtp_server
+from mailweir.daemon.verdict_log import VerdictLog
+from mailweir.model.tokenize import DEFAULT_OPTIONS
+from mailweir.store import ModelStore
+from mailweir.store import engine as store_engine
 
 TOKEN = "harbour-lane-feedback-3f9c1e"
 SPAM_ADDRESS = "report-spam@harbourlane.example"

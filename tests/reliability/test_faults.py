@@ -19,8 +19,6 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from mailweir.daemon.settings import HostPort
-from mailweir.store import engine as store_engine
 from reliability_helpers import (
     LOCAL,
     FaultyNextHop,
@@ -34,6 +32,9 @@ from reliability_helpers import (
     verdict_rows,
 )
 from sqlalchemy import event
+
+from mailweir.daemon.settings import HostPort
+from mailweir.store import engine as store_engine
 
 COUNT = 240
 CLIENTS = 16

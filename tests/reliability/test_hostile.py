@@ -23,9 +23,10 @@ import pytest
 from hostile_messages import CRAFTED, MB, fixed_messages
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from mailweir.model.tokenize import DEFAULT_OPTIONS, tokens
 from reliability_helpers import message_id, without_own_fields
 from threaded_daemon import ThreadedDaemon, as_sent, threaded_daemon
+
+from mailweir.model.tokenize import DEFAULT_OPTIONS, tokens
 
 TOKENIZER_MEMORY_BOUND = 64 * MB
 

@@ -12,8 +12,9 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
-from mailweir.store import ModelStore
 from sqlalchemy import create_engine, inspect, text
+
+from mailweir.store import ModelStore
 
 POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
 

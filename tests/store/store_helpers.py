@@ -5,9 +5,10 @@ from __future__ import annotations
 import hashlib
 
 import numpy as np
+from sqlalchemy import text
+
 from mailweir.model.types import Vocabulary
 from mailweir.store import ModelStore
-from sqlalchemy import text
 
 
 def digest_of(name: str) -> bytes:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
+
 from mailweir.store.cache import CountCache
 
 key = st.integers(min_value=-(2**63), max_value=2**63 - 1)

@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+
 from mailweir.store import ModelStore, TrainResult
 
 WORKERS = 4

@@ -8,10 +8,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from mailweir.model.types import HAM, SPAM, Vocabulary
-from mailweir.store import ModelStore, StoreUnavailable, TrainResult
 from sqlalchemy import text
 from store_helpers import digest_of, dump_model, hashes_of, vocabulary_parts
+
+from mailweir.model.types import HAM, SPAM, Vocabulary
+from mailweir.store import ModelStore, StoreUnavailable, TrainResult
 
 
 def token_rows(store: ModelStore) -> dict[int, tuple[int, int]]:

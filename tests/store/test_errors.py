@@ -7,6 +7,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from sqlalchemy import event
+from sqlalchemy import exc as sa_exc
+
 from mailweir.store import (
     ModelStore,
     SchemaTooNew,
@@ -16,8 +19,6 @@ from mailweir.store import (
     store_errors,
 )
 from mailweir.store.errors import retryable
-from sqlalchemy import event
-from sqlalchemy import exc as sa_exc
 
 
 class FakePgError(Exception):

@@ -17,6 +17,9 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from sqlalchemy import create_engine, text
+from sqlalchemy.engine import make_url
+
 from mailweir.daemon import exchange_commands
 from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import tokenize
@@ -29,8 +32,6 @@ from mailweir.store.exchange import (
     export_model,
     import_model,
 )
-from sqlalchemy import create_engine, text
-from sqlalchemy.engine import make_url
 
 POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
 

@@ -8,11 +8,12 @@ from typing import Any
 
 import numpy as np
 import pytest
+from sqlalchemy import event
+from store_helpers import digest_of
+
 from mailweir.model.types import SPAM
 from mailweir.store import ModelStore
 from mailweir.store.lookup import CountReader
-from sqlalchemy import event
-from store_helpers import digest_of
 
 
 @contextmanager

@@ -6,9 +6,10 @@ import time
 from collections.abc import Callable
 
 import pytest
+from sqlalchemy import create_engine, inspect, text
+
 from mailweir.store import ModelStore, SchemaTooNew, StoreUnavailable
 from mailweir.store.migrations import MIGRATIONS, applied_migrations, migrate
-from sqlalchemy import create_engine, inspect, text
 
 EXPECTED_TABLES = {
     "weir_token",

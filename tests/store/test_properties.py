@@ -14,10 +14,11 @@ from collections.abc import Callable
 import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from mailweir.model.types import Vocabulary
-from mailweir.store import ModelStore, TrainResult
 from sqlalchemy import text
 from store_helpers import dump_model, empty_model, vocabulary_parts
+
+from mailweir.model.types import Vocabulary
+from mailweir.store import ModelStore, TrainResult
 
 # Small hash alphabet so messages share tokens; extremes of int64 included.
 token = st.sampled_from([-(2**63), -5, -1, 0, 1, 2, 3, 4, 5, 6, 7, 8, 2**40, 2**63 - 1])

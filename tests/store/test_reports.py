@@ -15,11 +15,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from sqlalchemy import Engine
+
 from mailweir.store import ModelStore, reports
 from mailweir.store.engine import make_engine
 from mailweir.store.errors import StoreError
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
-from sqlalchemy import Engine
 
 # 2026-11-20 12:00:00 UTC
 NOW = dt.datetime(2026, 11, 20, 12, tzinfo=dt.UTC).timestamp()

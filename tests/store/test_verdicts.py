@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sqlalchemy import text
+
 from mailweir.store import (
     FeedbackChannel,
     FeedbackKind,
@@ -12,7 +14,6 @@ from mailweir.store import (
     StoreError,
     VerdictRecord,
 )
-from sqlalchemy import text
 
 
 def verdict(tracking_id: str, received_at: float, hashes: np.ndarray | None) -> VerdictRecord:
