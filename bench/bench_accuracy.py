@@ -261,7 +261,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--sgd-batch", type=int, default=1)
     parser.add_argument("--warmup", type=int, default=1000)
     parser.add_argument("--limit", type=int, default=0)
-    parser.add_argument("--cutoff", type=float, default=PolicySettings().spam_cutoff)
+    parser.add_argument("--cutoff", type=float, default=PolicySettings().spam_threshold)
     parser.add_argument("--cache", type=Path, default=Path("/tmp/mailweir-bench-tokens"))
     parser.add_argument("--json", type=Path, help="also write the figures here")
     parser.add_argument("--scores", type=Path, help="write every system's scores (.npz)")

@@ -109,11 +109,11 @@ def propose(
 ) -> list[Proposal]:
     """The cut-offs in force and those meeting each target, with the rates each would give."""
     found = [
-        proposal("current suspect_cutoff", history, current.suspect_cutoff),
-        proposal("current spam_cutoff", history, current.spam_cutoff),
+        proposal("current suspect_threshold", history, current.suspect_threshold),
+        proposal("current spam_threshold", history, current.spam_threshold),
     ]
     if (history.labels == HAM).any() and (history.labels == SPAM).any():
-        for name, target in (("suspect_cutoff", suspect_fpr), ("spam_cutoff", target_fpr)):
+        for name, target in (("suspect_threshold", suspect_fpr), ("spam_threshold", target_fpr)):
             cut = evaluate.cutoff_for_false_positive_rate(history.labels, history.scores, target)
             if not np.isfinite(cut):  # the top score is ham: just above it, nothing else spam
                 cut = float(np.nextafter(history.scores.max(), np.inf))
@@ -128,7 +128,9 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
         history = read_history(store.engine, now - args.days * DAY, now)
     finally:
         store.close()
-    current = PolicySettings(suspect_cutoff=args.suspect_cutoff, spam_cutoff=args.spam_cutoff)
+    current = PolicySettings(
+        suspect_threshold=args.suspect_threshold, spam_threshold=args.spam_threshold
+    )
     found = propose(history, args.target_fpr, args.suspect_fpr, current)
     ham = int((history.labels == HAM).sum())
     report: dict[str, object] = {
@@ -188,8 +190,8 @@ def add_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> Non
     parser.add_argument("--days", type=float, default=90.0, help="history window (default 90)")
     parser.add_argument("--target-fpr", type=float, default=0.001, help="for the spam cut-off")
     parser.add_argument("--suspect-fpr", type=float, default=0.01, help="for the suspect cut-off")
-    parser.add_argument("--suspect-cutoff", type=float, default=policy.suspect_cutoff)
-    parser.add_argument("--spam-cutoff", type=float, default=policy.spam_cutoff)
+    parser.add_argument("--suspect-threshold", type=float, default=policy.suspect_threshold)
+    parser.add_argument("--spam-threshold", type=float, default=policy.spam_threshold)
     parser.add_argument("--now", type=float, default=None, help=argparse.SUPPRESS)
     _db_argument(parser)
     _json_argument(parser)

@@ -135,7 +135,9 @@ def cmd_score(args: argparse.Namespace) -> int:
         model.close()
     text = {token_hash(w): w for w in words}
     p = score.spam_probability
-    band = "spam" if p >= args.spam_cutoff else "suspect" if p >= args.suspect_cutoff else "ham"
+    band = (
+        "spam" if p >= args.spam_threshold else "suspect" if p >= args.suspect_threshold else "ham"
+    )
     evidence = [
         {"token": text.get(e.token_hash, f"#{e.token_hash:x}"), "weight": round(e.weight, 4)}
         for e in score.evidence
@@ -145,15 +147,15 @@ def cmd_score(args: argparse.Namespace) -> int:
         "spam_probability": p,
         "band": band,
         "method": model.scorer.name,
-        "suspect_cutoff": args.suspect_cutoff,
-        "spam_cutoff": args.spam_cutoff,
+        "suspect_threshold": args.suspect_threshold,
+        "spam_threshold": args.spam_threshold,
         "trained_ham": int(classes[HAM]),
         "trained_spam": int(classes[SPAM]),
         "evidence": evidence,
     }
     lines = [
         f"{args.message}: {band} (spam probability {p:.4f}, method {model.scorer.name})",
-        f"  cut-offs: suspect {args.suspect_cutoff:g}, spam {args.spam_cutoff:g}; "
+        f"  cut-offs: suspect {args.suspect_threshold:g}, spam {args.spam_threshold:g}; "
         f"trained on {classes[HAM]} ham and {classes[SPAM]} spam",
     ]
     for side, sign in (("toward spam", 1), ("toward ham", -1)):
@@ -174,8 +176,8 @@ def _add_score_command(sub: argparse._SubParsersAction[argparse.ArgumentParser])
         "pushed hardest each way.",
     )
     score.add_argument("message", help="a message file, or - for standard input")
-    score.add_argument("--suspect-cutoff", type=float, default=policy.suspect_cutoff)
-    score.add_argument("--spam-cutoff", type=float, default=policy.spam_cutoff)
+    score.add_argument("--suspect-threshold", type=float, default=policy.suspect_threshold)
+    score.add_argument("--spam-threshold", type=float, default=policy.spam_threshold)
     score.add_argument("--explain", type=int, default=8, help="tokens to show each way")
     _db_argument(score)
     _json_argument(score)
@@ -204,7 +206,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     result = replay.replay(corpus, plan, progress=progress)
     for item in result.results:
         item.warmup = min(args.warmup, len(item.labels) - 1)
-    cutoffs = args.cutoff or [PolicySettings().suspect_cutoff, PolicySettings().spam_cutoff]
+    cutoffs = args.cutoff or [PolicySettings().suspect_threshold, PolicySettings().spam_threshold]
     figures = [item.figures(cutoffs, args.target_fpr) for item in result.results]
     if args.scores:
         replay.write_scores(Path(args.scores), result.results[0], max(cutoffs))

@@ -1,9 +1,9 @@
 """Configuration: TOML file, then ``MAILWEIR_*`` environment variables, then command-line flags.
 
-Each layer overrides the one before it, on top of the defaults in ``settings.py``.  Every key is
-written as ``section.key`` (``policy.spam_cutoff``) or, at the top level, ``key`` (``state_dir``);
-its environment variable is ``MAILWEIR_`` plus the key in upper case with the dot as ``_``
-(``MAILWEIR_POLICY_SPAM_CUTOFF``, ``MAILWEIR_STATE_DIR``).
+Each layer overrides the one before it, on top of the defaults in ``settings.py``.  Every key
+is written as ``section.key`` (``policy.spam_threshold``) or, at the top level, ``key``
+(``state_dir``); its environment variable is ``MAILWEIR_`` plus the key in upper case with the
+dot as ``_`` (``MAILWEIR_POLICY_SPAM_THRESHOLD``, ``MAILWEIR_STATE_DIR``).
 
 Validation happens once, before anything binds, and fails with :class:`ConfigError` naming the
 key, the value, where it came from and what was expected.  Unknown keys are errors: a typo must
@@ -290,8 +290,8 @@ def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
         ("next_hop.connect_timeout", s.next_hop.connect_timeout, 1e-3, inf, "seconds > 0"),
         ("next_hop.command_timeout", s.next_hop.command_timeout, 1e-3, inf, "seconds > 0"),
         ("next_hop.data_timeout", s.next_hop.data_timeout, 1e-3, inf, "seconds > 0"),
-        ("policy.suspect_cutoff", s.policy.suspect_cutoff, 0.0, 1.0, "a number from 0 to 1"),
-        ("policy.spam_cutoff", s.policy.spam_cutoff, 0.0, 1.0, "a number from 0 to 1"),
+        ("policy.suspect_threshold", s.policy.suspect_threshold, 0.0, 1.0, "a number from 0 to 1"),
+        ("policy.spam_threshold", s.policy.spam_threshold, 0.0, 1.0, "a number from 0 to 1"),
         ("policy.min_trained", s.policy.min_trained, 0, inf, "0 or more messages"),
         ("model.cache_tokens", s.model.cache_tokens, 0, inf, "0 or more tokens"),
         ("model.staleness_seconds", s.model.staleness_seconds, 0.0, inf, "0 or more seconds"),
@@ -305,11 +305,11 @@ def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
 
 
 def _check_policy(policy: PolicySettings) -> None:
-    if policy.suspect_cutoff > policy.spam_cutoff:
+    if policy.suspect_threshold > policy.spam_threshold:
         raise ConfigError(
-            "policy.suspect_cutoff",
-            f"got {policy.suspect_cutoff!r}; expected at most policy.spam_cutoff "
-            f"({policy.spam_cutoff!r})",
+            "policy.suspect_threshold",
+            f"got {policy.suspect_threshold!r}; expected at most policy.spam_threshold "
+            f"({policy.spam_threshold!r})",
         )
     if policy.ham_action in ("reroute", "reject"):
         raise ConfigError("policy.ham_action", f"got {policy.ham_action!r}; expected pass or tag")

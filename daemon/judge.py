@@ -90,9 +90,9 @@ def new_tracking_id() -> str:
 
 def band_for(probability: float, policy: PolicySettings) -> Literal["ham", "suspect", "spam"]:
     """Place a spam probability in its band; a score equal to a cut-off belongs above it."""
-    if probability >= policy.spam_cutoff:
+    if probability >= policy.spam_threshold:
         return "spam"
-    if probability >= policy.suspect_cutoff:
+    if probability >= policy.suspect_threshold:
         return "suspect"
     return "ham"
 

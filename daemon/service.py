@@ -164,9 +164,9 @@ class Service:
             self.handler.reload(self.settings)
         policy = self.settings.policy
         log.info(
-            "reloaded: suspect_cutoff=%s spam_cutoff=%s actions=%s/%s/%s mode=%s",
-            policy.suspect_cutoff,
-            policy.spam_cutoff,
+            "reloaded: suspect_threshold=%s spam_threshold=%s actions=%s/%s/%s mode=%s",
+            policy.suspect_threshold,
+            policy.spam_threshold,
             policy.ham_action,
             policy.suspect_action,
             policy.spam_action,

@@ -55,8 +55,8 @@ class PolicySettings:
     # 1,000-message warm-up; bench/ACCURACY.md): at 0.98, 0.043% of ham was judged spam and
     # 24.5% of spam fell below; from 0.5, the suspect band took 93% of that spam (1.7% of all
     # spam left as ham) and 1.5% of ham.  `mailweir calibrate` redoes this on a site's own mail.
-    suspect_cutoff: float = 0.5
-    spam_cutoff: float = 0.98
+    suspect_threshold: float = 0.5
+    spam_threshold: float = 0.98
     ham_action: Action = "pass"
     suspect_action: Action = "tag"
     spam_action: Action = "tag"

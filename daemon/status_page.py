@@ -194,9 +194,9 @@ def _policy_card(policy: PolicySettings) -> Markup:
         else "enforce: the actions below are applied"
     )
     rows = [
-        ("spam", f"score ≥ {policy.spam_cutoff:g}", policy.spam_action),
-        ("suspect", f"score ≥ {policy.suspect_cutoff:g}", policy.suspect_action),
-        ("ham", f"score < {policy.suspect_cutoff:g}", policy.ham_action),
+        ("spam", f"score ≥ {policy.spam_threshold:g}", policy.spam_action),
+        ("suspect", f"score ≥ {policy.suspect_threshold:g}", policy.suspect_action),
+        ("ham", f"score < {policy.suspect_threshold:g}", policy.ham_action),
     ]
     extra = [html("<dt>position</dt><dd>{v}</dd>", v=policy.position)]
     if policy.subject_prefix:
@@ -315,8 +315,8 @@ def _histogram_figure(hist: ScoreHistogram, policy: PolicySettings, days: int) -
         x_label="spam probability",
         y_label="messages",
         markers=[
-            (policy.suspect_cutoff, f"suspect {policy.suspect_cutoff:g}"),
-            (policy.spam_cutoff, f"spam {policy.spam_cutoff:g}"),
+            (policy.suspect_threshold, f"suspect {policy.suspect_threshold:g}"),
+            (policy.spam_threshold, f"spam {policy.spam_threshold:g}"),
         ],
         x_ticks=[(x, f"{x:g}") for x in (0.0, 0.25, 0.5, 0.75, 1.0)],
     )

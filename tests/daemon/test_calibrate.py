@@ -91,16 +91,16 @@ def test_calibrate_json_proposes_cutoffs_within_the_target(
     report = json.loads(capsys.readouterr().out)
     assert (report["messages"], report["ham"], report["spam"]) == (300, 200, 100)
     found = {p["name"]: p for p in report["proposals"]}
-    spam = found["proposed spam_cutoff"]
+    spam = found["proposed spam_threshold"]
     # Oracle: the same lowest cut-off computed from the known labels by model.evaluate, whose
     # ROC matches scikit-learn's roc_curve (tests/model/test_evaluate.py).
     assert spam["cutoff"] == evaluate.cutoff_for_false_positive_rate(labels, scores, 0.001)
     assert spam["false_positives"] == 0 and spam["cutoff"] == 0.9999
-    current = found["current spam_cutoff"]
+    current = found["current spam_threshold"]
     assert (current["false_positives"], current["false_positive_rate"]) == (1, 1 / 200)
     # Two spam passed as ham below every cut-off: both FN rates count them.
-    assert found["current suspect_cutoff"]["false_negatives"] == 2
-    suspect = found["proposed suspect_cutoff"]
+    assert found["current suspect_threshold"]["false_negatives"] == 2
+    suspect = found["proposed suspect_threshold"]
     assert suspect["false_positive_rate"] <= 0.01 and suspect["cutoff"] <= spam["cutoff"]
 
 
@@ -110,7 +110,7 @@ def test_calibrate_text_warns_when_history_is_too_small(
     db, _, _ = history_db
     assert cli.main(["calibrate", "--db", db, "--now", str(NOW)]) == 0
     out = capsys.readouterr().out
-    assert "300 judged messages" in out and "proposed spam_cutoff" in out
+    assert "300 judged messages" in out and "proposed spam_threshold" in out
     assert "smallest false-positive rate this history can show is 0.5000%" in out
 
 
@@ -131,6 +131,6 @@ def test_calibrate_top_score_ham_proposes_just_above_it() -> None:
     # The surest message was wanted mail: only a cut-off above every score keeps FP at zero.
     history = calibrate.History(np.array([0.2, 0.9, 0.97]), np.array([0, 1, 0]), corrected=1)
     found = calibrate.propose(history, 0.0, 0.0, calibrate.PolicySettings())
-    spam = next(p for p in found if p.name == "proposed spam_cutoff")
+    spam = next(p for p in found if p.name == "proposed spam_threshold")
     assert spam.cutoff == np.nextafter(0.97, np.inf)
     assert (spam.false_positives, spam.false_negatives) == (0, 1)

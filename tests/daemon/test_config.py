@@ -33,8 +33,8 @@ helo_name = "filter.harbourlane.example"
 [policy]
 mode = "enforce"
 position = "before-queue"
-suspect_cutoff = 0.6
-spam_cutoff = 0.95
+suspect_threshold = 0.6
+spam_threshold = 0.95
 ham_action = "pass"
 suspect_action = "tag"
 spam_action = "reject"
@@ -96,7 +96,7 @@ def test_config_full_example(tmp_path: Path) -> None:
     assert s.next_hop.address == HostPort("::1", 2626)
     assert s.next_hop.connect_timeout == 10.0 and isinstance(s.next_hop.connect_timeout, float)
     assert s.policy.spam_action == "reject"
-    assert s.policy.suspect_cutoff == 0.6
+    assert s.policy.suspect_threshold == 0.6
     assert s.policy.on_scoring_failure == "tempfail"
     assert s.model.method == "bernoulli"
     assert s.database == f"sqlite:///{tmp_path}/other.sqlite3"
@@ -105,10 +105,10 @@ def test_config_full_example(tmp_path: Path) -> None:
 
 
 def test_config_env_overrides_file(tmp_path: Path) -> None:
-    path = write(tmp_path, f'state_dir = "{tmp_path}"\n[policy]\nspam_cutoff = 0.9\n')
-    env = {"MAILWEIR_POLICY_SPAM_CUTOFF": "0.97", "MAILWEIR_NEXT_HOP_ADDRESS": "127.0.0.1:9"}
+    path = write(tmp_path, f'state_dir = "{tmp_path}"\n[policy]\nspam_threshold = 0.9\n')
+    env = {"MAILWEIR_POLICY_SPAM_THRESHOLD": "0.97", "MAILWEIR_NEXT_HOP_ADDRESS": "127.0.0.1:9"}
     s = load_settings(path, env=env)
-    assert s.policy.spam_cutoff == 0.97
+    assert s.policy.spam_threshold == 0.97
     assert s.next_hop.address == HostPort("127.0.0.1", 9)
 
 
@@ -126,7 +126,7 @@ def test_config_flags_override_env(tmp_path: Path) -> None:
 
 
 def test_config_env_name_matches_reader() -> None:
-    assert env_name("policy.spam_cutoff") == "MAILWEIR_POLICY_SPAM_CUTOFF"
+    assert env_name("policy.spam_threshold") == "MAILWEIR_POLICY_SPAM_THRESHOLD"
     assert env_name("state_dir") == "MAILWEIR_STATE_DIR"
 
 
@@ -139,7 +139,7 @@ def test_config_unrelated_mailweir_env_ignored(tmp_path: Path) -> None:
     ("text", "key"),
     [
         ("[policy]\nspam_cutof = 0.9\n", "policy.spam_cutof"),
-        ("[polcy]\nspam_cutoff = 0.9\n", "polcy"),
+        ("[polcy]\nspam_threshold = 0.9\n", "polcy"),
         ('statedir = "/tmp"\n', "statedir"),
     ],
 )
@@ -183,12 +183,12 @@ BAD_VALUES = [
     ("[next_hop]\ndata_timeout = 0\n", "next_hop.data_timeout", "> 0"),
     ('[policy]\nmode = "loud"\n', "policy.mode", "'observe'"),
     ('[policy]\nposition = "middle"\n', "policy.position", "'before-queue'"),
-    ("[policy]\nspam_cutoff = 1.5\n", "policy.spam_cutoff", "0 to 1"),
-    ("[policy]\nsuspect_cutoff = -0.1\n", "policy.suspect_cutoff", "0 to 1"),
+    ("[policy]\nspam_threshold = 1.5\n", "policy.spam_threshold", "0 to 1"),
+    ("[policy]\nsuspect_threshold = -0.1\n", "policy.suspect_threshold", "0 to 1"),
     (
-        "[policy]\nsuspect_cutoff = 0.9\nspam_cutoff = 0.8\n",
-        "policy.suspect_cutoff",
-        "policy.spam_cutoff",
+        "[policy]\nsuspect_threshold = 0.9\nspam_threshold = 0.8\n",
+        "policy.suspect_threshold",
+        "policy.spam_threshold",
     ),
     ('[policy]\nspam_action = "drop"\n', "policy.spam_action", "'reroute'"),
     ('[policy]\nspam_action = "reroute"\n', "policy.spam_action", "quarantine_mailbox"),
@@ -265,11 +265,11 @@ def test_config_parse_host_port(text: str, expected: HostPort) -> None:
 
 
 def test_config_range_error_names_where_the_value_came_from(tmp_path: Path) -> None:
-    env = {"MAILWEIR_POLICY_SPAM_CUTOFF": "1.5", "MAILWEIR_STATE_DIR": str(tmp_path)}
+    env = {"MAILWEIR_POLICY_SPAM_THRESHOLD": "1.5", "MAILWEIR_STATE_DIR": str(tmp_path)}
     with pytest.raises(ConfigError) as caught:
         load_settings(None, env=env)
-    assert caught.value.key == "policy.spam_cutoff"
-    assert "MAILWEIR_POLICY_SPAM_CUTOFF" in caught.value.reason
+    assert caught.value.key == "policy.spam_threshold"
+    assert "MAILWEIR_POLICY_SPAM_THRESHOLD" in caught.value.reason
     source = ConfigSource(
         None,
         env={},

@@ -46,7 +46,7 @@ async def test_feedback_service_mail_and_http_share_one_intake(
     _train(store)
     store.train(hashes, SPAM, digest=message_digest(hashes), source="import")
     store.close()
-    base = daemon_settings(next_hop.address, min_trained=5, spam_cutoff=0.9)
+    base = daemon_settings(next_hop.address, min_trained=5, spam_threshold=0.9)
     settings = dataclasses.replace(
         base,
         state_dir=tmp_path,

@@ -97,7 +97,7 @@ async def feedback_daemon(
     store.train(hashes, SPAM, digest=message_digest(hashes), source="import")
     # A small model is less sure of itself: 0.9 is where this one's spam starts.  Ham is
     # tagged too, so a missed junk message carries its id back to the spam address.
-    chosen = {"min_trained": 5, "spam_cutoff": 0.9, "ham_action": "tag", **(policy or {})}
+    chosen = {"min_trained": 5, "spam_threshold": 0.9, "ham_action": "tag", **(policy or {})}
     base = daemon_settings(sink.address, **chosen)
     options = {"spam_address": JUNK, "ham_address": WANTED, **feedback}
     settings: Settings = dataclasses.replace(base, feedback=FeedbackSettings(**options))

@@ -104,7 +104,7 @@ NEW_HAM = message(
 
 
 def settings(**policy: Any) -> Settings:
-    base = {"min_trained": 4, "suspect_cutoff": 0.5, "spam_cutoff": 0.99}
+    base = {"min_trained": 4, "suspect_threshold": 0.5, "spam_threshold": 0.99}
     return Settings(policy=PolicySettings(**{**base, **policy}))
 
 
@@ -153,7 +153,7 @@ class FakeStore:
     [(0.0, "ham"), (0.4999, "ham"), (0.5, "suspect"), (0.98, "suspect"), (0.99, "spam")],
 )
 def test_judge_band_for_cutoffs(probability: float, band: str) -> None:
-    assert band_for(probability, PolicySettings(suspect_cutoff=0.5, spam_cutoff=0.99)) == band
+    assert band_for(probability, PolicySettings(suspect_threshold=0.5, spam_threshold=0.99)) == band
 
 
 def test_judge_tracking_ids_unique_and_time_ordered() -> None:
@@ -178,11 +178,11 @@ async def test_judge_bands_at_cutoffs_after_reload(store: Any) -> None:
     judge = Judge(store, settings())
     score = (await judge.judge(NEW_SPAM)).score
     assert score is not None
-    judge.reload(settings(suspect_cutoff=0.0, spam_cutoff=score))
+    judge.reload(settings(suspect_threshold=0.0, spam_threshold=score))
     assert (await judge.judge(NEW_SPAM)).band == "spam"  # equal to the cut-off: above it
-    judge.reload(settings(suspect_cutoff=score, spam_cutoff=min(1.0, score + 1e-9)))
+    judge.reload(settings(suspect_threshold=score, spam_threshold=min(1.0, score + 1e-9)))
     assert (await judge.judge(NEW_SPAM)).band == "suspect"
-    judge.reload(settings(suspect_cutoff=min(1.0, score + 1e-9), spam_cutoff=1.0))
+    judge.reload(settings(suspect_threshold=min(1.0, score + 1e-9), spam_threshold=1.0))
     assert (await judge.judge(NEW_SPAM)).band == "ham"
 
 

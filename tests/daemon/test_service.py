@@ -154,12 +154,12 @@ async def test_service_bad_config_fails_before_binding(
 ) -> None:
     _, next_hop = sink
     port = free_port()
-    settings = make_settings(tmp_path, next_hop, suspect_cutoff=0.9, spam_cutoff=0.5)
+    settings = make_settings(tmp_path, next_hop, suspect_threshold=0.9, spam_threshold=0.5)
     settings = dataclasses.replace(settings, smtp=SmtpSettings(listen=HostPort("127.0.0.1", port)))
     service = Service(settings)
     with pytest.raises(ConfigError) as caught:
         await service.startup()
-    assert caught.value.key == "policy.suspect_cutoff"
+    assert caught.value.key == "policy.suspect_threshold"
     assert port_is_free(port)
     assert not (tmp_path / "state").exists()  # not even the database was created
 
@@ -187,26 +187,26 @@ async def test_service_reload_changes_cutoffs(
         address = service.smtp_address
         newer = dataclasses.replace(
             settings,
-            policy=PolicySettings(suspect_cutoff=0.3, spam_cutoff=0.8, spam_action="tag"),
+            policy=PolicySettings(suspect_threshold=0.3, spam_threshold=0.8, spam_action="tag"),
             smtp=SmtpSettings(listen=HostPort("127.0.0.1", 1)),  # needs a restart: not applied
         )
         assert service.reload(newer)
         assert service.judge is not None
-        assert service.judge.policy.spam_cutoff == 0.8
-        assert service.handler.settings.policy.suspect_cutoff == 0.3
+        assert service.judge.policy.spam_threshold == 0.8
+        assert service.handler.settings.policy.suspect_threshold == 0.3
         assert service.smtp_address == address  # still listening where it was
         assert "changes to smtp.listen, smtp.hostname take effect only after" in caplog.text
-        bad = dataclasses.replace(settings, policy=PolicySettings(spam_cutoff=7.0))
+        bad = dataclasses.replace(settings, policy=PolicySettings(spam_threshold=7.0))
         assert not service.reload(bad)
-        assert service.judge.policy.spam_cutoff == 0.8
+        assert service.judge.policy.spam_threshold == 0.8
     finally:
         await service.shutdown(grace=5)
 
 
-def write_config(path: Path, next_hop: HostPort, spam_cutoff: float) -> None:
+def write_config(path: Path, next_hop: HostPort, spam_threshold: float) -> None:
     path.write_text(
         f'[smtp]\nlisten = "127.0.0.1:0"\n[next_hop]\naddress = "{next_hop}"\n'
-        f"[policy]\nspam_cutoff = {spam_cutoff}\n",
+        f"[policy]\nspam_threshold = {spam_threshold}\n",
         encoding="utf-8",
     )
 
@@ -222,14 +222,14 @@ async def test_service_sighup_rereads_file(
     await service.startup()
     service.install_signal_handlers()
     try:
-        assert service.judge is not None and service.judge.policy.spam_cutoff == 0.95
+        assert service.judge is not None and service.judge.policy.spam_threshold == 0.95
         write_config(path, next_hop, 0.9)
         os.kill(os.getpid(), signal.SIGHUP)
         for _ in range(500):
-            if service.judge.policy.spam_cutoff == 0.9:
+            if service.judge.policy.spam_threshold == 0.9:
                 break
             await asyncio.sleep(0.01)
-        assert service.judge.policy.spam_cutoff == 0.9
+        assert service.judge.policy.spam_threshold == 0.9
         assert await asyncio.to_thread(send, service.smtp_address) == {}
     finally:
         await service.shutdown(grace=5)

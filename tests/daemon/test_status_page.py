@@ -179,11 +179,11 @@ async def test_status_page_render_reads_store_in_a_worker_thread(
 
 async def test_status_page_render_shares_one_read_per_period(filled_engine) -> None:
     clock = [NOW]
-    policies = [PolicySettings(spam_cutoff=0.99)]
+    policies = [PolicySettings(spam_threshold=0.99)]
     page = StatusPage(filled_engine, lambda: policies[-1], max_age=10, clock=lambda: clock[0])
     first = await asyncio.gather(*(page.render() for _ in range(5)))
     assert page.reads == 1 and len(set(first)) == 1
-    policies.append(PolicySettings(spam_cutoff=0.95))  # a reload shows at once
+    policies.append(PolicySettings(spam_threshold=0.95))  # a reload shows at once
     clock[0] += 5
     assert "score ≥ 0.95 → tag" in await page.render()
     assert page.reads == 1

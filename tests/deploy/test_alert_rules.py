@@ -318,7 +318,7 @@ def test_rule_annotations_render(tmp_path: Path) -> None:
                                     "description": "2.5% of the messages judged in the last 24 "
                                     "hours were sent back as wanted mail (target: at most 1 %).  "
                                     "Check the status page for the score distribution and "
-                                    "consider raising policy.spam_cutoff / suspect_cutoff.",
+                                    "consider raising policy.spam_threshold / suspect_threshold.",
                                 },
                             }
                         ],

@@ -127,7 +127,7 @@ class Daemon:
 
 def _settings(sink: NextHop, url: str, staleness: float, state: Path) -> Settings:
     # Every band tagged, so each relayed copy carries its score.
-    base = daemon_settings(sink.address, min_trained=5, spam_cutoff=0.9, ham_action="tag")
+    base = daemon_settings(sink.address, min_trained=5, spam_threshold=0.9, ham_action="tag")
     model = ModelSettings(database=url, staleness_seconds=staleness, scoring_workers=1)
     http = dataclasses.replace(base.http, listen=HostPort("127.0.0.1", 0))
     feedback = FeedbackSettings(
