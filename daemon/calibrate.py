@@ -23,6 +23,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from sqlalchemy import Engine, func, select
 
+from mailweir.daemon.command_args import db_argument, json_argument
 from mailweir.daemon.settings import PolicySettings
 from mailweir.model import evaluate
 from mailweir.model.types import HAM, SPAM
@@ -177,7 +178,6 @@ def _lines(report: dict[str, object], found: list[Proposal]) -> list[str]:
 
 def add_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Register ``mailweir calibrate``."""
-    from mailweir.daemon.cli import _db_argument, _json_argument
 
     policy = PolicySettings()
     parser = sub.add_parser(
@@ -193,6 +193,6 @@ def add_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> Non
     parser.add_argument("--suspect-threshold", type=float, default=policy.suspect_threshold)
     parser.add_argument("--spam-threshold", type=float, default=policy.spam_threshold)
     parser.add_argument("--now", type=float, default=None, help=argparse.SUPPRESS)
-    _db_argument(parser)
-    _json_argument(parser)
+    db_argument(parser)
+    json_argument(parser)
     parser.set_defaults(handler=cmd_calibrate)

@@ -7,41 +7,18 @@ a database URL or SQLite path.
 from __future__ import annotations
 
 import argparse
-import json
-import os
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from mailweir.daemon import calibrate, exchange_commands, learning
+from mailweir.daemon.command_args import db_argument, json_argument, print_report
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.sources import SourceError, read_corpus
 from mailweir.model.hashing import token_hash
 from mailweir.model.types import HAM, SPAM
 
-DEFAULT_DB_ENV = "MAILWEIR_DB"
-DEFAULT_DB = "/var/lib/mailweir/model.sqlite3"
-
 Handler = Callable[[argparse.Namespace], int]
-
-
-def _db_argument(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument(
-        "--db",
-        default=os.environ.get(DEFAULT_DB_ENV, DEFAULT_DB),
-        help=f"database URL or SQLite path (default: ${DEFAULT_DB_ENV} or {DEFAULT_DB})",
-    )
-
-
-def _json_argument(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--json", action="store_true", help="print the report as JSON")
-
-
-def _print_report(args: argparse.Namespace, report: dict[str, object], lines: list[str]) -> None:
-    if args.json:
-        print(json.dumps(report, indent=2, sort_keys=True, default=str))
-    else:
-        print("\n".join(lines))
 
 
 # -- train / untrain ----------------------------------------------------------------------
@@ -83,7 +60,7 @@ def _summary(args: argparse.Namespace, verb: str, summary: dict[str, int], secon
     }
     lines = [f"{verb}: {total} messages in {seconds:.1f} s"]
     lines += [f"  {key.replace('_', ' ')}: {value}" for key, value in sorted(summary.items())]
-    _print_report(args, report, lines)
+    print_report(args, report, lines)
     return 1 if summary.get("unreadable") and total == 0 else 0
 
 
@@ -107,8 +84,8 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
         help="orthogonal sparse bigrams; fixed when a model is created",
     )
     train.add_argument("--method", help="scoring method to stamp on a new model")
-    _db_argument(train)
-    _json_argument(train)
+    db_argument(train)
+    json_argument(train)
     train.set_defaults(handler=cmd_train)
 
     untrain = sub.add_parser(
@@ -117,8 +94,8 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
         description="Remove messages from the counts; exact inverse of train.",
     )
     untrain.add_argument("sources", nargs="+", help="files, folders, mboxes, Maildirs or -")
-    _db_argument(untrain)
-    _json_argument(untrain)
+    db_argument(untrain)
+    json_argument(untrain)
     untrain.set_defaults(handler=cmd_untrain)
 
 
@@ -163,7 +140,7 @@ def cmd_score(args: argparse.Namespace) -> int:
         if picked:
             lines.append(f"  {side}:")
             lines += [f"    {e['weight']:+8.3f}  {e['token']}" for e in picked]
-    _print_report(args, report, lines)
+    print_report(args, report, lines)
     return 0
 
 
@@ -179,8 +156,8 @@ def _add_score_command(sub: argparse._SubParsersAction[argparse.ArgumentParser])
     score.add_argument("--suspect-threshold", type=float, default=policy.suspect_threshold)
     score.add_argument("--spam-threshold", type=float, default=policy.spam_threshold)
     score.add_argument("--explain", type=int, default=8, help="tokens to show each way")
-    _db_argument(score)
-    _json_argument(score)
+    db_argument(score)
+    json_argument(score)
     score.set_defaults(handler=cmd_score)
 
 
@@ -225,7 +202,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         "warmup": args.warmup,
         "methods": figures,
     }
-    _print_report(args, report, _replay_lines(report, figures))
+    print_report(args, report, _replay_lines(report, figures))
     return 0
 
 
@@ -292,7 +269,7 @@ def _add_replay_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]
     rp.add_argument("--scores", help="write file, label, score, verdict per message (TSV)")
     rp.add_argument("--roc", help="write the ROC curve as an SVG image")
     rp.add_argument("--replay-db", help="keep the replay's model in this database")
-    _json_argument(rp)
+    json_argument(rp)
     rp.set_defaults(handler=cmd_replay)
 
 
@@ -310,7 +287,7 @@ def cmd_stats(args: argparse.Namespace) -> int:
         round(stats.database_bytes / stats.tokens, 1) if stats.tokens else None
     )
     lines = [f"{key.replace('_', ' ')}: {value}" for key, value in report.items()]
-    _print_report(args, report, lines)
+    print_report(args, report, lines)
     return 0
 
 
@@ -326,7 +303,7 @@ def cmd_prune(args: argparse.Namespace) -> int:
         f"pruned {removed} of {before} tokens "
         f"(seen in at most {args.max_count} messages, unseen for {args.unseen_days} days)"
     ]
-    _print_report(args, report, lines)
+    print_report(args, report, lines)
     return 0
 
 
@@ -336,8 +313,8 @@ def _add_model_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
         help="show model size and class totals",
         description="Print the model's size, class totals and settings.",
     )
-    _db_argument(stats)
-    _json_argument(stats)
+    db_argument(stats)
+    json_argument(stats)
     stats.set_defaults(handler=cmd_stats)
     prune = sub.add_parser(
         "prune",
@@ -347,8 +324,8 @@ def _add_model_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
     )
     prune.add_argument("--max-count", type=int, default=1, help="messages containing the token")
     prune.add_argument("--unseen-days", type=int, default=60)
-    _db_argument(prune)
-    _json_argument(prune)
+    db_argument(prune)
+    json_argument(prune)
     prune.set_defaults(handler=cmd_prune)
 
 

@@ -26,7 +26,7 @@ import aiosmtplib
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
 from mailweir.daemon import scenario
-from mailweir.daemon.learning import model_hashes_only, open_model
+from mailweir.daemon.learning import open_model
 from mailweir.daemon.service import Service
 from mailweir.daemon.settings import (
     FeedbackSettings,
@@ -39,6 +39,7 @@ from mailweir.daemon.settings import (
     SmtpSettings,
 )
 from mailweir.model.hashing import message_digest
+from mailweir.model.tokenize import tokenize
 from mailweir.model.types import HAM, SPAM
 
 LOCALHOST = "127.0.0.1"
@@ -105,7 +106,7 @@ def train(database: str, messages: Sequence[scenario.ScenarioMessage]) -> tuple[
     try:
         items = []
         for message in messages:
-            hashes = model_hashes_only(model, message.raw)
+            hashes = tokenize(message.raw, model.options)
             label = SPAM if message.label == "spam" else HAM
             items.append((hashes, label, message_digest(hashes), "demo"))
         model.store.train_many(items)

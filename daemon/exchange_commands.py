@@ -18,12 +18,9 @@ from typing import Any, TextIO
 
 from sqlalchemy import func, select
 
-from mailweir.daemon.settings import Settings
+from mailweir.daemon.command_args import db_argument, json_argument
 from mailweir.store import ModelStore, StoreError, schema
 from mailweir.store.exchange import ExchangeSummary, ModelExport, export_model, import_model
-
-# The same default and environment variable as the other model commands in cli.py.
-DB_ENV = "MAILWEIR_DB"
 
 Handler = Callable[[argparse.Namespace], int]
 
@@ -38,8 +35,8 @@ def add_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> No
         "backups and moves; the daemon may keep running meanwhile.",
     )
     export.add_argument("--out", default="-", help="file to write, or - for standard output")
-    _db_argument(export)
-    _json_argument(export)
+    db_argument(export)
+    json_argument(export)
     export.set_defaults(handler=cmd_export)
 
     imp = sub.add_parser(
@@ -49,8 +46,8 @@ def add_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> No
         "one transaction: a cut-off or damaged file leaves the database as it was.",
     )
     imp.add_argument("file", help="the export file, or - for standard input")
-    _db_argument(imp)
-    _json_argument(imp)
+    db_argument(imp)
+    json_argument(imp)
     imp.set_defaults(handler=cmd_import)
 
     move = sub.add_parser(
@@ -62,21 +59,8 @@ def add_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> No
     )
     move.add_argument("--from", dest="source", required=True, help="database URL or SQLite path")
     move.add_argument("--to", dest="target", required=True, help="database URL or SQLite path")
-    _json_argument(move)
+    json_argument(move)
     move.set_defaults(handler=cmd_move)
-
-
-def _db_argument(parser: argparse.ArgumentParser) -> None:
-    default = os.environ.get(DB_ENV, Settings().database)
-    parser.add_argument(
-        "--db",
-        default=default,
-        help=f"database URL or SQLite path (default: ${DB_ENV} or {Settings().database})",
-    )
-
-
-def _json_argument(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--json", action="store_true", help="print the summary as JSON")
 
 
 @contextmanager

@@ -49,8 +49,8 @@ from mailweir.daemon.feedback_types import (
 )
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import FeedbackSettings
-from mailweir.model.hashing import hash_tokens, message_digest
-from mailweir.model.tokenize import TokenizerOptions, tokens
+from mailweir.model.hashing import message_digest
+from mailweir.model.tokenize import TokenizerOptions, tokenize
 from mailweir.model.types import HAM, SPAM, TokenHashes
 from mailweir.store import FeedbackChannel, FeedbackKind, FeedbackRecord, TrainResult
 from mailweir.store.errors import StoreError
@@ -104,7 +104,7 @@ class MetricsLike(Protocol):
 
 def hashes_of(raw: bytes, options: TokenizerOptions) -> TokenHashes:
     """The message's token hashes (module level, so a process pool can run it)."""
-    return hash_tokens(tokens(raw, options))
+    return tokenize(raw, options)
 
 
 def issued_at(tracking_id: str) -> float | None:

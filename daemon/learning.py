@@ -18,7 +18,7 @@ from dataclasses import dataclass
 from mailweir.daemon.sources import read_messages
 from mailweir.model.hashing import hash_tokens, message_digest
 from mailweir.model.nb import NaiveBayes, Score, make_scorer
-from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
+from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokenize, tokens
 from mailweir.model.types import TokenHashes
 from mailweir.store import ModelStore, TrainResult
 
@@ -156,17 +156,13 @@ def train_from(
     failures: Counter[str] = Counter()
     batch: list[tuple[TokenHashes, int, bytes, str]] = []
     for _name, raw in iter_sources(targets, failures):
-        hashes = model_hashes_only(model, raw)
+        hashes = tokenize(raw, model.options)
         batch.append((hashes, label, message_digest(hashes), source))
         if len(batch) >= BATCH:
             _flush(model, batch, summary, progress)
     _flush(model, batch, summary, progress)
     summary["unreadable"] += sum(failures.values())
     return summary
-
-
-def model_hashes_only(model: OpenModel, raw: bytes) -> TokenHashes:
-    return hash_tokens(tokens(raw, model.options))
 
 
 def _flush(
@@ -188,7 +184,7 @@ def untrain_from(model: OpenModel, targets: Iterable[str], progress: Progress) -
     summary: Counter[str] = Counter()
     failures: Counter[str] = Counter()
     for _name, raw in iter_sources(targets, failures):
-        hashes = model_hashes_only(model, raw)
+        hashes = tokenize(raw, model.options)
         outcome = model.store.untrain(hashes, digest=message_digest(hashes))
         summary[outcome.name.lower()] += 1
         progress.tick()

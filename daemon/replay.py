@@ -26,9 +26,9 @@ from mailweir.daemon.learning import OpenModel, Progress, open_model
 from mailweir.daemon.replay_counts import MemoryCounts
 from mailweir.daemon.sources import LabelledMessage
 from mailweir.model import evaluate
-from mailweir.model.hashing import hash_tokens, message_digest
+from mailweir.model.hashing import message_digest
 from mailweir.model.nb import NaiveBayes, make_scorer
-from mailweir.model.tokenize import DEFAULT_OPTIONS, tokens
+from mailweir.model.tokenize import DEFAULT_OPTIONS, tokenize
 from mailweir.model.types import (
     HAM,
     LABELS,
@@ -110,7 +110,7 @@ def replay(
         options = dataclasses.replace(
             DEFAULT_OPTIONS, bigrams=plan.bigrams, ignore_headers=plan.ignore_headers
         )
-        hashes = [hash_tokens(tokens(m.raw, options)) for m in corpus]
+        hashes = [tokenize(m.raw, options) for m in corpus]
         return replay_hashes(hashes, [m.label for m in corpus], [m.name for m in corpus], plan)
     with tempfile.TemporaryDirectory(prefix="mailweir-replay-") as scratch:
         target = plan.database or str(Path(scratch) / "replay.sqlite3")
@@ -213,13 +213,13 @@ def _run(
     if n_train:
         batch = []
         for message in corpus[:n_train]:
-            hashes = hash_tokens(tokens(message.raw, model.options))
+            hashes = tokenize(message.raw, model.options)
             batch.append((hashes, message.label, message_digest(hashes), "replay"))
         model.store.train_many(batch)
         trained += n_train
         progress.tick(n_train)
     for i, message in enumerate(scored):
-        hashes = hash_tokens(tokens(message.raw, model.options))
+        hashes = tokenize(message.raw, model.options)
         counts = model.store.lookup(hashes)
         classes, vocabulary = model.store.class_count(), model.store.vocabulary()
         for m, scorer in enumerate(scorers):
