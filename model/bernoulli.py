@@ -11,6 +11,7 @@ import numpy.typing as npt
 from mailweir.model.nb_base import (
     FloatArray,
     NaiveBayes,
+    check_alpha,
     check_counts,
     check_frequency,
     class_log_prior,
@@ -55,8 +56,7 @@ class BernoulliNB(NaiveBayes):
     alpha: float = 1.0
 
     def __post_init__(self) -> None:
-        if not self.alpha > 0 or not np.isfinite(self.alpha):
-            raise ValueError(f"bernoulli: alpha must be finite and > 0, got {self.alpha}")
+        check_alpha(self.name, self.alpha)
 
     def _log_probabilities(
         self, counts: npt.NDArray[np.int64], class_count: npt.NDArray[np.int64]

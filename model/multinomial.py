@@ -11,6 +11,7 @@ import numpy.typing as npt
 from mailweir.model.nb_base import (
     FloatArray,
     NaiveBayes,
+    check_alpha,
     check_counts,
     check_frequency,
     class_log_prior,
@@ -57,8 +58,7 @@ class MultinomialBooleanNB(NaiveBayes):
     alpha: float = 1.0
 
     def __post_init__(self) -> None:
-        if not self.alpha > 0 or not np.isfinite(self.alpha):
-            raise ValueError(f"multinomial: alpha must be finite and > 0, got {self.alpha}")
+        check_alpha(self.name, self.alpha)
 
     def _log_probabilities(
         self, counts: npt.NDArray[np.int64], vocabulary: Vocabulary

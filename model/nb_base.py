@@ -88,6 +88,12 @@ def check_counts(
     return counts.astype(np.int64, copy=False), classes.astype(np.int64, copy=False)
 
 
+def check_alpha(method: str, alpha: float) -> None:
+    """Lidstone smoothing must be a finite positive number (1.0 is Laplace's add-one)."""
+    if not alpha > 0 or not np.isfinite(alpha):
+        raise ValueError(f"{method}: alpha must be finite and > 0, got {alpha}")
+
+
 def check_frequency(frequency: npt.ArrayLike | None, n_tokens: int) -> FloatArray:
     """Validate term frequencies of shape (n,); ``None`` means every token once."""
     if frequency is None:
