@@ -1,0 +1,208 @@
+"""mailweir against a bare relay, in one run on one machine: throughput, latency, CPU per message.
+
+The same generated Harbour Lane messages go through (a) a bare aiosmtpd relay built the way
+mailweir relays (bench/relay_parts.py) and (b) the real daemon, ``mailweir run`` in a
+subprocess with a model of at least 500,000 tokens, both relaying to the same aiosmtpd sink.
+The daemon runs in enforce mode with every band tagged, so each message is parsed, tokenized,
+looked up, scored, rewritten with our header fields and logged (observe mode scores too, but
+relays the message unchanged, skipping the header rewrite).
+
+For each message size and client count it prints throughput, p50/p99 latency (MAIL FROM to the
+250 after DATA), the server's CPU time per message (the server process and its pool workers,
+from /proc) and the CPU other processes of the machine used meanwhile (busy time from
+/proc/stat minus this benchmark's own process tree).  The machine is shared: compare only
+within one run.
+
+    python bench/bench_relay.py                          # a few minutes
+    python bench/bench_relay.py --messages 4000 --large-messages 800 --rounds 2
+
+Everything listens on 127.0.0.1; counts are bounded.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import os
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+BENCH = Path(__file__).resolve().parent
+sys.path.insert(0, str(BENCH))
+
+import bench_mail  # noqa: E402
+import proc_cpu  # noqa: E402
+from relay_parts import LOCAL, push  # noqa: E402
+
+PYTHON = sys.executable
+MAILWEIR = str(Path(PYTHON).with_name("mailweir"))
+
+
+@dataclass
+class Figures:
+    server: str
+    size: str
+    clients: int
+    sent: int
+    failed: int
+    seconds: float
+    p50_ms: float
+    p99_ms: float
+    cpu_ms: float  # server CPU per message
+    others_cpu: float  # CPU seconds of other processes during the run
+    rss_mb: float
+
+    @property
+    def rate(self) -> float:
+        return self.sent / self.seconds
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as sock:
+        sock.bind((LOCAL, 0))
+        return int(sock.getsockname()[1])
+
+
+def _start(argv: list[str], port_file: Path | None, port: int | None = None) -> tuple[Any, int]:
+    process = subprocess.Popen(argv, stdin=subprocess.DEVNULL)
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        if process.poll() is not None:
+            raise SystemExit(f"{argv[:3]} exited with {process.returncode}")
+        if port_file is not None and port_file.exists() and port_file.read_text():
+            port = int(port_file.read_text())
+        if port is not None and _greets(port):
+            return process, port
+        time.sleep(0.1)
+    process.terminate()
+    raise SystemExit(f"{argv[:3]} did not start listening")
+
+
+def _greets(port: int) -> bool:
+    import socket
+
+    try:
+        with socket.create_connection((LOCAL, port), timeout=1) as sock:
+            return sock.recv(3) == b"220"
+    except OSError:
+        return False
+
+
+def _mailweir_config(folder: Path, model: Path, sink_port: int, port: int) -> Path:
+    database = folder / "model.sqlite3"
+    shutil.copyfile(model, database)
+    config = folder / "mailweir.toml"
+    config.write_text(
+        f'state_dir = "{folder / "state"}"\n'
+        f'[smtp]\nlisten = "{LOCAL}:{port}"\nhostname = "filter.harbourlane.example"\n'
+        f'[next_hop]\naddress = "{LOCAL}:{sink_port}"\n'
+        'helo_name = "filter.harbourlane.example"\n'
+        '[policy]\nmode = "enforce"\nham_action = "tag"\nsuspect_action = "tag"\n'
+        'spam_action = "tag"\n'
+        f'[model]\ndatabase = "{database}"\n'
+        f'[http]\nlisten = "{LOCAL}:{_free_port()}"\n'
+        '[log]\nlevel = "warning"\n'
+    )
+    return config
+
+
+def _measure(
+    name: str, pid: int, port: int, messages: list[bytes], clients: int, size: str
+) -> Figures:
+    asyncio.run(push(port, messages[: clients * 4], clients))  # warm-up: connections, caches
+    server_before = proc_cpu.tree_seconds(pid)
+    ours_before = proc_cpu.tree_seconds(os.getpid())
+    busy_before = proc_cpu.machine_busy_seconds()
+    started = time.perf_counter()
+    results = asyncio.run(push(port, messages, clients))
+    seconds = time.perf_counter() - started
+    busy = proc_cpu.machine_busy_seconds() - busy_before
+    ours = proc_cpu.used(ours_before, proc_cpu.tree_seconds(os.getpid()))
+    server = proc_cpu.used(server_before, proc_cpu.tree_seconds(pid))
+    latencies = sorted(results.latencies) or [float("nan")]
+    sent = len(results.latencies)
+    if results.failures:
+        print(f"  {name}: {len(results.failures)} failures, first: {results.failures[0]}")
+    rss = sum(proc_cpu.rss_bytes(p) for p in proc_cpu.tree_pids(pid)) / 2**20
+    return Figures(
+        name,
+        size,
+        clients,
+        sent,
+        len(results.failures),
+        seconds,
+        statistics.median(latencies) * 1e3,
+        latencies[min(len(latencies) - 1, int(0.99 * len(latencies)))] * 1e3,
+        server / max(sent, 1) * 1e3,
+        max(0.0, busy - ours),
+        rss,
+    )
+
+
+def _print(bare: Figures, mine: Figures) -> None:
+    for f in (bare, mine):
+        print(
+            f"{f.size:>6} {f.clients:>3} {f.server:<8} {f.rate:8.0f} {f.p50_ms:8.1f} "
+            f"{f.p99_ms:8.1f} {f.cpu_ms:8.2f} {f.others_cpu:7.1f}s {f.rss_mb:6.0f}"
+        )
+    print(
+        f"{'':>6} {'':>3} {'ratio':<8} {mine.rate / bare.rate:8.2f} "
+        f"{mine.p50_ms / bare.p50_ms:8.2f} {mine.p99_ms / bare.p99_ms:8.2f} "
+        f"{mine.cpu_ms / bare.cpu_ms:8.2f}   added p99 {mine.p99_ms - bare.p99_ms:.1f} ms"
+    )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--messages", type=int, default=800, help="4 KB messages per run")
+    parser.add_argument("--large-messages", type=int, default=150, help="100 KB ones per run")
+    parser.add_argument("--clients", type=int, nargs="+", default=[1, 8, 32])
+    parser.add_argument("--rounds", type=int, default=1, help="repeat every pair of runs")
+    parser.add_argument("--min-tokens", type=int, default=500_000, help="model size")
+    args = parser.parse_args()
+    model = bench_mail.build_model(args.min_tokens)
+    with tempfile.TemporaryDirectory(prefix="mailweir-bench-relay-") as tmp:
+        folder = Path(tmp)
+        here = [PYTHON, str(BENCH / "relay_parts.py")]
+        sink, sink_port = _start([*here, "sink", str(folder / "sink")], folder / "sink")
+        bare, bare_port = _start(
+            [*here, "bare", f"{LOCAL}:{sink_port}", str(folder / "bare")], folder / "bare"
+        )
+        port = _free_port()
+        config = _mailweir_config(folder, model, sink_port, port)
+        daemon, _ = _start([MAILWEIR, "run", "--config", str(config)], None, port)
+        try:
+            _run(args, bare.pid, bare_port, daemon.pid, port)
+        finally:
+            for process in (daemon, bare, sink):
+                process.terminate()
+                process.wait(30)
+
+
+def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port: int) -> None:
+    print(f"cores {os.cpu_count()}, load average {os.getloadavg()[0]:.2f} at start")
+    print(
+        f"{'size':>6} {'cli':>3} {'server':<8} {'msg/s':>8} {'p50 ms':>8} {'p99 ms':>8} "
+        f"{'cpu ms':>8} {'others':>8} {'RSS MB':>6}"
+    )
+    for size, count in ((4096, args.messages), (100 * 1024, args.large_messages)):
+        label = f"{size // 1024}KB"
+        messages = [bench_mail.message(i, size, seed=7) for i in range(count)]
+        for clients in args.clients:
+            for _ in range(args.rounds):
+                bare = _measure("bare", bare_pid, bare_port, messages, clients, label)
+                mine = _measure("mailweir", pid, port, messages, clients, label)
+                _print(bare, mine)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,77 @@
+"""CPU time from /proc (Linux): a process tree's own time, and the whole machine's busy time.
+
+A process tree is a process and its live descendants (mailweir's scoring pool workers and
+forkserver count as the daemon's).  Times are seconds of CPU, user plus system.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+TICK = os.sysconf("SC_CLK_TCK")
+
+
+def _stat_fields(pid: int) -> list[str] | None:
+    try:
+        text = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:  # gone
+        return None
+    # The command name may hold spaces and parentheses; the fields start after the last ")".
+    return text[text.rindex(")") + 2 :].split()
+
+
+def _children() -> dict[int, list[int]]:
+    tree: dict[int, list[int]] = {}
+    for entry in os.scandir("/proc"):
+        if entry.name.isdigit():
+            fields = _stat_fields(int(entry.name))
+            if fields is not None:
+                tree.setdefault(int(fields[1]), []).append(int(entry.name))
+    return tree
+
+
+def tree_pids(root: int) -> list[int]:
+    """``root`` and its live descendants."""
+    tree = _children()
+    pids, todo = [], [root]
+    while todo:
+        pid = todo.pop()
+        pids.append(pid)
+        todo.extend(tree.get(pid, ()))
+    return pids
+
+
+def process_seconds(pid: int) -> float:
+    """CPU seconds used so far by one process (all its threads), 0 when it is gone."""
+    fields = _stat_fields(pid)
+    return 0.0 if fields is None else (int(fields[11]) + int(fields[12])) / TICK
+
+
+def tree_seconds(root: int) -> dict[int, float]:
+    """CPU seconds per process of the tree; diff two snapshots with :func:`used`."""
+    return {pid: process_seconds(pid) for pid in tree_pids(root)}
+
+
+def used(before: dict[int, float], after: dict[int, float]) -> float:
+    """CPU seconds between two snapshots (a process born in between counts from zero)."""
+    return sum(seconds - before.get(pid, 0.0) for pid, seconds in after.items())
+
+
+def machine_busy_seconds() -> float:
+    """Busy CPU seconds of the whole machine since boot, summed over every core."""
+    with open("/proc/stat") as stat:
+        fields = [int(x) for x in stat.readline().split()[1:]]
+    user, nice, system, _idle, _iowait, irq, softirq, steal = fields[:8]
+    return (user + nice + system + irq + softirq + steal) / TICK
+
+
+def rss_bytes(pid: int) -> int:
+    """Resident set size of one process (VmRSS), 0 when it is gone."""
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0
