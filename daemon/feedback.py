@@ -47,6 +47,7 @@ from mailweir.daemon.feedback_types import (
     FeedbackRequest,
     FeedbackStatus,
 )
+from mailweir.daemon.log_setup import message_scoped, tag_message
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import FeedbackSettings
 from mailweir.model.hashing import message_digest
@@ -234,6 +235,7 @@ class FeedbackIntake:
         token); one read from the message is checked against the message."""
         return await self._correct(request, check_id=request.tracking_id is None)
 
+    @message_scoped  # the lines about this correction carry its tracking id
     async def _correct(self, request: FeedbackRequest, *, check_id: bool) -> FeedbackOutcome:
         verdict, hashes, exact = await self._evidence(request, check_id)
         if hashes is None or not len(hashes):
@@ -261,6 +263,7 @@ class FeedbackIntake:
         tracking_id = request.tracking_id
         if tracking_id is None and request.raw is not None:
             tracking_id = forwarded.tracking_id(request.raw)
+        tag_message(tracking_id)
         verdict = await self._find_verdict(tracking_id) if tracking_id else None
         recorded = None if verdict is None else verdict.token_hashes
         hashes = None

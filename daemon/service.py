@@ -18,7 +18,6 @@ import argparse
 import asyncio
 import dataclasses
 import functools
-import json
 import logging
 import os
 import signal
@@ -33,6 +32,7 @@ from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
 from mailweir.daemon.http_side import FeedbackHandler
 from mailweir.daemon.judge import Judge, make_executor
+from mailweir.daemon.log_setup import configure_logging
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import Observing
 from mailweir.daemon.settings import HostPort, Settings
@@ -391,7 +391,7 @@ def run_command(args: argparse.Namespace) -> int:
     except ConfigError as exc:
         print(f"mailweir: configuration error: {exc}", file=sys.stderr)
         return 2
-    configure_logging(settings)
+    configure_logging(settings.log)
     return asyncio.run(_serve(settings, source))
 
 
@@ -413,27 +413,3 @@ async def _serve(settings: Settings, source: ConfigSource) -> int:
     await service.wait_for_stop()
     await service.shutdown()
     return 0
-
-
-class _JsonFormatter(logging.Formatter):
-    def format(self, record: logging.LogRecord) -> str:
-        entry = {
-            "time": self.formatTime(record),
-            "level": record.levelname.lower(),
-            "logger": record.name,
-            "message": record.getMessage(),
-        }
-        if record.exc_info:
-            entry["traceback"] = self.formatException(record.exc_info)
-        return json.dumps(entry)
-
-
-def configure_logging(settings: Settings) -> None:
-    handler = logging.StreamHandler(sys.stderr)
-    if settings.log.format == "json":
-        handler.setFormatter(_JsonFormatter())
-    else:
-        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
-    root = logging.getLogger("mailweir")
-    root.handlers[:] = [handler]
-    root.setLevel(settings.log.level.upper())

@@ -9,18 +9,21 @@ from __future__ import annotations
 
 import asyncio
 import dataclasses
+import functools
 import logging
 import socket
 import ssl
 import time
-from collections.abc import Iterator
+from collections.abc import Awaitable, Callable, Iterator
 from contextlib import contextmanager
 from typing import TYPE_CHECKING, Any, AnyStr, Protocol
 
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
 from mailweir.daemon import actions, headers, replies
+from mailweir.daemon.admission import NO_FIRST_COMMAND, Admission
 from mailweir.daemon.errors import NextHopUnavailable, RelayError, reply_for
+from mailweir.daemon.log_setup import message_scoped, tag_message
 from mailweir.daemon.relay import HEADER_ALLOWANCE, MailParameters, NextHopSession, RelayTimeouts
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import Settings, SmtpSettings
@@ -72,11 +75,35 @@ class FilterEnvelope(Envelope):
 
 
 class Connections:
-    """The open upstream connections of one server, for the cap and for shutdown."""
+    """The open upstream connections of one server, for the caps and for shutdown.
 
-    def __init__(self, limit: int) -> None:
-        self.limit = limit
+    ``admission`` decides who may connect (daemon/admission.py); without one, only the total
+    ``limit`` applies.
+    """
+
+    def __init__(self, limit: int, admission: Admission | None = None) -> None:
+        self.admission = admission or Admission(limit)
         self.protocols: set[FilterSMTP] = set()
+
+    @classmethod
+    def from_settings(cls, smtp: SmtpSettings) -> Connections:
+        return cls(smtp.max_connections, Admission.from_settings(smtp))
+
+    @property
+    def limit(self) -> int:
+        return self.admission.limit
+
+    def admit(self, protocol: FilterSMTP, host: str | None) -> Reply | None:
+        """Count ``protocol`` in, or return the refusal to send before closing it."""
+        refusal = self.admission.admit(host, self.active)
+        if refusal is None:
+            self.protocols.add(protocol)
+        return refusal
+
+    def release(self, protocol: FilterSMTP, host: str | None) -> None:
+        if protocol in self.protocols:
+            self.protocols.discard(protocol)
+            self.admission.release(host)
 
     @property
     def active(self) -> int:
@@ -124,7 +151,15 @@ class FilterSMTP(SMTP):
         self._connections = connections
         self._counted = False
         self._refused = False
+        self._peer_host: str | None = None
         self.working = False
+        # A client that never sends a command is cut off after smtp.first_command_timeout;
+        # the first command it sends (any verb aiosmtpd knows) ends that wait.
+        self._first_command_timeout = smtp.first_command_timeout
+        self._first_command_timer: asyncio.TimerHandle | None = None
+        self._smtp_methods = {
+            verb: self._ends_first_wait(method) for verb, method in self._smtp_methods.items()
+        }
 
     def _create_session(self) -> Session:
         return FilterSession(self.loop)
@@ -134,14 +169,17 @@ class FilterSMTP(SMTP):
 
     def connection_made(self, transport: asyncio.BaseTransport) -> None:
         if not self._counted:  # the first call; STARTTLS calls again on the same connection
-            if self._connections.active >= self._connections.limit:
+            peer = transport.get_extra_info("peername")
+            self._peer_host = peer[0] if isinstance(peer, tuple) and peer else None
+            refusal = self._connections.admit(self, self._peer_host)
+            if refusal is not None:
                 self._refused = True
-                message = str(replies.TOO_MANY_CONNECTIONS).encode("ascii") + b"\r\n"
-                transport.write(message)  # type: ignore[attr-defined]
-                transport.close()
+                _close_with(transport, refusal)
                 return
-            self._connections.protocols.add(self)
             self._counted = True
+            self._first_command_timer = self.loop.call_later(
+                self._first_command_timeout, self._no_first_command
+            )
         elif isinstance(self.session, FilterSession) and self.session.relay is not None:
             self.session.relay.abort()  # STARTTLS starts a new session (RFC 3207 section 4.2)
         super().connection_made(transport)
@@ -151,8 +189,9 @@ class FilterSMTP(SMTP):
             asyncio.StreamReaderProtocol.connection_lost(self, error)
             return
         if self._counted:
-            self._connections.protocols.discard(self)
+            self._connections.release(self, self._peer_host)
             self._counted = False
+        self._end_first_wait()
         session = self.session
         if isinstance(session, FilterSession) and session.relay is not None:
             session.relay.abort()  # the upstream is gone: its open transaction must not finish
@@ -165,6 +204,26 @@ class FilterSMTP(SMTP):
         if not self.working and self._timeout_handle is not None:
             self._reset_timeout()
         super().data_received(data)
+
+    def _ends_first_wait(self, method: Callable[[str | None], Awaitable[None]]) -> Any:
+        @functools.wraps(method)
+        async def command(arg: str | None) -> None:
+            self._end_first_wait()
+            await method(arg)
+
+        return command
+
+    def _end_first_wait(self) -> None:
+        if self._first_command_timer is not None:
+            self._first_command_timer.cancel()
+            self._first_command_timer = None
+
+    def _no_first_command(self) -> None:
+        self._first_command_timer = None
+        if self.transport is None:
+            return
+        log.debug("%s: no first command in %ss", self._peer_host, self._first_command_timeout)
+        _close_with(self.transport, NO_FIRST_COMMAND)
 
     async def push(self, status: AnyStr) -> None:
         raw = status if isinstance(status, bytes) else status.encode("utf-8", "surrogateescape")
@@ -187,6 +246,12 @@ class FilterSMTP(SMTP):
     def forget_transaction(self) -> None:
         """Drop the envelope after a failed DATA, so the next MAIL starts clean."""
         self.envelope = self._create_envelope()
+
+
+def _close_with(transport: asyncio.BaseTransport, reply: Reply) -> None:
+    """Send a last reply (a 421: the server closes, RFC 5321 section 3.8) and close."""
+    transport.write(str(reply).encode("ascii") + b"\r\n")  # type: ignore[attr-defined]
+    transport.close()
 
 
 class FilterHandler:
@@ -241,6 +306,7 @@ class FilterHandler:
             envelope.rcpt_options.extend(rcpt_options)
         return str(answer)
 
+    @message_scoped  # log lines from here to the reply carry the tracking id
     async def handle_DATA(
         self, server: FilterSMTP, session: FilterSession, envelope: FilterEnvelope
     ) -> str:
@@ -314,6 +380,7 @@ class FilterHandler:
         decided one, or "tempfail" / "refused" when the relay failed) and the reply."""
         raw = envelope.original_content or b""
         judgement = await self.judge.judge(headers.remove_own_fields(raw))
+        tag_message(judgement.tracking_id)
         decision = actions.decide(judgement.band, self.settings.policy)
         if decision.note:
             log.info("%s: %s (%s)", judgement.tracking_id, decision.action, decision.note)
@@ -419,7 +486,7 @@ async def create_smtp_server(
     smtp = settings.smtp
     # aiosmtpd would look the name up on every connection; once is enough.
     hostname = smtp.hostname or await asyncio.to_thread(socket.getfqdn)
-    connections = connections or Connections(smtp.max_connections)
+    connections = connections or Connections.from_settings(smtp)
     context = tls_context(smtp)
 
     def protocol() -> FilterSMTP:
