@@ -24,7 +24,16 @@ from pathlib import Path
 from typing import Any, Literal
 
 from mailweir.daemon.errors import ConfigError
-from mailweir.daemon.settings import FeedbackSettings, HostPort, PolicySettings, Settings
+from mailweir.daemon.settings import (
+    FeedbackSettings,
+    HostPort,
+    PolicySettings,
+    QuarantineSettings,
+    RecipientPolicy,
+    Settings,
+    SmtpSettings,
+)
+from mailweir.daemon.site_policy import SitePolicy
 
 ENV_PREFIX = "MAILWEIR_"
 CONFIG_PATH_ENV = "MAILWEIR_CONFIG"  # the file to read when --config is not given
@@ -233,6 +242,10 @@ def _coerce(key: str, raw: Any, hint: Any, origin: str) -> Any:
         if isinstance(raw, list) and all(isinstance(item, str) for item in raw):
             return tuple(raw)
         raise bad("a list of strings")
+    if hint == tuple[RecipientPolicy, ...]:
+        if isinstance(raw, list) and all(isinstance(item, dict) for item in raw):
+            return tuple(_recipient_rule(f"{key}[{i}]", item, origin) for i, item in enumerate(raw))
+        raise bad("[[policy.recipient]] tables in the configuration file")
     if hint is HostPort:
         if text:
             try:
@@ -241,6 +254,20 @@ def _coerce(key: str, raw: Any, hint: Any, origin: str) -> Any:
                 pass
         raise bad('"host:port" (IPv6 as "[addr]:port")')
     raise bad(f"a value of type {hint}")  # a settings field type this loader does not know
+
+
+def _recipient_rule(key: str, table: dict[str, Any], origin: str) -> RecipientPolicy:
+    """One ``[[policy.recipient]]`` table, each value coerced like a key of its own."""
+    hints = typing.get_type_hints(RecipientPolicy)
+    values = {}
+    for name, raw in table.items():
+        if name not in hints:
+            known = ", ".join(hints)
+            raise ConfigError(f"{key}.{name}", f"unknown key (from {origin}); known: {known}")
+        values[name] = _coerce(f"{key}.{name}", raw, hints[name], origin)
+    if not values.get("match"):
+        raise ConfigError(f"{key}.match", f"is missing (from {origin}); expected an address")
+    return RecipientPolicy(**values)
 
 
 def parse_host_port(text: str) -> HostPort:
@@ -274,10 +301,12 @@ def validate(settings: Settings) -> None:
             raise ConfigError(key, f"got port {address.port}; expected {low}..65535")
     _check_policy(settings.policy)
     _check_tls(settings)
+    _check_admission(settings.smtp)
     if settings.log.level.lower() not in LOG_LEVELS:
         raise ConfigError("log.level", f"got {settings.log.level!r}; expected one of {LOG_LEVELS}")
     _check_method(settings.model.method)
     _check_feedback(settings.feedback)
+    _check_quarantine(settings.quarantine)
 
 
 def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
@@ -286,7 +315,10 @@ def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
         ("smtp.max_message_bytes", s.smtp.max_message_bytes, 1, inf, "at least 1"),
         ("smtp.max_recipients", s.smtp.max_recipients, 1, inf, "at least 1"),
         ("smtp.max_connections", s.smtp.max_connections, 1, inf, "at least 1"),
+        ("smtp.max_connections_per_client", s.smtp.max_connections_per_client, 1, inf, ">= 1"),
+        ("smtp.reserved_connections", s.smtp.reserved_connections, 0, inf, "0 or more"),
         ("smtp.command_timeout", s.smtp.command_timeout, 1e-3, inf, "seconds > 0"),
+        ("smtp.first_command_timeout", s.smtp.first_command_timeout, 1e-3, inf, "seconds > 0"),
         ("next_hop.connect_timeout", s.next_hop.connect_timeout, 1e-3, inf, "seconds > 0"),
         ("next_hop.command_timeout", s.next_hop.command_timeout, 1e-3, inf, "seconds > 0"),
         ("next_hop.data_timeout", s.next_hop.data_timeout, 1e-3, inf, "seconds > 0"),
@@ -301,6 +333,12 @@ def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
         ("log.verdict_batch_seconds", s.log.verdict_batch_seconds, 1e-3, 3600, "0 < s <= 3600"),
         ("feedback.rate_limit_per_hour", s.feedback.rate_limit_per_hour, 0, inf, "0 or more"),
         ("feedback.max_message_bytes", s.feedback.max_message_bytes, 1, inf, "at least 1"),
+        ("upkeep.prune_every_hours", s.upkeep.prune_every_hours, 0, inf, "hours, 0: off"),
+        ("upkeep.prune_max_count", s.upkeep.prune_max_count, 1, inf, "1 or more messages"),
+        ("upkeep.prune_unseen_days", s.upkeep.prune_unseen_days, 1, inf, "1 or more days"),
+        ("upkeep.trim_every_hours", s.upkeep.trim_every_hours, 0, inf, "hours, 0: off"),
+        ("upkeep.verdict_keep_days", s.upkeep.verdict_keep_days, 1, inf, "1 or more days"),
+        ("upkeep.tidy_every_hours", s.upkeep.tidy_every_hours, 0, inf, "hours, 0: off"),
     ]
 
 
@@ -313,9 +351,9 @@ def _check_policy(policy: PolicySettings) -> None:
         )
     if policy.ham_action in ("reroute", "reject"):
         raise ConfigError("policy.ham_action", f"got {policy.ham_action!r}; expected pass or tag")
-    for band in ("suspect", "spam"):
-        action = getattr(policy, f"{band}_action")
-        key = f"policy.{band}_action"
+    for name in ("suspect_action", "spam_action", "block_action"):
+        action = getattr(policy, name)
+        key = f"policy.{name}"
         if action == "reroute" and not policy.quarantine_mailbox:
             raise ConfigError(key, 'is "reroute"; expected policy.quarantine_mailbox to be set')
         if action == "reject" and policy.position != "before-queue":
@@ -329,6 +367,7 @@ def _check_policy(policy: PolicySettings) -> None:
         raise ConfigError(
             "policy.quarantine_mailbox", f"got {mailbox!r}; expected an address local@domain"
         )
+    SitePolicy(policy)  # parses every list entry and [[policy.recipient]] rule, naming the key
 
 
 def _check_tls(settings: Settings) -> None:
@@ -340,6 +379,28 @@ def _check_tls(settings: Settings) -> None:
     for name, path in (("smtp.tls_cert", cert), ("smtp.tls_key", key)):
         if path is not None and not path.is_file():
             raise ConfigError(name, f"got {str(path)!r}; expected a readable file")
+
+
+def _check_admission(smtp: SmtpSettings) -> None:
+    if smtp.reserved_connections > smtp.max_connections:
+        raise ConfigError(
+            "smtp.reserved_connections",
+            f"got {smtp.reserved_connections!r}; expected at most smtp.max_connections "
+            f"({smtp.max_connections!r})",
+        )
+    _check_networks("smtp.reserved_networks", smtp.reserved_networks)
+
+
+def _check_networks(key: str, networks: tuple[str, ...]) -> None:
+    for network in networks:
+        try:
+            ipaddress.ip_network(network)
+        except ValueError as exc:
+            raise ConfigError(
+                key,
+                f"got {network!r} ({exc}); expected networks in CIDR form such as "
+                '"192.0.2.0/24" or "::1/128"',
+            ) from exc
 
 
 def _check_method(method: str) -> None:
@@ -362,12 +423,41 @@ def _check_feedback(feedback: FeedbackSettings) -> None:
             f"got {feedback.ham_address!r}, the same as feedback.spam_address; "
             "expected two different addresses",
         )
-    for network in feedback.trusted_networks:
-        try:
-            ipaddress.ip_network(network)
-        except ValueError as exc:
-            raise ConfigError(
-                "feedback.trusted_networks",
-                f"got {network!r} ({exc}); expected networks in CIDR form such as "
-                '"192.0.2.0/24" or "::1/128"',
-            ) from exc
+    _check_networks("feedback.trusted_networks", feedback.trusted_networks)
+
+
+def _check_quarantine(quarantine: QuarantineSettings) -> None:
+    if quarantine.retention_days < 1:
+        raise ConfigError(
+            "quarantine.retention_days", f"got {quarantine.retention_days!r}; expected 1 or more"
+        )
+    for name in ("digest_admin", "digest_from"):
+        address = getattr(quarantine, name)
+        if address and (address.count("@") != 1 or address[0] == "@" or address[-1] == "@"):
+            raise ConfigError(f"quarantine.{name}", f"got {address!r}; expected local@domain")
+    if not quarantine.digest_time:
+        return
+    if digest_clock(quarantine.digest_time) is None:
+        raise ConfigError(
+            "quarantine.digest_time",
+            f'got {quarantine.digest_time!r}; expected "HH:MM" (24-hour clock), or "" for none',
+        )
+    if not quarantine.digest_from:
+        raise ConfigError(
+            "quarantine.digest_from",
+            "is not set but quarantine.digest_time is; expected an address",
+        )
+    if quarantine.digest_to == "admin" and not quarantine.digest_admin:
+        raise ConfigError(
+            "quarantine.digest_admin", 'is not set but quarantine.digest_to is "admin"'
+        )
+
+
+def digest_clock(text: str) -> tuple[int, int] | None:
+    """(hour, minute) of an "HH:MM" text, or None when it is not a time of day."""
+    hour, colon, minute = text.strip().partition(":")
+    if not (colon and hour.isdigit() and minute.isdigit() and len(minute) == 2):
+        return None
+    if int(hour) > 23 or int(minute) > 59:
+        return None
+    return int(hour), int(minute)

@@ -41,6 +41,7 @@ from prometheus_client.registry import Collector
 
 from mailweir.daemon import replies
 from mailweir.daemon.errors import NextHopRejected, RelayError
+from mailweir.daemon.upkeep import UpkeepMetrics
 from mailweir.store.reports import MisfilingRates, ModelSummary
 
 log = logging.getLogger("mailweir.metrics")
@@ -54,7 +55,11 @@ BANDS: Final = ("ham", "suspect", "spam")
 ACTIONS: Final = ("pass", "tag", "reroute", "reject")
 NEXT_HOP_FAILURE_KINDS: Final = ("refused", "timeout", "reset", "tempfail", "permfail")
 FEEDBACK_KINDS: Final = ("false_positive", "false_negative", "confirmation")
-REFUSAL_REASONS: Final = ("untrusted", "rate_limited", "no_original", "unauthorized", "invalid")
+REFUSAL_REASONS: Final = (
+    "untrusted", "rate_limited", "no_original", "unauthorized", "invalid", "listed",
+)  # fmt: skip
+SENDER_LISTS: Final = ("allow", "block")
+RELOAD_RESULTS: Final = ("applied", "refused")
 RATE_WINDOWS: Final = {"24h": 24 * 3600.0, "7d": 7 * 24 * 3600.0}
 
 # Spam probabilities crowd both ends of [0, 1], so the buckets are fine at the ends and coarse
@@ -138,6 +143,19 @@ class Metrics:
             "mailweir_messages",
             "Messages judged, by band (ham, suspect, spam, unjudged, failed) and action taken.",
             ["band", "action"],
+            registry=r,
+        )
+        self.listed_count = Counter(
+            "mailweir_listed_messages",
+            "Messages a site sender list decided without scoring, by list (allow, block) and "
+            "action taken; not part of mailweir_messages.",
+            ["list", "action"],
+            registry=r,
+        )
+        self.reloads = Counter(
+            "mailweir_config_reloads",
+            "Configuration reloads (SIGHUP), by result: applied, or refused (the old kept).",
+            ["result"],
             registry=r,
         )
         self.score = Histogram(
@@ -229,6 +247,7 @@ class Metrics:
         )
         self.build_info = Info("mailweir_build", "Version of mailweir and Python.", registry=r)
         self.build_info.info({"version": _version(), "python": platform.python_version()})
+        self.upkeep = UpkeepMetrics(r)  # mailweir_upkeep_*, set by daemon/upkeep.py
         self._verdict_log = _VerdictLogCollector()
         r.register(self._verdict_log)
         self._zero_known_series()
@@ -239,6 +258,11 @@ class Metrics:
                 self.messages.labels(band, action)
         for kind in NEXT_HOP_FAILURE_KINDS:
             self.next_hop_failures.labels(kind)
+        for name in SENDER_LISTS:
+            for action in ACTIONS:
+                self.listed_count.labels(name, action)
+        for result in RELOAD_RESULTS:
+            self.reloads.labels(result)
         for kind in FEEDBACK_KINDS:
             self.feedback_count.labels(kind)
         for reason in REFUSAL_REASONS:
@@ -257,6 +281,13 @@ class Metrics:
         self.messages.labels(band, action).inc()
         if score is not None:
             self.score.observe(score)
+
+    def listed(self, sender_list: str, action: str) -> None:
+        """Count one message a sender list decided (``allow`` or ``block``)."""
+        self.listed_count.labels(sender_list, action).inc()
+
+    def config_reload(self, applied: bool) -> None:
+        self.reloads.labels("applied" if applied else "refused").inc()
 
     def next_hop_failure(self, kind: str) -> None:
         self.next_hop_failures.labels(kind).inc()

@@ -28,6 +28,7 @@ from pathlib import Path
 from typing import Any
 
 from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource, validate
+from mailweir.daemon.digest import DigestSchedule
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
 from mailweir.daemon.http_side import FeedbackHandler
@@ -35,7 +36,9 @@ from mailweir.daemon.judge import Judge, make_executor
 from mailweir.daemon.log_setup import configure_logging
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import Observing
+from mailweir.daemon.quarantine import Quarantine, QuarantineCollector
 from mailweir.daemon.settings import HostPort, Settings
+from mailweir.daemon.upkeep import Upkeep
 from mailweir.daemon.verdict_log import VerdictLog
 
 log = logging.getLogger("mailweir.service")
@@ -53,6 +56,10 @@ class Service:
         self.store: Any = None
         self.judge: Judge | None = None
         self.verdict_log: VerdictLog | None = None
+        self.upkeep: Upkeep | None = None
+        self.quarantine: Quarantine | None = None
+        self.digests: DigestSchedule | None = None
+        self._quarantine_collector: QuarantineCollector | None = None
         self.handler: Any = None
         self.metrics: Metrics = Metrics()
         self.feedback: FeedbackHandler | None = None  # the intake, when configured
@@ -76,6 +83,7 @@ class Service:
                 lambda: bool(self.smtp_server and self.smtp_server.is_serving()),
                 self.feedback,
             )
+            self.observing.http.quarantine = self.quarantine
             await self.observing.start()
         except BaseException:
             if self.smtp_server is not None:
@@ -149,6 +157,7 @@ class Service:
                 validate(settings)
         except ConfigError as exc:
             log.error("reload refused, keeping the running configuration: %s", exc)
+            self.metrics.config_reload(applied=False)
             return False
         changed = _restart_only_changes(self.settings, settings)
         if changed:
@@ -172,6 +181,17 @@ class Service:
             policy.spam_action,
             policy.mode,
         )
+        log.info(
+            "reloaded site policy: %d allowed and %d blocked senders, %d allowed and %d blocked "
+            "networks, %d recipient rules, exempt %s",
+            len(policy.allow_senders),
+            len(policy.block_senders),
+            len(policy.allow_networks),
+            len(policy.block_networks),
+            len(policy.recipient),
+            ", ".join(policy.exempt_local_parts) or "none",
+        )
+        self.metrics.config_reload(applied=True)
         return True
 
     def install_signal_handlers(self) -> None:
@@ -227,6 +247,8 @@ class Service:
         )
         await self.verdict_log.start()
         self.metrics.watch_verdict_log(self.verdict_log)
+        self.upkeep = Upkeep(self.store, self.settings.upkeep, self.metrics.upkeep)
+        await self.upkeep.start()
         intake = FeedbackIntake(
             self.store,
             self.settings.feedback,
@@ -235,11 +257,29 @@ class Service:
             verdict_log=self.verdict_log,
         )
         self.feedback = intake
+        self._open_quarantine(intake)
         self.handler = _make_handler(
-            self.settings, self.judge, self.verdict_log, self.metrics, intake
+            self.settings, self.judge, self.verdict_log, self.metrics, intake, self.quarantine
         )
 
+    def _open_quarantine(self, intake: FeedbackIntake) -> None:
+        """Held copies of rerouted mail, their release by feedback, metrics and the digest."""
+        self.quarantine = Quarantine(self.settings)
+        intake.release_wanted = self.quarantine.release_wanted
+        if self._quarantine_collector is None:
+            self._quarantine_collector = QuarantineCollector(self.quarantine)
+            self.metrics.registry.register(self._quarantine_collector)
+        self._quarantine_collector.quarantine = self.quarantine
+        self.digests = DigestSchedule(self.quarantine, time.time)
+        self.digests.start()
+
     async def _close_parts(self) -> None:
+        if self.digests is not None:
+            await self.digests.stop()
+            self.digests = None
+        if self.upkeep is not None:
+            await self.upkeep.stop()  # before the store closes under a task's thread
+            self.upkeep = None
         if self.verdict_log is not None:
             await self.verdict_log.close()
             self.verdict_log = None
@@ -276,11 +316,13 @@ def _make_handler(
     verdict_log: VerdictLog,
     metrics: Metrics,
     intake: FeedbackIntake,
+    quarantine: Quarantine | None = None,
 ) -> Any:
     """The SMTP handler: feedback transactions answered by the gate, the rest filtered."""
     from mailweir.daemon.smtp import FilterHandler
 
     filtering = FilterHandler(settings, judge, verdict_log, metrics=metrics)
+    filtering.holding = quarantine
     return TransactionWatch(FeedbackGate(filtering, intake))
 
 

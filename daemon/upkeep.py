@@ -1,0 +1,267 @@
+"""Model upkeep inside the daemon, and ``mailweir upkeep`` to run it by hand.
+
+Three tasks, each on its own interval (``[upkeep]`` settings; 0 switches a task off):
+
+* ``prune``: rare tokens not seen for a while (:meth:`ModelStore.prune`);
+* ``trim``: verdict rows older than ``upkeep.verdict_keep_days``;
+* ``tidy``: SQLite's WAL checkpoint and ``PRAGMA optimize`` (nothing on PostgreSQL).
+
+One asyncio task, started by the Service, sleeps until the next task is due and runs it in a
+worker thread, so mail keeps flowing; the store's own locking keeps the writes apart.  Each
+run is stamped in the database: after a restart a task runs when it is due by the stamp (but
+not in the first minute, which belongs to getting mail moving again).  Every run shows in the
+metrics, and a failed one is logged, counted and tried again after at most an hour.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import contextlib
+import logging
+import os
+import sys
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any, Final
+
+from prometheus_client import CollectorRegistry, Counter, Gauge
+
+from mailweir.daemon.command_args import json_argument, print_report
+from mailweir.daemon.config import CONFIG_PATH_ENV, load_settings
+from mailweir.daemon.errors import ConfigError
+from mailweir.daemon.settings import UpkeepSettings
+from mailweir.store import maintenance
+
+log = logging.getLogger("mailweir.upkeep")
+
+TASKS: Final = ("prune", "trim", "tidy")
+DAY: Final = 86400.0
+FIRST_DELAY: Final = 60.0  # seconds after start before an overdue task runs
+RETRY_AFTER: Final = 3600.0  # most seconds before a failed task is tried again
+
+
+class UpkeepMetrics:
+    """``mailweir_upkeep_*``, labelled by task; every task's series exists from the start."""
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self.last_run = Gauge(
+            "mailweir_upkeep_last_run_timestamp_seconds",
+            "Unix time the upkeep task last finished without error (0: not yet; read from the "
+            "database's stamp at start).",
+            ["task"],
+            registry=registry,
+        )
+        self.duration = Gauge(
+            "mailweir_upkeep_duration_seconds",
+            "How long the upkeep task's last run took, successful or not.",
+            ["task"],
+            registry=registry,
+        )
+        self.removed = Counter(
+            "mailweir_upkeep_removed_rows",
+            "Rows the upkeep task deleted (prune: tokens, trim: verdict rows).",
+            ["task"],
+            registry=registry,
+        )
+        self.failures = Counter(
+            "mailweir_upkeep_failures",
+            "Upkeep runs that failed (logged; tried again after at most an hour).",
+            ["task"],
+            registry=registry,
+        )
+        for task in TASKS:
+            for metric in (self.last_run, self.duration, self.removed, self.failures):
+                metric.labels(task)
+
+
+@dataclass(frozen=True)
+class TaskResult:
+    task: str
+    ok: bool
+    removed: int
+    seconds: float
+    detail: str
+
+
+def run_task(
+    store: Any, settings: UpkeepSettings, task: str, now: float | None = None
+) -> TaskResult:
+    """Run one task to the end (blocking: call it in a worker thread) and stamp it.  A failure
+    becomes a result with ``ok=False``; its traceback is logged here."""
+    now = time.time() if now is None else now
+    started = time.monotonic()
+    try:
+        removed, detail = _do(store, settings, task, now)
+        maintenance.stamp(store, task, time.time())
+    except Exception as exc:
+        log.exception("upkeep %s failed", task)
+        return TaskResult(task, False, 0, time.monotonic() - started, f"failed: {exc}")
+    return TaskResult(task, True, removed, time.monotonic() - started, detail)
+
+
+def _do(store: Any, settings: UpkeepSettings, task: str, now: float) -> tuple[int, str]:
+    if task == "prune":
+        removed = store.prune(
+            max_count=settings.prune_max_count, unseen_days=settings.prune_unseen_days
+        )
+        return removed, (
+            f"{removed} tokens seen in at most {settings.prune_max_count} messages and in none "
+            f"for {settings.prune_unseen_days} days"
+        )
+    if task == "trim":
+        removed = maintenance.trim_verdicts(store, now - settings.verdict_keep_days * DAY)
+        return removed, f"{removed} verdict rows older than {settings.verdict_keep_days} days"
+    if task == "tidy":
+        done = maintenance.tidy(store)
+        if not done.done:
+            return 0, f"{done.backend}: skipped, {done.note}"
+        busy = "; a reader kept it from finishing" if done.busy else ""
+        return 0, f"sqlite: WAL checkpoint ({done.wal_bytes} bytes) and optimize{busy}"
+    raise ValueError(f"unknown upkeep task {task!r}; expected one of {', '.join(TASKS)}")
+
+
+def intervals(settings: UpkeepSettings) -> dict[str, float]:
+    """Seconds between runs of each task that is switched on."""
+    hours = {
+        "prune": settings.prune_every_hours,
+        "trim": settings.trim_every_hours,
+        "tidy": settings.tidy_every_hours,
+    }
+    return {task: h * 3600.0 for task, h in hours.items() if h > 0}
+
+
+class Upkeep:
+    """The daemon's scheduled upkeep: one asyncio task, the work in worker threads."""
+
+    def __init__(
+        self,
+        store: Any,
+        settings: UpkeepSettings,
+        metrics: UpkeepMetrics | None = None,
+        *,
+        first_delay: float | None = None,
+    ) -> None:
+        """``first_delay``: seconds after start before an overdue task runs (FIRST_DELAY)."""
+        self._store = store
+        self._settings = settings
+        self._metrics = metrics
+        self._first_delay = FIRST_DELAY if first_delay is None else first_delay
+        self._task: asyncio.Task[None] | None = None
+        self._working: asyncio.Future[TaskResult] | None = None
+        self.runs: list[TaskResult] = []  # the latest runs, newest last (tests, status)
+
+    async def start(self) -> None:
+        every = intervals(self._settings)
+        if self._task is not None or not every:
+            return
+        stamps = await asyncio.to_thread(self._read_stamps)
+        now, soonest = time.time(), time.time() + self._first_delay
+        due = {}
+        for task, seconds in every.items():
+            last = stamps.get(task)
+            if last is not None and self._metrics is not None:
+                self._metrics.last_run.labels(task).set(last)
+            due[task] = max(soonest, (last + seconds) if last is not None else now)
+        self._task = asyncio.create_task(self._run(due, every), name="mailweir-upkeep")
+
+    async def stop(self) -> None:
+        """Stop the schedule; a task already running in its thread is let finish."""
+        if self._task is not None:
+            self._task.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await self._task
+            self._task = None
+        if self._working is not None:
+            with contextlib.suppress(Exception):
+                await self._working
+            self._working = None
+
+    async def run(self, task: str) -> TaskResult:
+        """Run one task now, in a worker thread, and count it in the metrics."""
+        work = asyncio.ensure_future(asyncio.to_thread(run_task, self._store, self._settings, task))
+        self._working = work
+        result = await asyncio.shield(work)  # a stop() waits for the thread instead
+        self._working = None
+        self._account(result)
+        return result
+
+    def _read_stamps(self) -> dict[str, float]:
+        stamps = {task: maintenance.last_run(self._store, task) for task in TASKS}
+        return {task: at for task, at in stamps.items() if at is not None}
+
+    def _account(self, result: TaskResult) -> None:
+        self.runs = [*self.runs[-99:], result]
+        if result.ok:
+            log.info("upkeep %s: %s in %.2f s", result.task, result.detail, result.seconds)
+        if self._metrics is None:
+            return
+        m = self._metrics
+        m.duration.labels(result.task).set(result.seconds)
+        if result.ok:
+            m.last_run.labels(result.task).set(time.time())
+            m.removed.labels(result.task).inc(result.removed)
+        else:
+            m.failures.labels(result.task).inc()
+
+    async def _run(self, due: dict[str, float], every: dict[str, float]) -> None:
+        while True:
+            await asyncio.sleep(max(0.0, min(due.values()) - time.time()))
+            for task in TASKS:
+                if task in due and due[task] <= time.time():
+                    result = await self.run(task)
+                    wait = every[task] if result.ok else min(every[task], RETRY_AFTER)
+                    due[task] = time.time() + wait
+
+
+# -- `mailweir upkeep` ----------------------------------------------------------------------
+
+
+def add_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = sub.add_parser(
+        "upkeep",
+        help="run the daemon's upkeep tasks once, now",
+        description="Prune rare tokens, trim old verdict rows and tidy the database (SQLite: "
+        "WAL checkpoint and optimize), as the daemon does on its schedule, with the [upkeep] "
+        "settings of the configuration file.  Safe while the daemon runs.",
+    )
+    parser.add_argument(
+        "--config",
+        type=Path,
+        default=os.environ.get(CONFIG_PATH_ENV) or None,
+        help=f"TOML configuration file (default: ${CONFIG_PATH_ENV}; none: built-in defaults)",
+    )
+    parser.add_argument("--db", metavar="URL_OR_PATH", help="database (default: the config's)")
+    parser.add_argument(
+        "--task", action="append", choices=TASKS, help="run only this task (repeatable)"
+    )
+    json_argument(parser)
+    parser.set_defaults(handler=upkeep_command)
+
+
+def upkeep_command(args: argparse.Namespace) -> int:
+    """0 when every task ran, 1 when one failed, 2 for a bad configuration."""
+    from mailweir.store import ModelStore, StoreError
+
+    flags = {"model.database": args.db} if args.db else {}
+    try:
+        settings = load_settings(args.config, dict(os.environ), flags, {"model.database": "--db"})
+    except ConfigError as exc:
+        print(f"mailweir: configuration error: {exc}", file=sys.stderr)
+        return 2
+    try:
+        store = ModelStore.open(settings.database, create=False)
+    except StoreError as exc:
+        print(f"mailweir: cannot open {settings.database}: {exc}", file=sys.stderr)
+        return 1
+    try:
+        results = [run_task(store, settings.upkeep, task) for task in args.task or TASKS]
+    finally:
+        store.close()
+    report = {"database": settings.database, "tasks": [asdict(r) for r in results]}
+    lines = [
+        f"{r.task}: {'ok' if r.ok else 'FAILED'}, {r.detail} ({r.seconds:.2f} s)" for r in results
+    ]
+    print_report(args, report, lines)
+    return 0 if all(r.ok for r in results) else 1

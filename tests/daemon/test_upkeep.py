@@ -1,0 +1,198 @@
+"""Scheduled upkeep (daemon/upkeep.py) and `mailweir upkeep`, on SQLite and PostgreSQL."""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+import json
+import os
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from prometheus_client import CollectorRegistry
+from smtp_helpers import LOCAL, NextHop, daemon_settings
+from sqlalchemy import create_engine, inspect, text
+
+from mailweir.daemon import cli, upkeep
+from mailweir.daemon.service import Service
+from mailweir.daemon.settings import HostPort, HttpSettings, ModelSettings, UpkeepSettings
+from mailweir.model.types import HAM, SPAM
+from mailweir.store import ModelStore, VerdictRecord, maintenance
+
+POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
+DAY = 86400.0
+
+
+def _drop_weir_tables(url: str) -> None:
+    engine = create_engine(url)
+    with engine.begin() as conn:
+        for name in inspect(conn).get_table_names():
+            if name.startswith("weir_"):
+                conn.execute(text(f'DROP TABLE "{name}" CASCADE'))
+    engine.dispose()
+
+
+@pytest.fixture(
+    params=[
+        "sqlite",
+        pytest.param(
+            "postgresql",
+            marks=[
+                pytest.mark.postgres,
+                pytest.mark.skipif(
+                    not os.environ.get(POSTGRES_ENV), reason=f"{POSTGRES_ENV} unset"
+                ),
+            ],
+        ),
+    ]
+)
+def store(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[ModelStore]:
+    if request.param == "sqlite":
+        url = str(tmp_path / "model.sqlite3")
+    else:
+        url = os.environ[POSTGRES_ENV]
+        _drop_weir_tables(url)
+    opened = ModelStore.open(url)
+    yield opened
+    opened.close()
+
+
+def _age_tokens(store: ModelStore, hashes: list[int], days: int) -> None:
+    """Pretend these tokens were last trained ``days`` ago."""
+    with store.engine.begin() as conn:
+        conn.execute(
+            text("UPDATE weir_token SET last_seen = last_seen - :d WHERE hash = :h"),
+            [{"d": days, "h": h} for h in hashes],
+        )
+
+
+def _tokens(store: ModelStore) -> list[int]:
+    with store.engine.connect() as conn:
+        return [r[0] for r in conn.execute(text("SELECT hash FROM weir_token ORDER BY hash"))]
+
+
+def test_upkeep_prune_removes_rare_stale_tokens_only(store: ModelStore) -> None:
+    # 11 and 12 are in one message each; 21 in two; 31 in one but recently seen.
+    store.train(np.array([11, 21], dtype=np.int64), HAM, digest=b"a" * 16, source="test")
+    store.train(np.array([12, 21], dtype=np.int64), SPAM, digest=b"b" * 16, source="test")
+    store.train(np.array([31], dtype=np.int64), HAM, digest=b"c" * 16, source="test")
+    _age_tokens(store, [11, 12, 21], 90)
+    _age_tokens(store, [31], 10)
+    result = upkeep.run_task(store, UpkeepSettings(prune_unseen_days=60), "prune")
+    assert result.ok and result.removed == 2
+    assert _tokens(store) == [21, 31]
+    assert store.class_count().tolist() == [2, 1]  # message totals untouched
+    assert maintenance.last_run(store, "prune") is not None
+
+
+def test_upkeep_trim_keeps_verdicts_inside_the_window(store: ModelStore) -> None:
+    now = time.time()
+    records = [
+        VerdictRecord(f"v{age}", now - age * DAY, 1, 100, 0.1, "ham", "pass", None)
+        for age in (1, 399, 401, 800)
+    ]
+    store.record_verdicts(records)
+    result = upkeep.run_task(store, UpkeepSettings(verdict_keep_days=400), "trim", now=now)
+    assert result.ok and result.removed == 2
+    assert store.find_verdict("v399") is not None and store.find_verdict("v401") is None
+
+
+def test_upkeep_tidy_runs_on_both_backends(store: ModelStore) -> None:
+    result = upkeep.run_task(store, UpkeepSettings(), "tidy")
+    assert result.ok and result.removed == 0
+    sqlite = store.engine.dialect.name == "sqlite"
+    assert ("WAL checkpoint" in result.detail) == sqlite
+    assert ("skipped" in result.detail) == (not sqlite)
+
+
+class BrokenStore:
+    def prune(self, **_: Any) -> int:
+        raise RuntimeError("database is locked")
+
+
+async def test_upkeep_failure_is_counted_not_raised() -> None:
+    metrics = upkeep.UpkeepMetrics(CollectorRegistry())
+    runner = upkeep.Upkeep(BrokenStore(), UpkeepSettings(), metrics)
+    result = await runner.run("prune")
+    assert not result.ok and "database is locked" in result.detail
+    assert metrics.failures.labels("prune")._value.get() == 1
+    assert metrics.last_run.labels("prune")._value.get() == 0
+
+
+def test_upkeep_intervals_zero_switches_a_task_off() -> None:
+    every = upkeep.intervals(UpkeepSettings(prune_every_hours=0, tidy_every_hours=0.5))
+    assert every == {"trim": 24 * 3600.0, "tidy": 1800.0}
+
+
+def _sample(service: Service, name: str, task: str) -> float:
+    value = service.metrics.registry.get_sample_value(name, {"task": task})
+    assert value is not None, name
+    return value
+
+
+@pytest.mark.slow
+async def test_upkeep_runs_inside_the_daemon_and_moves_the_metrics(
+    tmp_path: Path, next_hop: NextHop, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    database = tmp_path / "model.sqlite3"
+    seeded = ModelStore.open(str(database))
+    old = time.time() - 500 * DAY
+    seeded.record_verdicts(
+        [VerdictRecord(f"old{n}", old, 1, 100, 0.1, "ham", "pass", None) for n in range(3)]
+    )
+    seeded.close()
+    monkeypatch.setattr(upkeep, "FIRST_DELAY", 0.0)
+    every = 0.5 / 3600  # half a second
+    settings = dataclasses.replace(
+        daemon_settings(next_hop.address),
+        state_dir=tmp_path,
+        model=ModelSettings(database=str(database), scoring_workers=1),
+        http=HttpSettings(listen=HostPort(LOCAL, 0)),
+        upkeep=UpkeepSettings(
+            prune_every_hours=every, trim_every_hours=every, tidy_every_hours=every
+        ),
+    )
+    service = Service(settings)
+    await service.startup()
+    try:
+        assert service.upkeep is not None
+        for _ in range(400):  # bounded: at most about 20 s on a slow machine
+            if len(service.upkeep.runs) >= 6:
+                break
+            await asyncio.sleep(0.05)
+        tasks = [run.task for run in service.upkeep.runs]
+        assert {"prune", "trim", "tidy"} <= set(tasks) and tasks.count("tidy") >= 2
+        assert all(run.ok for run in service.upkeep.runs)
+        for task in upkeep.TASKS:
+            assert _sample(service, "mailweir_upkeep_last_run_timestamp_seconds", task) > old
+            assert _sample(service, "mailweir_upkeep_failures_total", task) == 0
+        assert _sample(service, "mailweir_upkeep_removed_rows_total", "trim") == 3
+        assert "mailweir_upkeep_duration_seconds" in service.metrics.render().decode()
+    finally:
+        await service.shutdown(grace=5)
+
+
+def test_upkeep_command_runs_every_task(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    database = tmp_path / "model.sqlite3"
+    ModelStore.open(str(database)).close()
+    assert cli.main(["upkeep", "--db", str(database), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert [t["task"] for t in report["tasks"]] == ["prune", "trim", "tidy"]
+    assert all(t["ok"] for t in report["tasks"])
+    assert cli.main(["upkeep", "--db", str(database), "--task", "tidy"]) == 0
+    assert capsys.readouterr().out.startswith("tidy: ok")
+
+
+def test_upkeep_command_bad_config_and_missing_database(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    config = tmp_path / "mailweir.toml"
+    config.write_text("[upkeep]\nverdict_keep_days = 0\n")
+    assert cli.main(["upkeep", "--config", str(config)]) == 2
+    assert "upkeep.verdict_keep_days" in capsys.readouterr().err
+    assert cli.main(["upkeep", "--db", str(tmp_path / "absent.sqlite3")]) == 1
+    assert not (tmp_path / "absent.sqlite3").exists()  # by-hand upkeep never creates one
