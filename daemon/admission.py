@@ -1,0 +1,124 @@
+"""Who gets one more SMTP connection: the total cap, a cap per client, and reserved slots.
+
+A flood of idle connections must not keep the organisation's own mail server out.  Three rules,
+checked when a client connects (before the greeting):
+
+- at most ``smtp.max_connections`` connections in all;
+- clients outside ``smtp.reserved_networks`` share what is left after
+  ``smtp.reserved_connections`` slots are set aside, so outsiders can never fill the cap;
+- each outside client holds at most ``smtp.max_connections_per_client`` of them.  An IPv4
+  client is one address; an IPv6 client is its /64, since one host usually holds a whole /64
+  (common practice, no source).
+
+Clients in the reserved networks (the upstream mail server) have no per-client cap: their
+concurrency is set where they run (Postfix: the process limit in master.cf).
+"""
+
+from __future__ import annotations
+
+import ipaddress
+from collections import Counter
+from collections.abc import Iterable
+
+from mailweir.daemon import replies
+from mailweir.daemon.replies import Reply
+from mailweir.daemon.settings import SmtpSettings
+
+IpNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
+
+# RFC 5321 section 3.8 (421 closes the channel); RFC 3463 section 3.8, X.7.0 "Other or
+# undefined security status": a policy refusal, as for a client over its connection share.
+TOO_MANY_FROM_CLIENT = Reply(421, "4.7.0", "Too many connections from your address, try later")
+# RFC 5321 sections 3.8 and 4.5.3.2 (a server may close on timeout, with 421); RFC 3463
+# section 3.5, X.4.2 "Bad connection" names the time-out case.
+NO_FIRST_COMMAND = Reply(421, "4.4.2", "No command received in time, closing connection")
+
+UNKNOWN_CLIENT = "unknown"  # a peer without an IP address counts as one outside client
+
+
+def _address(host: str | None) -> ipaddress.IPv4Address | ipaddress.IPv6Address | None:
+    """The peer's IP address (an IPv4-mapped IPv6 address as IPv4), or None."""
+    if not host:
+        return None
+    try:
+        address = ipaddress.ip_address(host.split("%", 1)[0])  # without an IPv6 zone index
+    except ValueError:
+        return None
+    if isinstance(address, ipaddress.IPv6Address) and address.ipv4_mapped is not None:
+        return address.ipv4_mapped
+    return address
+
+
+def client_key(host: str | None) -> str:
+    """The identity the per-client cap counts: the address, or an IPv6 address's /64."""
+    address = _address(host)
+    if address is None:
+        return UNKNOWN_CLIENT
+    if isinstance(address, ipaddress.IPv6Address):
+        return str(ipaddress.IPv6Network((address, 64), strict=False))
+    return str(address)
+
+
+class Admission:
+    """Counts open connections of outside clients and decides whether one more is served."""
+
+    def __init__(
+        self,
+        limit: int,
+        *,
+        per_client: int | None = None,
+        reserved_networks: Iterable[str] = (),
+        reserved_connections: int = 0,
+    ) -> None:
+        self.limit = limit
+        self.per_client = per_client  # None: no cap per client
+        self.reserved_networks: tuple[IpNetwork, ...] = tuple(
+            ipaddress.ip_network(network) for network in reserved_networks
+        )
+        self.outside_limit = max(limit - reserved_connections, 0)
+        self.by_client: Counter[str] = Counter()  # open connections per outside client
+
+    @classmethod
+    def from_settings(cls, smtp: SmtpSettings) -> Admission:
+        return cls(
+            smtp.max_connections,
+            per_client=smtp.max_connections_per_client,
+            reserved_networks=smtp.reserved_networks,
+            reserved_connections=smtp.reserved_connections,
+        )
+
+    @property
+    def outside(self) -> int:
+        return self.by_client.total()
+
+    def admit(self, host: str | None, open_now: int) -> Reply | None:
+        """Count one more connection from ``host`` and return None, or return the refusal.
+
+        ``open_now``: the connections open before this one.  Every admitted connection is
+        given back with :meth:`release` and the same ``host``."""
+        if open_now >= self.limit:
+            return replies.TOO_MANY_CONNECTIONS
+        key = self._outside_key(host)
+        if key is None:
+            return None
+        if self.per_client is not None and self.by_client[key] >= self.per_client:
+            return TOO_MANY_FROM_CLIENT
+        if self.outside >= self.outside_limit:
+            return replies.TOO_MANY_CONNECTIONS
+        self.by_client[key] += 1
+        return None
+
+    def release(self, host: str | None) -> None:
+        key = self._outside_key(host)
+        if key is None:
+            return
+        self.by_client[key] -= 1
+        if self.by_client[key] <= 0:
+            del self.by_client[key]
+
+    def _outside_key(self, host: str | None) -> str | None:
+        """None for a client in the reserved networks, else its :func:`client_key`."""
+        address = _address(host)
+        if address is not None and any(address in net for net in self.reserved_networks):
+            return None
+        return client_key(host)
