@@ -84,6 +84,41 @@ def load_settings(
     return settings
 
 
+def find_problems(
+    path: Path | None = None,
+    env: Mapping[str, str] | None = None,
+    flags: Mapping[str, str] | None = None,
+    limit: int = 100,
+) -> list[ConfigError]:
+    """Every problem of a configuration, not just the first (``mailweir check``).
+
+    Loads as :func:`load_settings` does; after each problem the key at fault is dropped (it
+    falls back to its default) and loading starts again.  A problem whose key cannot be dropped
+    (an unreadable file, a key missing from a pair) ends the search.
+    """
+    env = os.environ if env is None else env
+    try:
+        values = _read_file(Path(path)) if path is not None else {}
+    except ConfigError as exc:
+        return [exc]
+    values.update(_read_env(env))
+    for key, text in (flags or {}).items():
+        values[key] = (text, f"command-line flag for {key}")
+    problems: list[ConfigError] = []
+    while len(problems) < limit:
+        try:
+            validate(_build(values, env))
+            break
+        except ConfigError as exc:
+            problem = exc
+            if exc.key in values and "(from " not in exc.reason:
+                problem = ConfigError(exc.key, f"{exc.reason} (from {values[exc.key][1]})")
+            problems.append(problem)
+            if values.pop(exc.key, None) is None:
+                break
+    return problems
+
+
 def env_name(key: str) -> str:
     """The environment variable that overrides a dotted key."""
     return ENV_PREFIX + key.replace(".", "_").upper()
@@ -199,6 +234,7 @@ def _coerce(key: str, raw: Any, hint: Any, origin: str) -> Any:
         if raw == "":  # the one way to say "none" in TOML and in the environment alike
             return None
         (hint,) = [a for a in args if a is not type(None)]
+        args = typing.get_args(hint)  # of what is left: an optional Literal's choices
     if typing.get_origin(hint) is Literal:
         if raw not in args:
             raise bad("one of " + ", ".join(repr(a) for a in args))
