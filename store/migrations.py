@@ -15,7 +15,23 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 
-from sqlalchemy import Connection, Engine, insert, inspect, select, text
+from sqlalchemy import (
+    BigInteger,
+    Column,
+    Connection,
+    Engine,
+    Float,
+    Index,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Table,
+    insert,
+    inspect,
+    select,
+    text,
+)
 
 from mailweir.store import schema
 from mailweir.store.errors import SchemaTooNew, StoreUnavailable
@@ -26,16 +42,32 @@ Migration = tuple[str, Callable[[Connection], None]]
 _PG_LOCK_KEY = 0x77656972
 
 
+# weir_verdict as 0001 created it; schema.verdict has grown since (0002).
+_VERDICT_0001 = Table(
+    "weir_verdict",
+    MetaData(),
+    Column("tracking_id", String(64), primary_key=True),
+    Column("received_at", Float, nullable=False),
+    Column("recipients", Integer, nullable=False),
+    Column("size", BigInteger, nullable=False),
+    Column("score", Float, nullable=True),
+    Column("band", String(16), nullable=False),
+    Column("action", String(16), nullable=False),
+    Column("token_hashes", LargeBinary, nullable=True),
+    Index("weir_verdict_received_at", "received_at"),
+)
+
+
 def _initial(conn: Connection) -> None:
     tables = [
         schema.token,
         schema.class_total,
         schema.ledger,
         schema.meta,
-        schema.verdict,
         schema.feedback,
     ]
     schema.metadata.create_all(conn, tables=tables)
+    _VERDICT_0001.create(conn)
     conn.execute(
         insert(schema.class_total),
         [{"label": label, "messages": 0, "revision": 0} for label in (0, 1)],
@@ -43,7 +75,15 @@ def _initial(conn: Connection) -> None:
     conn.execute(insert(schema.meta).values(key="created", value=f"{time.time():.0f}"))
 
 
-MIGRATIONS: tuple[Migration, ...] = (("0001_initial", _initial),)
+def _verdict_sender_list(conn: Connection) -> None:
+    """Which sender list decided a message (site policy); NULL for every older row."""
+    conn.execute(text("ALTER TABLE weir_verdict ADD COLUMN sender_list VARCHAR(8)"))
+
+
+MIGRATIONS: tuple[Migration, ...] = (
+    ("0001_initial", _initial),
+    ("0002_verdict_sender_list", _verdict_sender_list),
+)
 
 
 def _lock(conn: Connection) -> None:

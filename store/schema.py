@@ -79,6 +79,9 @@ verdict = Table(
     Column("band", String(16), nullable=False),
     Column("action", String(16), nullable=False),
     Column("token_hashes", LargeBinary, nullable=True),  # little-endian int64 array
+    # "allow" or "block" when a sender list decided (band "listed"); NULL when scored.
+    # Added by migration 0002_verdict_sender_list.
+    Column("sender_list", String(8), nullable=True),
     Index("weir_verdict_received_at", "received_at"),
 )
 

@@ -39,6 +39,7 @@ class VerdictRecord:
     band: str
     action: str
     token_hashes: TokenHashes | None
+    sender_list: str | None = None  # "allow" / "block" when a sender list decided (band listed)
 
 
 @dataclass(frozen=True)
@@ -76,6 +77,7 @@ def record_verdicts(conn: Connection, records: Sequence[VerdictRecord]) -> None:
             "band": r.band,
             "action": r.action,
             "token_hashes": pack_hashes(r.token_hashes),
+            "sender_list": r.sender_list,
         }
         for r in records
     ]
@@ -96,6 +98,7 @@ def find_verdict(conn: Connection, tracking_id: str) -> VerdictRecord | None:
         band=row["band"],
         action=row["action"],
         token_hashes=unpack_hashes(row["token_hashes"]),
+        sender_list=row["sender_list"],
     )
 
 
