@@ -1,10 +1,10 @@
 """Judging one message: tokenize, look up counts, score, and place the score in a band.
 
 The pipeline is tokenize (CPU) -> ``store.lookup`` (database) -> ``scorer.score`` (CPU).  None of
-it runs on the event loop: CPU steps go to the executor the service hands in, database calls to
-the loop's default thread pool, and an ``asyncio.Semaphore`` caps how many messages are in the
+it runs on the event loop, and an ``asyncio.Semaphore`` caps how many messages are in the
 pipeline at once (``model.max_concurrent_scoring``) so a burst queues instead of piling up
-memory.
+memory.  A message goes through in as few hops off the loop as it can, since each hop costs
+more than scoring a small message (see "Hops" below).
 
 Pool choice: a process pool (``POOL_KIND``), measured with ``bench/bench_pool.py`` on the
 2-core development machine (Python 3.11, 2 workers, 8 messages in flight, a 10 ms ticker on the
@@ -24,6 +24,15 @@ pathological message's CPU time off the loop entirely.  What the process pool co
 each message to a worker (a memory copy), about 30 MB resident per worker, and a dead worker
 breaking the pool, which :class:`Judge` repairs by replacing it (``executor_factory``).  The
 database lookups stay in threads of the daemon's own process.
+
+Hops: every round trip to a pool costs the loop a submit and a wake-up, and a process pool
+also pickling both ways and the pool's manager thread.  Three hops per message (tokenize in the
+process pool, look up in a thread, score in the process pool) cost 12.3 ms of daemon CPU per
+4 KB message in ``bench/bench_relay.py`` (8 clients, 500,000-token model); one thread hop
+costs 5.0 ms.  So a message shorter than ``INLINE_BELOW`` is judged in one hop on the loop's
+thread pool (tokenize, look up, score, name the evidence), holding the GIL for about a
+millisecond; a longer one is tokenized in the process pool, where its parse time stays off
+the loop's GIL, and then looked up and scored in one thread hop.
 
 ``Judge.judge`` never raises.  Any exception, a locked database included, becomes band
 ``"failed"``; the traceback is logged with the tracking id and the failure counted, and the SMTP
@@ -48,7 +57,7 @@ from typing import Any, Literal
 import numpy as np
 
 from mailweir.daemon.settings import PolicySettings, Settings
-from mailweir.model.hashing import hash_tokens, token_hash
+from mailweir.model.hashing import token_hashes
 from mailweir.model.nb import NaiveBayes, Score, make_scorer
 from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
 from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
@@ -57,6 +66,7 @@ log = logging.getLogger("mailweir.judge")
 
 JudgedBand = Literal["ham", "suspect", "spam", "unjudged", "failed"]
 POOL_KIND: Literal["thread", "process"] = "process"  # see the module docstring
+INLINE_BELOW = 64 * 1024  # bytes; smaller messages skip the process pool (module docstring)
 N_EVIDENCE = 4  # tokens listed each way, for the header and the log
 META_TOKENIZER = "tokenizer"
 META_METHOD = "method"
@@ -103,9 +113,12 @@ def band_for(probability: float, policy: PolicySettings) -> Literal["ham", "susp
 def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, list[str]]:
     """Return the message's unique sorted hashes and one token text per hash (same order)."""
     words = tokens(raw, options)
-    hashes = hash_tokens(words)
-    by_hash = {token_hash(word): word for word in set(words)}
-    return hashes, [by_hash[int(h)] for h in hashes]
+    aligned = token_hashes(words)  # each word hashed once, through the digest cache
+    order = np.argsort(aligned, kind="stable")
+    ordered = aligned[order]
+    first = np.ones(len(ordered), dtype=np.bool_)  # the first word of each hash keeps it
+    np.not_equal(ordered[1:], ordered[:-1], out=first[1:])
+    return ordered[first], [words[i] for i in order[first].tolist()]
 
 
 def score_step(
@@ -138,6 +151,15 @@ class _ModelView:
     vocabulary: Vocabulary | None
 
 
+@dataclass(frozen=True)
+class _Steps:
+    hashes: TokenHashes
+    score: Score | None  # None when the cold-start guard holds
+    evidence: tuple[tuple[str, float], ...]
+    parse_seconds: float
+    score_seconds: float
+
+
 class Judge:
     """Scores messages for the SMTP handler; safe to share across every connection."""
 
@@ -149,11 +171,14 @@ class Judge:
         *,
         executor_factory: Callable[[], concurrent.futures.Executor] | None = None,
         metrics: Any = None,
+        inline_below: int = 0,
     ) -> None:
         """``executor`` runs the CPU steps (None: the loop's default thread pool).  With
         ``executor_factory`` the judge makes its own and replaces it when it breaks (a process
-        pool whose worker died fails every later call otherwise)."""
+        pool whose worker died fails every later call otherwise).  Messages shorter than
+        ``inline_below`` bytes skip a process pool (see ``INLINE_BELOW``)."""
         self._store = store
+        self._inline_below = inline_below
         self._metrics = metrics  # daemon.metrics.Metrics: parsing and scoring time
         if executor is None and executor_factory is not None:
             executor = executor_factory()
@@ -208,24 +233,46 @@ class Judge:
         executor: concurrent.futures.Executor | None,
     ) -> Judgement:
         loop = asyncio.get_running_loop()
-        started = time.perf_counter()
-        hashes, texts = await loop.run_in_executor(executor, tokenize_step, raw, self.options)
-        parsed = time.perf_counter()
-        view = await asyncio.to_thread(self._read_model, hashes, policy.min_trained)
-        if view.counts is None or view.vocabulary is None:
-            return Judgement(tracking_id, "unjudged", None, (), hashes)
-        score = await loop.run_in_executor(
-            executor,
-            functools.partial(
-                score_step, self.scorer, hashes, view.counts, view.class_count, view.vocabulary
-            ),
-        )
+        work = functools.partial(self._judge_here, raw, policy.min_trained)
+        if isinstance(executor, concurrent.futures.ProcessPoolExecutor):
+            if len(raw) >= self._inline_below:
+                started = time.perf_counter()
+                hashes, texts = await loop.run_in_executor(
+                    executor, tokenize_step, raw, self.options
+                )
+                parsing = time.perf_counter() - started
+                work = functools.partial(
+                    self._score_here, hashes, texts, policy.min_trained, parsing
+                )
+            executor = None  # looking up and scoring stay in this process (its thread pool)
+        steps = await loop.run_in_executor(executor, work)
+        if steps.score is None:
+            return Judgement(tracking_id, "unjudged", None, (), steps.hashes)
         if self._metrics is not None:
-            self._metrics.parsing_seconds.observe(parsed - started)
-            self._metrics.scoring_seconds.observe(time.perf_counter() - parsed)
-        probability = float(score.spam_probability)
+            self._metrics.parsing_seconds.observe(steps.parse_seconds)
+            self._metrics.scoring_seconds.observe(steps.score_seconds)
+        probability = float(steps.score.spam_probability)
+        band = band_for(probability, policy)
+        return Judgement(tracking_id, band, probability, steps.evidence, steps.hashes)
+
+    def _judge_here(self, raw: bytes, min_trained: int) -> _Steps:
+        """Every step in the calling worker thread: one hop from the loop, nothing pickled."""
+        started = time.perf_counter()
+        hashes, texts = tokenize_step(raw, self.options)
+        return self._score_here(hashes, texts, min_trained, time.perf_counter() - started)
+
+    def _score_here(
+        self, hashes: TokenHashes, texts: list[str], min_trained: int, parse_seconds: float
+    ) -> _Steps:
+        """Look up and score in the calling worker thread (None score: the guard holds)."""
+        started = time.perf_counter()
+        view = self._read_model(hashes, min_trained)
+        if view.counts is None or view.vocabulary is None:
+            return _Steps(hashes, None, (), parse_seconds, 0.0)
+        score = score_step(self.scorer, hashes, view.counts, view.class_count, view.vocabulary)
+        seconds = time.perf_counter() - started
         evidence = _evidence_text(score, hashes, texts)
-        return Judgement(tracking_id, band_for(probability, policy), probability, evidence, hashes)
+        return _Steps(hashes, score, evidence, parse_seconds, seconds)
 
     def _read_model(self, hashes: TokenHashes, min_trained: int) -> _ModelView:
         """Database step (worker thread): class totals, and counts unless the guard holds."""

@@ -32,7 +32,7 @@ from mailweir.daemon.digest import DigestSchedule
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
 from mailweir.daemon.http_side import FeedbackHandler
-from mailweir.daemon.judge import Judge, make_executor
+from mailweir.daemon.judge import INLINE_BELOW, Judge, make_executor
 from mailweir.daemon.log_setup import configure_logging
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import Observing
@@ -239,6 +239,7 @@ class Service:
             self.settings,
             executor_factory=functools.partial(make_executor, model.scoring_workers),
             metrics=self.metrics,
+            inline_below=INLINE_BELOW,
         )
         self.verdict_log = VerdictLog(
             self.store,

@@ -56,6 +56,22 @@ def hash_tokens(tokens: Iterable[str]) -> TokenHashes:
     TokenHashes, shape (n,)
         ``np.int64`` hashes (``token_hash`` of each token), unique and sorted ascending.
     """
+    return _sorted_unique(token_hashes(tokens))
+
+
+def token_hashes(tokens: Iterable[str]) -> TokenHashes:
+    """Hash tokens one for one, in their order (``token_hash`` of each, through the cache).
+
+    Parameters
+    ----------
+    tokens : iterable of str
+        Token strings.
+
+    Returns
+    -------
+    TokenHashes, shape (n,)
+        ``np.int64`` hash of each token, aligned with ``tokens`` (repeats kept, not sorted).
+    """
     tokens = list(tokens)
     digests = list(map(_digest_cache.get, tokens))
     if None in digests:
@@ -65,8 +81,7 @@ def hash_tokens(tokens: Iterable[str]) -> TokenHashes:
             if digest is None:
                 digests[index] = _digest_cache[tokens[index]] = _digest8(tokens[index])
     joined = b"".join(digests)  # type: ignore[arg-type]  # no None left
-    hashes = np.frombuffer(joined, dtype="<i8").astype(np.int64)
-    return _sorted_unique(hashes)
+    return np.frombuffer(joined, dtype="<i8").astype(np.int64)
 
 
 def _sorted_unique(values: TokenHashes) -> TokenHashes:
