@@ -30,11 +30,12 @@ import binascii
 import collections
 import concurrent.futures
 import contextlib
+import dataclasses
 import functools
 import ipaddress
 import logging
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Awaitable, Callable, Sequence
 from typing import Any, Final, Protocol
 
 import numpy as np
@@ -93,6 +94,9 @@ TOO_BIG = Reply(552, "5.3.4", "Feedback message too big")
 NO_ORIGINAL = Reply(
     554, "5.6.0", "No misfiled message found: forward it as an attachment, or redirect it"
 )
+# 550 "rejected for policy reasons" (RFC 5321 section 4.2.3), X.7.1 (RFC 3463 section 3.8):
+# a sender list of the site policy decided the message, so the model has nothing to learn.
+LISTED = Reply(550, "5.7.1", "Not trained: the site's sender list decided it; ask the mail admin")
 # 451 and X.3.0 (RFC 3463 section 3.4): the store failed; the mail server retries, and the
 # ledger makes the retry harmless for whatever was already stored.
 NOT_STORED = Reply(451, "4.3.0", "Correction not stored, try again later")
@@ -194,6 +198,11 @@ class RateLimit:
 class FeedbackIntake:
     """Turns corrections into training, ledger moves, feedback-log rows and metrics."""
 
+    # After an accepted "ham" correction with a known tracking id: release that message's held
+    # copy, if the quarantine has one (daemon/quarantine.py's ``release_wanted``; the service
+    # sets it).  Returns a sentence for the reply, or None when nothing was held.
+    release_wanted: Callable[[str], Awaitable[str | None]] | None = None
+
     def __init__(
         self,
         store: Any,
@@ -233,11 +242,30 @@ class FeedbackIntake:
 
         A tracking id given in the request is taken as is (the HTTP side's caller holds the
         token); one read from the message is checked against the message."""
-        return await self._correct(request, check_id=request.tracking_id is None)
+        outcome = await self._correct(request, check_id=request.tracking_id is None)
+        note = await self._release_if_wanted(request, outcome)
+        return dataclasses.replace(outcome, detail=f"{outcome.detail}; {note}") if note else outcome
+
+    async def _release_if_wanted(
+        self, request: FeedbackRequest, outcome: FeedbackOutcome
+    ) -> str | None:
+        """Retrain and release in one step: a wanted-mail correction frees the held copy."""
+        hook = self.release_wanted
+        if hook is None or request.correction != "ham" or not outcome.accepted:
+            return None
+        # outcome.tracking_id is set only for a verdict found (and, for an id read from the
+        # message, believed): nobody releases another message by writing its id.
+        return await hook(outcome.tracking_id) if outcome.tracking_id else None
 
     @message_scoped  # the lines about this correction carry its tracking id
     async def _correct(self, request: FeedbackRequest, *, check_id: bool) -> FeedbackOutcome:
         verdict, hashes, exact = await self._evidence(request, check_id)
+        if verdict is not None and verdict.sender_list:
+            # The site's sender list decided it, not the model: a correction is for the list.
+            self._refused("listed")
+            detail = f"decided by the {verdict.sender_list} list of the site policy; not trained"
+            log.info("feedback on %s refused: %s", verdict.tracking_id, detail)
+            return FeedbackOutcome(FeedbackStatus.REFUSED, detail, None, verdict.tracking_id)
         if hashes is None or not len(hashes):
             self._refused("no_original")
             detail = (
@@ -390,28 +418,33 @@ class FeedbackIntake:
             return NO_ORIGINAL
         client = sender or "<>"
         outcomes: list[FeedbackOutcome] = []
+        notes: list[str] = []
         try:
             for original in originals:
                 request = FeedbackRequest(
                     corrections[0], "mail", original.tracking_id, original.raw, client
                 )
                 outcomes.append(await self._correct(request, check_id=True))
+                note = await self._release_if_wanted(request, outcomes[-1])
+                notes += [note] if note else []
         except StoreError as exc:
             log.warning("feedback from %s not stored: %s", client, exc)
             return NOT_STORED
-        reply = _summary(outcomes, [o.form for o in originals])
+        reply = _summary(outcomes, [o.form for o in originals], notes)
         log.info("feedback from %s (%s): %s -> %s", client, peer, corrections[0], reply.text)
         return reply
 
 
-def _summary(outcomes: list[FeedbackOutcome], forms: list[str]) -> Reply:
+def _summary(outcomes: list[FeedbackOutcome], forms: list[str], notes: list[str]) -> Reply:
     accepted = [o for o in outcomes if o.accepted]
     if not accepted:
-        return NO_ORIGINAL
+        listed = any(o.status is FeedbackStatus.REFUSED for o in outcomes)
+        return LISTED if listed else NO_ORIGINAL
     counts = collections.Counter(o.status.value for o in accepted)
     parts = ", ".join(f"{n} {status.replace('_', ' ')}" for status, n in sorted(counts.items()))
     ids = ", ".join(o.tracking_id for o in accepted if o.tracking_id) or "no tracking id"
     text = f"Correction stored: {parts} ({'/'.join(sorted(set(forms)))}; {ids})"
+    text += "".join(f"; {note}" for note in notes)
     return Reply(250, "2.0.0", text)
 
 
