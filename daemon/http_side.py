@@ -7,6 +7,10 @@ Paths::
     GET  /healthz   200 while the process runs
     GET  /readyz    200 when every readiness check passes (store reachable, SMTP listening),
                     else 503; the body names each check
+    GET  /quarantine                      held mail (JSON), behind the bearer token
+    POST /quarantine/<id>/release         send a held message to its original recipients,
+                                          behind the bearer token: 200, 404 not held,
+                                          409 released before, 502 next hop refused
     POST /feedback  a correction, behind ``Authorization: Bearer <http.token>``:
                     JSON ``{"tracking_id": "...", "kind": "spam" | "ham"}``, or the message
                     itself as ``Content-Type: message/rfc822`` with ``?kind=spam|ham``
@@ -27,7 +31,7 @@ import json
 import logging
 import re
 from collections.abc import Awaitable, Callable, Mapping
-from typing import Any, Final
+from typing import TYPE_CHECKING, Any, Final
 
 from aiohttp import web
 from aiohttp.typedefs import Handler
@@ -39,8 +43,12 @@ from mailweir.daemon.feedback_types import (
 )
 from mailweir.daemon.metrics import Metrics
 from mailweir.store.errors import StoreBusy, StoreUnavailable
+from mailweir.store.held_mail import HeldMailError
 
 log = logging.getLogger("mailweir.http")
+
+if TYPE_CHECKING:
+    from mailweir.daemon.quarantine import Quarantine
 
 FeedbackHandler = Callable[[FeedbackRequest], Awaitable[FeedbackOutcome]]
 ReadyCheck = Callable[[], Awaitable[bool]]
@@ -62,6 +70,16 @@ STATUS_CODES: Final = {
     FeedbackStatus.NO_ORIGINAL: 404,
     FeedbackStatus.RATE_LIMITED: 429,
     FeedbackStatus.REFUSED: 403,
+}
+
+
+# 404 nothing held under the id; 409 it was released already or a release is under way (a
+# conflict with the resource's state, RFC 9110 section 15.5.10); 502 the next hop refused.
+RELEASE_REFUSALS: Final = {
+    "NotHeld": 404,
+    "AlreadyReleased": 409,
+    "ReleaseUnderway": 409,
+    "ReleaseFailed": 502,
 }
 
 
@@ -114,6 +132,7 @@ class HttpSide:
         self._page = page
         self._ready_checks = dict(ready_checks)
         self._max_body = max_body_bytes
+        self.quarantine: Quarantine | None = None  # the service sets it; None: routes say so
         self.app = web.Application(client_max_size=max_body_bytes, middlewares=[_json_errors])
         self.app.add_routes(
             [
@@ -122,6 +141,8 @@ class HttpSide:
                 web.get("/healthz", self._healthz),
                 web.get("/readyz", self._readyz),
                 web.post("/feedback", self._post_feedback),
+                web.get("/quarantine", self._held_list),
+                web.post("/quarantine/{tracking_id}/release", self._release_held),
             ]
         )
         self._runner: web.AppRunner | None = None
@@ -190,6 +211,32 @@ class HttpSide:
             },
         )
 
+    # -- quarantine ------------------------------------------------------------------------
+
+    async def _held_list(self, request: web.Request) -> web.Response:
+        refusal = self._authorize(request, "the quarantine")
+        if refusal is not None or self.quarantine is None:
+            return refusal or _error(404, "no quarantine on this daemon")
+        envelopes = await asyncio.to_thread(self.quarantine.store.envelopes)
+        return web.json_response({"held": [e.to_json() for e in envelopes]})
+
+    async def _release_held(self, request: web.Request) -> web.Response:
+        refusal = self._authorize(request, "the quarantine")
+        if refusal is not None or self.quarantine is None:
+            return refusal or _error(404, "no quarantine on this daemon")
+        try:
+            done = await self.quarantine.release(request.match_info["tracking_id"], "http")
+        except HeldMailError as exc:
+            return _error(RELEASE_REFUSALS.get(type(exc).__name__, 409), str(exc))
+        body = {
+            "status": "released",
+            "tracking_id": done.tracking_id,
+            "delivered_to": list(done.delivered_to),
+            "refused": list(done.refused),
+            "next_hop_answer": done.next_hop_answer,
+        }
+        return web.json_response(body)
+
     # -- corrections -----------------------------------------------------------------------
 
     async def _post_feedback(self, request: web.Request) -> web.Response:
@@ -224,20 +271,23 @@ class HttpSide:
         }
         return web.json_response(body, status=STATUS_CODES.get(outcome.status, 200))
 
-    def _authorize(self, request: web.Request) -> web.Response | None:
+    def _authorize(self, request: web.Request, what: str = "feedback") -> web.Response | None:
         if not self.token:
-            return _error(403, "feedback over HTTP is closed: http.token is not configured")
+            return _error(403, f"{what} over HTTP is closed: http.token is not configured")
         scheme, _, given = request.headers.get("Authorization", "").partition(" ")
         challenge = 'Bearer realm="mailweir"'
+        counted = what == "feedback"  # refusals of other endpoints are no feedback refused
         if scheme.lower() != "bearer" or not given.strip():
-            self.metrics.feedback_refused("unauthorized")
+            if counted:
+                self.metrics.feedback_refused("unauthorized")
             return _error(
                 401,
                 "missing bearer token (Authorization: Bearer <token>)",
                 {"WWW-Authenticate": challenge},
             )
         if not hmac.compare_digest(given.strip().encode(), self.token.encode()):
-            self.metrics.feedback_refused("unauthorized")
+            if counted:
+                self.metrics.feedback_refused("unauthorized")
             return _error(
                 401,
                 "wrong bearer token",
