@@ -11,7 +11,14 @@ import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from mailweir.daemon import calibrate, exchange_commands, learning
+from mailweir.daemon import (
+    calibrate,
+    check,
+    exchange_commands,
+    learning,
+    quarantine_commands,
+    upkeep,
+)
 from mailweir.daemon.command_args import db_argument, json_argument, print_report
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.sources import SourceError, read_corpus
@@ -345,7 +352,10 @@ def build_parser() -> argparse.ArgumentParser:
     _add_replay_command(sub)
     _add_model_commands(sub)
     exchange_commands.add_commands(sub)
+    quarantine_commands.add_commands(sub)
     calibrate.add_command(sub)
+    upkeep.add_command(sub)
+    check.add_command(sub)
     return parser
 
 
