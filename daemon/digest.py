@@ -20,6 +20,7 @@ import datetime
 import email.policy
 import email.utils
 import logging
+import secrets
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from email.message import EmailMessage
@@ -101,7 +102,9 @@ def _mail(settings: Settings, reader: str, items: list[Listed], now: float) -> D
     message["To"] = reader
     count = f"{len(items)} message{'s' if len(items) != 1 else ''}"
     message["Subject"] = f"Held mail: {count} kept for you in the last day"
-    message["Message-ID"] = email.utils.make_msgid("digest", q.digest_from.rpartition("@")[2])
+    # RFC 5322 section 3.6.4; short enough that the field needs no folding.
+    domain = q.digest_from.rpartition("@")[2]
+    message["Message-ID"] = f"<digest.{int(now)}.{secrets.token_hex(6)}@{domain}>"
     message["Auto-Submitted"] = "auto-generated"  # RFC 3834 section 5: no automatic replies
     message.set_content(_text(settings, items), cte="quoted-printable")
     ids = tuple(item.envelope.tracking_id for item in items)
