@@ -18,10 +18,9 @@ import errno
 import os
 import socket
 from dataclasses import asdict, dataclass
-from pathlib import Path
 
-from mailweir.daemon.command_args import json_argument, print_report
-from mailweir.daemon.config import CONFIG_PATH_ENV, find_problems
+from mailweir.daemon.command_args import config_arguments, json_argument, print_report
+from mailweir.daemon.config import find_problems, load_settings
 from mailweir.daemon.settings import HostPort, Settings
 from mailweir.store.inspection import DatabaseReport, inspect_database
 
@@ -45,13 +44,7 @@ def add_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> Non
         "model stamp, sizes and upkeep.  Exit 0: all well; 1: database problems; 2: "
         "configuration problems.",
     )
-    parser.add_argument(
-        "--config",
-        type=Path,
-        default=os.environ.get(CONFIG_PATH_ENV) or None,
-        help=f"TOML configuration file (default: ${CONFIG_PATH_ENV}; none: built-in defaults)",
-    )
-    parser.add_argument("--db", metavar="URL_OR_PATH", help="database (default: the config's)")
+    config_arguments(parser)
     parser.add_argument(
         "--connect",
         action="store_true",
@@ -73,8 +66,6 @@ def check_command(args: argparse.Namespace) -> int:
         lines += [f"  {p.key}: {p.reason}" for p in problems]
         print_report(args, report, lines)
         return 2
-    from mailweir.daemon.config import load_settings
-
     settings = load_settings(args.config, dict(os.environ), flags)
     database = inspect_database(settings.database)
     reach = asyncio.run(_reachability(settings)) if args.connect else []

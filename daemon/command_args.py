@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+from pathlib import Path
 
 from mailweir.daemon.settings import Settings
 
@@ -18,6 +19,20 @@ def db_argument(parser: argparse.ArgumentParser) -> None:
         default=os.environ.get(DB_ENV, DEFAULT_DB),
         help=f"database URL or SQLite path (default: ${DB_ENV} or {DEFAULT_DB})",
     )
+
+
+def config_arguments(parser: argparse.ArgumentParser) -> None:
+    """``--config`` (the daemon's TOML file) and ``--db`` overriding its database, for the
+    commands that act as the daemon would (``check``, ``upkeep``)."""
+    from mailweir.daemon.config import CONFIG_PATH_ENV  # late: keeps this module light
+
+    parser.add_argument(
+        "--config",
+        type=Path,
+        default=os.environ.get(CONFIG_PATH_ENV) or None,
+        help=f"TOML configuration file (default: ${CONFIG_PATH_ENV}; none: built-in defaults)",
+    )
+    parser.add_argument("--db", metavar="URL_OR_PATH", help="database (default: the config's)")
 
 
 def json_argument(parser: argparse.ArgumentParser) -> None:

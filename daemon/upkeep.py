@@ -23,20 +23,19 @@ import os
 import sys
 import time
 from dataclasses import asdict, dataclass
-from pathlib import Path
 from typing import Any, Final
 
 from prometheus_client import CollectorRegistry, Counter, Gauge
 
-from mailweir.daemon.command_args import json_argument, print_report
-from mailweir.daemon.config import CONFIG_PATH_ENV, load_settings
+from mailweir.daemon.command_args import config_arguments, json_argument, print_report
+from mailweir.daemon.config import load_settings
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.settings import UpkeepSettings
 from mailweir.store import maintenance
 
 log = logging.getLogger("mailweir.upkeep")
 
-TASKS: Final = ("prune", "trim", "tidy")
+TASKS: Final = maintenance.TASKS
 DAY: Final = 86400.0
 FIRST_DELAY: Final = 60.0  # seconds after start before an overdue task runs
 RETRY_AFTER: Final = 3600.0  # most seconds before a failed task is tried again
@@ -226,13 +225,7 @@ def add_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> Non
         "WAL checkpoint and optimize), as the daemon does on its schedule, with the [upkeep] "
         "settings of the configuration file.  Safe while the daemon runs.",
     )
-    parser.add_argument(
-        "--config",
-        type=Path,
-        default=os.environ.get(CONFIG_PATH_ENV) or None,
-        help=f"TOML configuration file (default: ${CONFIG_PATH_ENV}; none: built-in defaults)",
-    )
-    parser.add_argument("--db", metavar="URL_OR_PATH", help="database (default: the config's)")
+    config_arguments(parser)
     parser.add_argument(
         "--task", action="append", choices=TASKS, help="run only this task (repeatable)"
     )

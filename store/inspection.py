@@ -20,8 +20,6 @@ from mailweir.store.engine import target_url
 from mailweir.store.meta import CREATED, METHOD, TOKENIZER, database_bytes, get_meta, row_count
 from mailweir.store.migrations import MIGRATIONS, applied_migrations
 
-TASKS = ("prune", "trim", "tidy")  # daemon/upkeep.py's tasks, whose stamps are shown
-
 
 @dataclass
 class DatabaseReport:
@@ -150,7 +148,7 @@ def _contents(conn: Connection, report: DatabaseReport) -> None:
     ).one()
     report.oldest_verdict, report.newest_verdict = oldest, newest
     report.database_bytes = database_bytes(conn)
-    for task in TASKS:
+    for task in maintenance.TASKS:
         stamp = get_meta(conn, maintenance.STAMP_PREFIX + task)
         report.upkeep_last_run[task] = float(stamp) if stamp else None
     if report.tokens and not report.tokenizer:

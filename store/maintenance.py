@@ -21,6 +21,7 @@ from mailweir.store.errors import store_errors
 if TYPE_CHECKING:
     from mailweir.store.counts import ModelStore
 
+TASKS = ("prune", "trim", "tidy")  # daemon/upkeep.py runs them; each stamps its last run
 TRIM_BATCH = 5000  # verdict rows per delete transaction
 STAMP_PREFIX = "upkeep."  # weir_meta key of a task's last run: "upkeep.<task>"
 

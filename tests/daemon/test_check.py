@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import asyncio
 import json
 import os
+import sqlite3
 from pathlib import Path
 
 import numpy as np
@@ -115,8 +117,6 @@ def test_check_not_a_database_and_missing_file(
 def test_check_sqlite_file_of_another_program(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    import sqlite3
-
     other = tmp_path / "rota.sqlite3"
     with sqlite3.connect(other) as conn:
         conn.execute("CREATE TABLE shifts (day TEXT, vet TEXT)")
@@ -127,8 +127,6 @@ def test_check_sqlite_file_of_another_program(
 async def test_check_connect_greets_the_next_hop(
     tmp_path: Path, next_hop: NextHop, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    import asyncio
-
     database = model(tmp_path / "model.sqlite3")
     config = tmp_path / "mailweir.toml"
     listen = f"127.0.0.1:{free_port()}"

@@ -35,6 +35,7 @@ ALERT_NAMES = {
     "MailweirScoringFailures",
     "MailweirVerdictLogFailing",
     "MailweirReportsStale",
+    "MailweirUpkeepFailing",
 }
 INSTANCE = {"instance": "mx1.harbourlane.example:7180", "job": "mailweir"}
 
@@ -288,6 +289,27 @@ def test_rule_down_verdict_log_and_stale_reports(tmp_path: Path) -> None:
                     fires("MailweirReportsStale", "15m", severity="info", instance=host),
                 ],
             }
+        ],
+    )
+
+
+@needs_promtool
+def test_rule_upkeep_failing_needs_the_retry_to_fail_too(tmp_path: Path) -> None:
+    name, alert = "mailweir_upkeep_failures_total", "MailweirUpkeepFailing"
+    labels = {"severity": "warning", "instance": INSTANCE["instance"], "task": "tidy"}
+    run_rule_tests(
+        tmp_path,
+        [
+            {  # one failure, then the retry an hour later works: no alert
+                "interval": "10m",
+                "input_series": [series(name, "0x6 1x30", task="tidy")],
+                "alert_rule_test": [quiet(alert, "2h")],
+            },
+            {  # failed, and failed again on the retry: fires until the window has passed
+                "interval": "10m",
+                "input_series": [series(name, "0x6 1x6 2x30", task="tidy")],
+                "alert_rule_test": [quiet(alert, "1h30m"), fires(alert, "2h30m", **labels)],
+            },
         ],
     )
 
