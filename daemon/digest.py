@@ -59,7 +59,7 @@ class Listed:
 def subject_of(raw: bytes) -> str:
     """The decoded Subject (RFC 2047) of a held message, shortened; never raises."""
     try:
-        head = raw.split(b"\r\n\r\n", 1)[0][:65536]
+        head = raw[:65536].split(b"\r\n\r\n", 1)[0]
         message = BytesHeaderParser(policy=email.policy.default).parsebytes(head)
         text = " ".join(str(message.get("Subject", "") or "").split())
     except Exception:  # a damaged header must not stop the digest (the stdlib raises odd types)
@@ -76,7 +76,7 @@ def gather(quarantine: Quarantine, now: float, hours: float = 24.0) -> list[List
         if envelope.released or not (since < envelope.held_at <= now):
             continue
         try:
-            subject = subject_of(quarantine.store.raw(envelope.tracking_id))
+            subject = subject_of(quarantine.store.head(envelope.tracking_id))
         except Exception:
             subject = "(held copy unreadable)"
         listed.append(Listed(envelope, subject))

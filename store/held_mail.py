@@ -113,7 +113,7 @@ def check_id(tracking_id: str) -> str:
     return tracking_id
 
 
-def _write_atomically(path: Path, data: bytes) -> None:
+def _write_atomically(path: Path, data: bytes, sync_folder: bool = True) -> None:
     """Write ``data`` to ``path`` through a temporary file, fsync and rename (POSIX atomic)."""
     handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=path.suffix)
     try:
@@ -126,7 +126,8 @@ def _write_atomically(path: Path, data: bytes) -> None:
         with contextlib.suppress(OSError):
             os.unlink(temporary)
         raise
-    _sync_folder(path.parent)
+    if sync_folder:
+        _sync_folder(path.parent)
 
 
 def _sync_folder(folder: Path) -> None:
@@ -143,6 +144,7 @@ class HeldMailStore:
 
     def __init__(self, folder: Path) -> None:
         self.folder = Path(folder)
+        self._parsed: dict[str, tuple[int, HeldEnvelope]] = {}  # name -> (mtime_ns, envelope)
 
     def _path(self, tracking_id: str, suffix: str) -> Path:
         return self.folder / f"{check_id(tracking_id)}{suffix}"
@@ -152,7 +154,8 @@ class HeldMailStore:
     def hold(self, raw: bytes, envelope: HeldEnvelope) -> None:
         """Keep ``raw`` and its envelope; raises OSError when either cannot be written."""
         self.folder.mkdir(parents=True, exist_ok=True)
-        _write_atomically(self._path(envelope.tracking_id, ".eml"), raw)
+        # One folder sync after the sidecar's rename makes both renames durable.
+        _write_atomically(self._path(envelope.tracking_id, ".eml"), raw, sync_folder=False)
         self._write_envelope(envelope)
 
     def forget(self, tracking_id: str) -> None:
@@ -180,19 +183,39 @@ class HeldMailStore:
         except FileNotFoundError:
             raise NotHeld(f"the held copy of {tracking_id} is missing its message") from None
 
+    def head(self, tracking_id: str, limit: int = 65536) -> bytes:
+        """The first ``limit`` bytes of the held message (enough for its header)."""
+        try:
+            with self._path(tracking_id, ".eml").open("rb") as held:
+                return held.read(limit)
+        except FileNotFoundError:
+            raise NotHeld(f"the held copy of {tracking_id} is missing its message") from None
+
     def envelopes(self) -> list[HeldEnvelope]:
-        """Every held message, oldest first (unreadable sidecars are skipped, not fatal)."""
-        found = []
-        if not self.folder.is_dir():
-            return found
-        for path in self.folder.glob("*.json"):
-            if path.name == "tally.json" or path.name.startswith("."):
+        """Every held message, oldest first (unreadable sidecars are skipped, not fatal).
+
+        Sidecars are parsed again only when their change time moved, so the scrape-time
+        metrics cost a directory scan and a stat per message, not a parse."""
+        found: dict[str, tuple[int, HeldEnvelope]] = {}
+        try:
+            entries = list(os.scandir(self.folder))
+        except FileNotFoundError:
+            entries = []
+        for entry in entries:
+            name = entry.name
+            if not name.endswith(".json") or name == "tally.json" or name.startswith("."):
                 continue
             try:
-                found.append(HeldEnvelope.from_json(json.loads(path.read_text("utf-8"))))
+                stamp = entry.stat().st_mtime_ns
+                known = self._parsed.get(name)
+                if known is None or known[0] != stamp:
+                    text = Path(entry.path).read_text("utf-8")
+                    known = (stamp, HeldEnvelope.from_json(json.loads(text)))
             except (OSError, ValueError, TypeError):
                 continue  # being replaced right now, or damaged by hand; never fatal here
-        return sorted(found, key=lambda e: (e.held_at, e.tracking_id))
+            found[name] = known
+        self._parsed = found
+        return sorted((e for _, e in found.values()), key=lambda e: (e.held_at, e.tracking_id))
 
     def figures(self, retention_days: float, now: float | None = None) -> HeldFigures:
         now = time.time() if now is None else now
