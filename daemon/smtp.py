@@ -14,23 +14,21 @@ import logging
 import socket
 import ssl
 import time
-from collections.abc import Awaitable, Callable, Iterator
+from collections.abc import Awaitable, Callable, Iterator, Sequence
 from contextlib import contextmanager
-from typing import TYPE_CHECKING, Any, AnyStr, Protocol
+from typing import Any, AnyStr, Protocol
 
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
-from mailweir.daemon import actions, headers, replies
+from mailweir.daemon import actions, headers, replies, site_policy
 from mailweir.daemon.admission import NO_FIRST_COMMAND, Admission
 from mailweir.daemon.errors import NextHopUnavailable, RelayError, reply_for
+from mailweir.daemon.judge import Judgement, new_tracking_id
 from mailweir.daemon.log_setup import message_scoped, tag_message
 from mailweir.daemon.relay import HEADER_ALLOWANCE, MailParameters, NextHopSession, RelayTimeouts
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import Settings, SmtpSettings
 from mailweir.store.verdicts import VerdictRecord
-
-if TYPE_CHECKING:
-    from mailweir.daemon.judge import Judgement
 
 log = logging.getLogger("mailweir.smtp")
 
@@ -59,6 +57,23 @@ class MetricsSink(Protocol):
     def message(self, band: str, action: str, score: float | None = None) -> None: ...
     def relay_error(self, error: RelayError) -> None: ...
     def scoring_failure(self) -> None: ...
+    def listed(self, sender_list: str, action: str) -> None: ...
+
+
+class Holding(Protocol):
+    """daemon/quarantine.py's ``Quarantine``: the held copy of each rerouted message."""
+
+    async def hold(
+        self,
+        raw: bytes,
+        tracking_id: str,
+        sender: str,
+        recipients: Sequence[str],
+        mail_options: Sequence[str],
+        score: float | None,
+        band: str,
+    ) -> Reply | None: ...
+    def let_go(self, tracking_id: str) -> None: ...
 
 
 class FilterSession(Session):
@@ -257,6 +272,8 @@ def _close_with(transport: asyncio.BaseTransport, reply: Reply) -> None:
 class FilterHandler:
     """The aiosmtpd handler: relay in lock-step, judge at end of DATA, act, reply."""
 
+    holding: Holding | None = None  # keeps rerouted mail for release; the service sets it
+
     def __init__(
         self,
         settings: Settings,
@@ -313,14 +330,14 @@ class FilterHandler:
         received_at = time.time()
         try:
             with server.busy(self._relay_seconds() + self.settings.smtp.command_timeout):
-                judgement, action, reply = await self._judge_and_relay(session, envelope)
+                judgement, decision, action, reply = await self._judge_and_relay(session, envelope)
         except BaseException:
             if session.relay is not None:
                 session.relay.abort()
             server.forget_transaction()
             raise
-        self._record(judgement, action, envelope, received_at)
-        self._count(judgement, action)
+        self._record(judgement, decision, action, envelope, received_at)
+        self._count(judgement, decision, action)
         return str(reply)
 
     async def handle_EHLO(
@@ -373,75 +390,128 @@ class FilterHandler:
             envelope.relay_open = True
         return await session.relay.add_recipient(address)
 
+    async def _decide(
+        self, session: FilterSession, envelope: FilterEnvelope, raw: bytes
+    ) -> tuple[Judgement, actions.Decision]:
+        """Site policy first (a listed sender is not scored), then the score, per recipient."""
+        policy = self.settings.policy  # one policy for the whole message, even across a reload
+        site = site_policy.compiled(policy)
+        views = [site.recipient_view(address) for address in envelope.rcpt_tos]
+        hit = site.sender_hit(envelope.mail_from, session.peer)
+        if hit is not None:
+            # Never scored, so never tokenized: no token hashes, nothing feedback could train.
+            band: Any = actions.LISTED_BAND  # not one of the judge's bands: no score gave it
+            judgement = Judgement(new_tracking_id(), band, None, (), None)
+            decision = actions.decide_listed(hit, policy, any(view.exempt for view in views))
+            log.info("%s: sender %s matched %s", judgement.tracking_id, envelope.mail_from, hit)
+            return judgement, decision
+        judgement = await self.judge.judge(headers.remove_own_fields(raw))
+        decision = actions.decide_for_recipients(judgement.band, judgement.score, views, policy)
+        return judgement, decision
+
     async def _judge_and_relay(
         self, session: FilterSession, envelope: FilterEnvelope
-    ) -> tuple[Judgement, str, Reply]:
-        """Judge, act, relay; returns the judgement, the action taken for the log (the
-        decided one, or "tempfail" / "refused" when the relay failed) and the reply."""
+    ) -> tuple[Judgement, actions.Decision, str, Reply]:
+        """Judge, act, relay; returns the judgement, the decision, the action taken for the
+        log (the decided one, or "tempfail" / "refused" when the relay failed) and the reply."""
         raw = envelope.original_content or b""
-        judgement = await self.judge.judge(headers.remove_own_fields(raw))
+        judgement, decision = await self._decide(session, envelope, raw)
         tag_message(judgement.tracking_id)
-        decision = actions.decide(judgement.band, self.settings.policy)
         if decision.note:
             log.info("%s: %s (%s)", judgement.tracking_id, decision.action, decision.note)
         relay = session.relay
         if relay is None:  # no RCPT reached the next hop; aiosmtpd normally prevents this
-            return judgement, "tempfail", replies.NEXT_HOP_LOST
+            return judgement, decision, "tempfail", replies.NEXT_HOP_LOST
         if decision.action == "reject":
             await relay.reset()
-            return judgement, "reject", replies.REJECTED_AS_SPAM
+            return judgement, decision, "reject", actions.refusal(decision)
         if decision.action == "tempfail":
             await relay.reset()
-            return judgement, "tempfail", replies.SCORING_FAILED
+            return judgement, decision, "tempfail", replies.SCORING_FAILED
         rerouted = decision.action == "reroute"
         fields = actions.tag_fields(
-            judgement.band,
+            decision.verdict,
             judgement.score,
             judgement.tracking_id,
             judgement.evidence,
             envelope.rcpt_tos if rerouted else (),
+            decision.listed,
         )
         message = actions.render(raw, decision, fields)
         started = time.monotonic()
+        sent = False
         try:
-            if rerouted and not await self._reroute(relay, envelope, len(message)):
-                return judgement, "tempfail", replies.QUARANTINE_REFUSED
+            if rerouted:
+                refusal = await self._reroute(relay, envelope, len(message), judgement)
+                if refusal is not None:
+                    return judgement, decision, "tempfail", refusal
             answer = await relay.send(message)
+            sent = True
         except RelayError as exc:
             log.warning("%s: next hop: %s", judgement.tracking_id, exc)
             if self.metrics is not None:
                 self.metrics.relay_error(exc)
             reply = reply_for(exc)
-            return judgement, "tempfail" if reply.is_temporary else "refused", reply
+            return judgement, decision, "tempfail" if reply.is_temporary else "refused", reply
         finally:
+            if rerouted and not sent and self.holding is not None:
+                # The upstream gets no 250 and sends the message again: a held copy of this
+                # try would be a second copy of one message.
+                self.holding.let_go(judgement.tracking_id)
             if self.metrics is not None:
                 self.metrics.relay_seconds.observe(time.monotonic() - started)
         text = f"{answer.text} (mailweir id {judgement.tracking_id})".strip()
-        return judgement, decision.action, Reply(250, answer.enhanced or "2.0.0", text)
+        return judgement, decision, decision.action, Reply(250, answer.enhanced or "2.0.0", text)
 
-    async def _reroute(self, relay: NextHopSession, envelope: FilterEnvelope, size: int) -> bool:
-        """Replace the next-hop transaction's recipients by the quarantine mailbox."""
+    async def _reroute(
+        self, relay: NextHopSession, envelope: FilterEnvelope, size: int, judgement: Judgement
+    ) -> Reply | None:
+        """Keep the held copy (the bytes as they arrived), then replace the next-hop
+        transaction's recipients by the quarantine mailbox.  None when ready to send, else
+        the temporary refusal for the upstream."""
+        if self.holding is not None:
+            refusal = await self.holding.hold(
+                envelope.original_content or b"",
+                judgement.tracking_id,
+                envelope.mail_from or "",
+                envelope.rcpt_tos,
+                envelope.mail_options,
+                judgement.score,
+                judgement.band,
+            )
+            if refusal is not None:
+                await relay.reset()
+                return refusal
         params = MailParameters.from_options(envelope.mail_options)
         await relay.start(envelope.mail_from or "", dataclasses.replace(params, size=size))
         answer = await relay.add_recipient(self.settings.policy.quarantine_mailbox)
         if not answer.is_positive:
             log.error("next hop refused the quarantine mailbox: %s", answer)
             await relay.reset()
-        return answer.is_positive
+            return replies.QUARANTINE_REFUSED
+        return None
 
     def _relay_seconds(self) -> float:
         t = self.timeouts
         return t.connect + 4 * t.command + t.data
 
-    def _count(self, judgement: Judgement, action: str) -> None:
+    def _count(self, judgement: Judgement, decision: actions.Decision, action: str) -> None:
         if self.metrics is None:
             return
-        self.metrics.message(judgement.band, action, judgement.score)
+        if decision.listed is not None:
+            self.metrics.listed(decision.listed.list, action)
+            return
+        self.metrics.message(decision.band or judgement.band, action, judgement.score)
         if judgement.band == "failed":
             self.metrics.scoring_failure()
 
     def _record(
-        self, judgement: Judgement, action: str, envelope: FilterEnvelope, received_at: float
+        self,
+        judgement: Judgement,
+        decision: actions.Decision,
+        action: str,
+        envelope: FilterEnvelope,
+        received_at: float,
     ) -> None:
         """Hand the verdict to the log; it writes in the background, the reply never waits."""
         if self.verdict_log is None:
@@ -453,9 +523,10 @@ class FilterHandler:
                 recipients=len(envelope.rcpt_tos),
                 size=len(envelope.original_content or b""),
                 score=judgement.score,
-                band=judgement.band,
+                band=decision.band or judgement.band,
                 action=action,
                 token_hashes=judgement.token_hashes,
+                sender_list=decision.listed.list if decision.listed else None,
             )
             self.verdict_log.add(record)
         except Exception:

@@ -41,6 +41,12 @@ EXPECTED_FAMILIES = {
     "mailweir_verdict_log_dropped": "counter",
     "mailweir_verdict_log_written": "counter",
     "mailweir_verdict_log_pending": "gauge",
+    "mailweir_upkeep_last_run_timestamp_seconds": "gauge",
+    "mailweir_upkeep_duration_seconds": "gauge",
+    "mailweir_upkeep_removed_rows": "counter",
+    "mailweir_upkeep_failures": "counter",
+    "mailweir_listed_messages": "counter",
+    "mailweir_config_reloads": "counter",
 }
 
 
