@@ -21,6 +21,7 @@ import email.policy
 import email.utils
 import logging
 import secrets
+import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from email.message import EmailMessage
@@ -187,13 +188,18 @@ async def run_once(quarantine: Quarantine, now: float) -> tuple[list[DigestMail]
 
 
 def next_run(clock: str, now: float) -> float:
-    """Unix time of the next ``HH:MM`` in local time strictly after ``now``."""
+    """Unix time of the next ``HH:MM`` in local time strictly after ``now``.
+
+    mktime with isdst=-1 finds each day's own offset, so a change to or from summer time
+    keeps the local hour."""
     hour, minute = digest_clock(clock) or (0, 0)
-    local = datetime.datetime.fromtimestamp(now).astimezone()
-    at = local.replace(hour=hour, minute=minute, second=0, microsecond=0)
-    if at.timestamp() <= now:
-        at = (at + datetime.timedelta(days=1)).replace(hour=hour, minute=minute)
-    return at.timestamp()
+    today = time.localtime(now)
+    for days in range(3):
+        parts = (today.tm_year, today.tm_mon, today.tm_mday + days, hour, minute, 0, 0, 0, -1)
+        stamp = time.mktime(parts)
+        if stamp > now:
+            return stamp
+    raise AssertionError("unreachable: a day later is always after now")
 
 
 class DigestSchedule:
