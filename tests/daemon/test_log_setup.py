@@ -10,15 +10,27 @@ import io
 import json
 import logging
 import re
+import time
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 from smtp_helpers import LOCAL, NextHop, daemon_settings, send
+from test_forwarded import delivered
 
-from mailweir.daemon import log_setup
+from mailweir.daemon import log_setup, scenario
+from mailweir.daemon.feedback import FeedbackIntake, hashes_of
+from mailweir.daemon.feedback_types import FeedbackRequest
 from mailweir.daemon.service import Service
-from mailweir.daemon.settings import HostPort, HttpSettings, LogSettings, ModelSettings
+from mailweir.daemon.settings import (
+    FeedbackSettings,
+    HostPort,
+    HttpSettings,
+    LogSettings,
+    ModelSettings,
+)
+from mailweir.model.tokenize import DEFAULT_OPTIONS
+from mailweir.store import ModelStore, VerdictRecord
 
 # Words that appear only in the test message's subject and body (ours, invented).
 SUBJECT = "Quillfeather dosage for Biscuit"
@@ -127,3 +139,27 @@ async def test_log_setup_transaction_lines_carry_id_and_never_text(
     text = buffer.getvalue()
     for secret in (SUBJECT, "Quillfeather", *BODY_WORDS):
         assert secret not in text
+
+
+async def test_log_setup_feedback_lines_carry_the_id_they_name(
+    tmp_path: Path, captured: tuple[io.StringIO, LogSettings]
+) -> None:
+    # A junk mail carrying the id of a wanted message (the forged-id case of feedback.py): the
+    # intake's warning about it must carry that id, and nothing after the correction may.
+    buffer, _ = captured
+    tracking_id = "0ljq3k2c5g1a9b7e"
+    store = ModelStore.open(str(tmp_path / "model.sqlite3"))
+    try:
+        wanted = hashes_of(scenario.overdue_reminder().raw, DEFAULT_OPTIONS)
+        record = VerdictRecord(tracking_id, time.time() - 60, 1, 900, 0.01, "ham", "pass", wanted)
+        store.record_verdicts([record])
+        intake = FeedbackIntake(store, FeedbackSettings(), DEFAULT_OPTIONS)
+        junk = delivered(scenario.generate(1, "spam", 5)[0].raw, tracking_id, band="ham")
+        await intake(FeedbackRequest("spam", "mail", raw=junk))
+        logging.getLogger("mailweir.test").info("after the correction")
+    finally:
+        store.close()
+    lines = [json.loads(line) for line in buffer.getvalue().splitlines()]
+    warned = [line for line in lines if "shares only" in line["message"]]
+    assert warned and all(line.get("tracking_id") == tracking_id for line in warned)
+    assert "tracking_id" not in lines[-1]
