@@ -13,6 +13,7 @@ import dataclasses
 import email.policy
 import email.utils
 import json
+import time
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager, redirect_stdout
 from dataclasses import dataclass
@@ -24,6 +25,7 @@ import aiohttp
 from smtp_helpers import LOCAL, FakeJudge, FakeVerdictLog, Judged, NextHop, daemon_settings, send
 
 from mailweir.daemon import cli
+from mailweir.daemon.digest import DigestSchedule, next_run
 from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.judge import new_tracking_id
 from mailweir.daemon.metrics import Metrics
@@ -283,3 +285,34 @@ async def test_quarantine_expire_by_command_takes_only_mail_past_retention(
     assert code == 0 and report["expired"] == [old.tracking_id]
     assert [e["tracking_id"] for e in report["held"]] == [recent]
     assert daemon.quarantine.store.tally().expired == 1
+
+
+async def test_quarantine_digest_schedule_sends_when_due(tmp_path: Path, next_hop: NextHop) -> None:
+    async with holding_daemon(tmp_path, next_hop) as daemon:
+        await _reroute(daemon, next_hop)
+        q = dataclasses.replace(
+            daemon.settings.quarantine,
+            digest_time="07:30",
+            digest_from="mail-filter@harbourlane.example",
+            digest_to="admin",
+            digest_admin=TOBIAS,
+        )
+        quarantine = Quarantine(dataclasses.replace(daemon.settings, quarantine=q))
+        started = time.time()
+        readings = iter([started])  # the first reading plans; every later one is past it
+
+        def clock() -> float:
+            return next(readings, next_run("07:30", started))  # due, within the day
+
+        schedule = DigestSchedule(quarantine, clock)
+        schedule.start()
+        try:
+            for _ in range(500):  # bounded: at most 5 s
+                if len(next_hop.deliveries) == 2:
+                    break
+                await asyncio.sleep(0.01)
+        finally:
+            await schedule.stop()
+    digest = next_hop.deliveries[-1]
+    assert digest.rcpt_tos == [TOBIAS]
+    assert b"Auto-Submitted: auto-generated" in digest.content
