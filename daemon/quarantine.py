@@ -121,11 +121,21 @@ class Quarantine:
         try:
             raw = await asyncio.to_thread(self.store.raw, tracking_id)
             delivered, refused, answer = await self._deliver(envelope, raw)
+        except BaseException:
+            await asyncio.to_thread(self.store.unclaim, tracking_id)  # not sent: may try again
+            raise
+        try:
             done = await asyncio.to_thread(
                 self.store.record_release, envelope, way, delivered, refused, answer
             )
-        finally:
-            await asyncio.to_thread(self.store.unclaim, tracking_id)
+        except OSError as exc:
+            # Sent but not recorded: the claim stays, so nobody sends it a second time.
+            log.error("%s: released to %s but not recorded: %s", tracking_id, delivered, exc)
+            raise ReleaseFailed(
+                f"{tracking_id} went to {', '.join(delivered)} but the record failed ({exc}); "
+                "its claim file stays so it is not sent twice"
+            ) from exc
+        await asyncio.to_thread(self.store.unclaim, tracking_id)
         log.info(
             "%s: released by %s to %s%s",
             tracking_id,
