@@ -13,7 +13,6 @@ never fall back silently to a default.
 from __future__ import annotations
 
 import dataclasses
-import ipaddress
 import os
 import tomllib
 import types
@@ -33,7 +32,7 @@ from mailweir.daemon.settings import (
     Settings,
     SmtpSettings,
 )
-from mailweir.daemon.site_policy import SitePolicy
+from mailweir.daemon.site_policy import Networks, SitePolicy
 
 ENV_PREFIX = "MAILWEIR_"
 CONFIG_PATH_ENV = "MAILWEIR_CONFIG"  # the file to read when --config is not given
@@ -428,15 +427,7 @@ def _check_admission(smtp: SmtpSettings) -> None:
 
 
 def _check_networks(key: str, networks: tuple[str, ...]) -> None:
-    for network in networks:
-        try:
-            ipaddress.ip_network(network)
-        except ValueError as exc:
-            raise ConfigError(
-                key,
-                f"got {network!r} ({exc}); expected networks in CIDR form such as "
-                '"192.0.2.0/24" or "::1/128"',
-            ) from exc
+    Networks(key, networks)  # raises ConfigError naming the key and the bad entry
 
 
 def _check_method(method: str) -> None:

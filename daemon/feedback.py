@@ -32,7 +32,6 @@ import concurrent.futures
 import contextlib
 import dataclasses
 import functools
-import ipaddress
 import logging
 import time
 from collections.abc import Awaitable, Callable, Sequence
@@ -51,6 +50,7 @@ from mailweir.daemon.feedback_types import (
 from mailweir.daemon.log_setup import message_scoped, tag_message
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import FeedbackSettings
+from mailweir.daemon.site_policy import Networks, client_address
 from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import TokenizerOptions, tokenize
 from mailweir.model.types import HAM, SPAM, TokenHashes
@@ -145,20 +145,12 @@ class TrustedNetworks:
     """Client addresses allowed to train, from CIDR texts."""
 
     def __init__(self, networks: Sequence[str]) -> None:
-        self._networks = [ipaddress.ip_network(n) for n in networks]
+        self._networks = Networks("feedback.trusted_networks", networks)
 
     def __contains__(self, peer: object) -> bool:
-        """``peer`` as aiosmtpd gives it: ``(host, port, ...)``, or a bare host text."""
-        host = peer[0] if isinstance(peer, tuple) and peer else peer
-        if not isinstance(host, str):
-            return False  # a Unix socket or no address at all: not a network client
-        try:
-            address = ipaddress.ip_address(host.split("%", 1)[0])
-        except ValueError:
-            return False
-        if isinstance(address, ipaddress.IPv6Address) and address.ipv4_mapped is not None:
-            address = address.ipv4_mapped
-        return any(address in network for network in self._networks)
+        """``peer`` as aiosmtpd gives it: ``(host, port, ...)``, or a bare host text; a Unix
+        socket or no address at all is not a network client."""
+        return self._networks.find(client_address(peer)) is not None
 
 
 class RateLimit:

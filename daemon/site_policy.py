@@ -132,7 +132,7 @@ class Networks:
         self.networks: list[tuple[IpNetwork, str]] = []
         for entry in entries:
             try:
-                self.networks.append((ipaddress.ip_network(entry.strip()), entry))
+                self.networks.append((ipaddress.ip_network(entry), entry))
             except ValueError as exc:
                 raise ConfigError(
                     key,
