@@ -116,7 +116,11 @@ def _do(store: Any, settings: UpkeepSettings, task: str, now: float) -> tuple[in
         done = maintenance.tidy(store)
         if not done.done:
             return 0, f"{done.backend}: skipped, {done.note}"
-        busy = "; a reader kept it from finishing" if done.busy else ""
+        busy = (
+            "; another connection kept it from finishing (next run tries again)"
+            if done.busy
+            else ""
+        )
         return 0, f"sqlite: WAL checkpoint ({done.wal_bytes} bytes) and optimize{busy}"
     raise ValueError(f"unknown upkeep task {task!r}; expected one of {', '.join(TASKS)}")
 

@@ -29,7 +29,7 @@ STAMP_PREFIX = "upkeep."  # weir_meta key of a task's last run: "upkeep.<task>"
 @dataclass(frozen=True)
 class TidyResult:
     """What database tidying did.  ``wal_bytes``: size of the WAL file the checkpoint emptied;
-    ``busy``: a reader kept the checkpoint from finishing (it is then retried next time)."""
+    ``busy``: another connection kept the checkpoint from finishing (the next run tries again)."""
 
     backend: str
     done: bool
