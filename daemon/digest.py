@@ -135,19 +135,17 @@ def _text(settings: Settings, items: list[Listed]) -> str:
 
 
 def release_ways(settings: Settings, tracking_id: str) -> list[str]:
-    """How to release one held message, as lines of text for people."""
-    ways = [f"To release: mailweir release {tracking_id}   (the mail admin, on the filter)"]
+    """How to release one held message, as lines for people (short enough that
+    quoted-printable never breaks them)."""
+    pad = " " * 13
+    ways = [f"Release:     mailweir release {tracking_id}  (mail admin, on the filter)"]
     ham, mailbox = settings.feedback.ham_address, settings.policy.quarantine_mailbox
     if ham:
-        ways.append(
-            f"        or: forward its copy in {mailbox or 'the quarantine mailbox'} "
-            f"as an attachment to {ham}"
-        )
+        ways.append(f"{pad}or forward its copy in {mailbox or 'the quarantine mailbox'}")
+        ways.append(f"{pad}  as an attachment to {ham}")
     if settings.http.token:
-        ways.append(
-            f"        or: POST http://{settings.http.listen}/quarantine/{tracking_id}/release "
-            "(with the HTTP bearer token)"
-        )
+        ways.append(f"{pad}or POST, with the HTTP bearer token, to")
+        ways.append(f"{pad}  http://{settings.http.listen}/quarantine/{tracking_id}/release")
     return ways
 
 
