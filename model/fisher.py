@@ -15,6 +15,7 @@ from mailweir.model.nb_base import (
     NaiveBayes,
     check_counts,
     check_frequency,
+    posterior_spam,
     require_trained,
 )
 from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, Vocabulary
@@ -196,6 +197,21 @@ class RobinsonFisher(NaiveBayes):
             result[HAM] = np.log(1.0 - spam)
             result[SPAM] = np.log(spam)
         return result
+
+    def probability_and_weights(
+        self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
+    ) -> tuple[float, FloatArray]:
+        """As the two kernels give them, with f and the selection worked out once (hot path)."""
+        f = self.token_probability(token_count, class_count)
+        chosen = self._selected(f, np.ones(len(f), dtype=bool))
+        spam = self.indicator(f[chosen])
+        jll = np.empty(2)
+        with np.errstate(divide="ignore"):
+            jll[HAM] = np.log(1.0 - spam)
+            jll[SPAM] = np.log(spam)
+        weights = np.zeros(len(f))
+        weights[chosen] = np.log(f[chosen]) - np.log1p(-f[chosen])
+        return posterior_spam(jll), weights
 
     def token_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary

@@ -242,9 +242,15 @@ class NaiveBayes(ABC):
             raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
         if not is_trained(classes):
             return Score(UNTRAINED_PROBABILITY, ())
-        probability = posterior_spam(self.joint_log_likelihood(counts, classes, vocabulary))
-        weights = self.token_weights(counts, classes, vocabulary)
+        probability, weights = self.probability_and_weights(counts, classes, vocabulary)
         return Score(probability, strongest_evidence(hashes, weights, n_evidence))
+
+    def probability_and_weights(
+        self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
+    ) -> tuple[float, FloatArray]:
+        """P(spam | message) and ``token_weights``; a method may share work between them."""
+        jll = self.joint_log_likelihood(token_count, class_count, vocabulary)
+        return posterior_spam(jll), self.token_weights(token_count, class_count, vocabulary)
 
     @classmethod
     def parameter_names(cls) -> tuple[str, ...]:

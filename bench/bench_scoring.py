@@ -1,0 +1,151 @@
+"""The scoring path alone, bulk training, memory per token and database bytes per token.
+
+Scoring path: what the daemon does for one message off the loop (daemon/judge.py): parse and
+tokenize, hash, look up the counts (warm cache), score with Fisher and name the evidence, on
+generated 4 KB Harbour Lane messages against a model of at least 500,000 tokens
+(bench/bench_mail.py builds and keeps it).  Figures are CPU seconds of this process
+(``time.process_time``), so other load on a shared machine moves them less than wall time.
+
+    python bench/bench_scoring.py                  # 2,000 messages, the kept 500k-token model
+    python bench/bench_scoring.py --messages 5000 --min-tokens 1000000
+
+Targets (issue 6): scoring path >= 1,500 msg/s per core, bulk training >= 1,000 msg/s,
+resident memory <= 100 MB + 40 B per token held, <= 32 database bytes per token.
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import sys
+import tempfile
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+import bench_mail
+import proc_cpu
+
+from mailweir.daemon.judge import N_EVIDENCE, _evidence_text, tokenize_step
+from mailweir.model.hashing import message_digest
+from mailweir.model.nb import make_scorer
+from mailweir.model.tokenize import DEFAULT_OPTIONS, tokens
+from mailweir.model.types import HAM, SPAM
+from mailweir.store import ModelStore
+
+
+def _per_message(step: Callable[[bytes], object], messages: list[bytes]) -> float:
+    """CPU seconds per message of ``step``."""
+    started = time.process_time()
+    for raw in messages:
+        step(raw)
+    return (time.process_time() - started) / len(messages)
+
+
+def bench_path(store: ModelStore, messages: list[bytes]) -> None:
+    scorer = make_scorer("fisher")
+    tokenized = [tokenize_step(raw, DEFAULT_OPTIONS) for raw in messages]  # warms the cache too
+    for hashes, _ in tokenized:
+        store.lookup(hashes)
+
+    def whole(raw: bytes) -> None:
+        hashes, texts = tokenize_step(raw, DEFAULT_OPTIONS)
+        counts = store.lookup(hashes)
+        totals = np.asarray(store.class_count(), dtype=np.int64)
+        score = scorer.score(hashes, counts, totals, store.vocabulary(), N_EVIDENCE)
+        _evidence_text(score, hashes, texts)
+
+    for raw in messages[:50]:
+        whole(raw)  # the first call loads the vocabulary summary (one GROUP BY)
+    seconds = _per_message(whole, messages)
+    parse = _per_message(lambda raw: tokens(raw, DEFAULT_OPTIONS), messages)
+    tokenize = _per_message(lambda raw: tokenize_step(raw, DEFAULT_OPTIONS), messages)
+    by_hashes = {id(raw): h for raw, (h, _) in zip(messages, tokenized, strict=True)}
+    lookup = _per_message(lambda raw: store.lookup(by_hashes[id(raw)]), messages)
+    counts = {key: store.lookup(h) for key, h in by_hashes.items()}
+    totals, vocabulary = store.class_count(), store.vocabulary()
+    score = _per_message(
+        lambda raw: scorer.score(by_hashes[id(raw)], counts[id(raw)], totals, vocabulary, 4),
+        messages,
+    )
+    n_tokens = np.mean([len(h) for h, _ in tokenized])
+    print(
+        f"scoring path, 4 KB:  {1 / seconds:7.0f} msg/s per core "
+        f"({seconds * 1e3:.3f} ms CPU per message, {n_tokens:.0f} tokens each)"
+    )
+    print(
+        f"  parse+tokenize {parse * 1e3:.3f} ms, +hash {(tokenize - parse) * 1e3:.3f} ms, "
+        f"lookup {lookup * 1e3:.3f} ms, score {score * 1e3:.3f} ms"
+    )
+
+
+def bench_training(count: int) -> None:
+    messages = [bench_mail.message(i, 4096, seed=11, rare_share=0.5) for i in range(count)]
+    with tempfile.TemporaryDirectory() as folder:
+        store = ModelStore.open(str(Path(folder) / "train.sqlite3"))
+        started = time.perf_counter()
+        items = []
+        for i, raw in enumerate(messages):
+            hashes, _ = tokenize_step(raw, DEFAULT_OPTIONS)
+            items.append((hashes, SPAM if i % 4 == 3 else HAM, message_digest(hashes), "bench"))
+        tokenized = time.perf_counter()
+        store.train_many(items)
+        done = time.perf_counter()
+        store.close()
+    print(
+        f"bulk training:       {count / (done - started):7.0f} msg/s with tokenizing, "
+        f"{count / (done - tokenized):.0f} msg/s counting alone ({count} messages, one process)"
+    )
+
+
+def bench_memory(path: Path) -> None:
+    """Resident memory once every token of the model is held in the count cache."""
+    import sqlite3
+
+    with sqlite3.connect(path) as db:
+        every = np.array([row[0] for row in db.execute("SELECT hash FROM weir_token")])
+    every.sort()
+    before = proc_cpu.rss_bytes(proc_cpu.os.getpid())
+    store = ModelStore.open(str(path), cache_tokens=len(every) + 1)
+    for start in range(0, len(every), 4096):
+        store.lookup(every[start : start + 4096])
+    after = proc_cpu.rss_bytes(proc_cpu.os.getpid())
+    stats = store.stats()
+    store.close()
+    tokens_held = len(every)
+    budget = 100 * 2**20 + 40 * tokens_held
+    print(
+        f"resident memory:     {after / 2**20:7.1f} MB with {tokens_held} tokens held "
+        f"(budget {budget / 2**20:.1f} MB); the cache added "
+        f"{(after - before) / tokens_held:.1f} B per token"
+    )
+    print(
+        f"database size:       {stats.database_bytes / stats.tokens:7.1f} bytes per token "
+        f"({stats.tokens} tokens, {stats.database_bytes / 2**20:.1f} MiB)"
+    )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--messages", type=int, default=2000, help="4 KB messages scored")
+    parser.add_argument("--train", type=int, default=3000, help="messages trained in bulk")
+    parser.add_argument("--min-tokens", type=int, default=500_000, help="model size")
+    args = parser.parse_args()
+    model = bench_mail.build_model(args.min_tokens)
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "model.sqlite3"
+        shutil.copyfile(model, path)
+        bench_memory(path)
+        store = ModelStore.open(str(path))
+        messages = [bench_mail.message(i, 4096, seed=7) for i in range(args.messages)]
+        bench_path(store, messages)
+        store.close()
+    bench_training(args.train)
+
+
+if __name__ == "__main__":
+    main()

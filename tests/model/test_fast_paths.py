@@ -1,0 +1,36 @@
+"""Fast paths give exactly what the plain kernels give (they exist only for speed)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from mailweir.model.fisher import RobinsonFisher
+from mailweir.model.hashing import hash_tokens, token_hash, token_hashes
+from mailweir.model.nb_base import NaiveBayes, posterior_spam
+from mailweir.model.types import Vocabulary
+
+
+@pytest.mark.parametrize(
+    "scorer",
+    [RobinsonFisher(), RobinsonFisher(strength=1.0, max_tokens=None), RobinsonFisher(0.3, 0.4)],
+)
+def test_fisher_probability_and_weights_equal_the_kernels(scorer: RobinsonFisher) -> None:
+    rng = np.random.default_rng(5)
+    classes = np.array([400, 150], dtype=np.int64)
+    for size in (0, 1, 7, 300):
+        counts = np.stack([rng.integers(0, 400, size), rng.integers(0, 150, size)], axis=1)
+        counts[rng.random(size) < 0.3] = 0  # unknown tokens
+        vocabulary = Vocabulary.from_token_counts(counts)
+        probability, weights = scorer.probability_and_weights(counts, classes, vocabulary)
+        jll = scorer.joint_log_likelihood(counts, classes, vocabulary)
+        assert probability == posterior_spam(jll)
+        plain = NaiveBayes.probability_and_weights(scorer, counts, classes, vocabulary)
+        assert probability == plain[0]
+        np.testing.assert_array_equal(weights, scorer.token_weights(counts, classes, vocabulary))
+
+
+def test_token_hashes_aligned_with_token_hash() -> None:
+    words = ["booster", "kennel", "booster", "ärzte", ""]
+    assert token_hashes(words).tolist() == [token_hash(w) for w in words]
+    np.testing.assert_array_equal(hash_tokens(words), np.unique(token_hashes(words)))
