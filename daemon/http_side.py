@@ -11,6 +11,9 @@ Paths::
     POST /quarantine/<id>/release         send a held message to its original recipients,
                                           behind the bearer token: 200, 404 not held,
                                           409 released before, 502 next hop refused
+    POST /reload    re-read the configuration file as SIGHUP does, behind the bearer token:
+                    200 applied, 409 refused (the running configuration is kept; the body
+                    names the key and the reason)
     POST /feedback  a correction, behind ``Authorization: Bearer <http.token>``:
                     JSON ``{"tracking_id": "...", "kind": "spam" | "ham"}``, or the message
                     itself as ``Content-Type: message/rfc822`` with ``?kind=spam|ham``
@@ -133,6 +136,8 @@ class HttpSide:
         self._ready_checks = dict(ready_checks)
         self._max_body = max_body_bytes
         self.quarantine: Quarantine | None = None  # the service sets it; None: routes say so
+        # The service's reload: None when applied, else why it was refused.
+        self.reload: Callable[[], str | None] | None = None
         self.app = web.Application(client_max_size=max_body_bytes, middlewares=[_json_errors])
         self.app.add_routes(
             [
@@ -143,6 +148,7 @@ class HttpSide:
                 web.post("/feedback", self._post_feedback),
                 web.get("/quarantine", self._held_list),
                 web.post("/quarantine/{tracking_id}/release", self._release_held),
+                web.post("/reload", self._reload),
             ]
         )
         self._runner: web.AppRunner | None = None
@@ -236,6 +242,17 @@ class HttpSide:
             "next_hop_answer": done.next_hop_answer,
         }
         return web.json_response(body)
+
+    # -- configuration ---------------------------------------------------------------------
+
+    async def _reload(self, request: web.Request) -> web.Response:
+        refusal = self._authorize(request, "reload")
+        if refusal is not None or self.reload is None:
+            return refusal or _error(404, "reload is not available on this daemon")
+        problem = self.reload()
+        if problem is not None:
+            return _error(409, f"reload refused, the running configuration is kept: {problem}")
+        return web.json_response({"status": "applied"})
 
     # -- corrections -----------------------------------------------------------------------
 

@@ -67,6 +67,7 @@ class Service:
         self.smtp_server: Any = None
         self._signals: list[signal.Signals] = []
 
+        self.reload_refusal = ""  # why the last refused reload was refused
     # -- lifecycle -----------------------------------------------------------------------
 
     async def startup(self) -> None:
@@ -85,6 +86,7 @@ class Service:
             )
             self.observing.http.quarantine = self.quarantine
             await self.observing.start()
+            self.observing.http.reload = self.reload_problem
         except BaseException:
             if self.smtp_server is not None:
                 self.smtp_server.close()
@@ -150,13 +152,15 @@ class Service:
         try:
             if settings is None:
                 if self._source is None:
-                    log.warning("reload: no configuration file to read; nothing changed")
+                    self.reload_refusal = "no configuration file to read; nothing changed"
+                    log.warning("reload: %s", self.reload_refusal)
                     return False
                 settings = self._source.load()
             else:
                 validate(settings)
         except ConfigError as exc:
             log.error("reload refused, keeping the running configuration: %s", exc)
+            self.reload_refusal = str(exc)
             self.metrics.config_reload(applied=False)
             return False
         changed = _restart_only_changes(self.settings, settings)
@@ -195,6 +199,10 @@ class Service:
         return True
 
     def install_signal_handlers(self) -> None:
+    def reload_problem(self) -> str | None:
+        """:meth:`reload` for the HTTP side: None when applied, else why it was refused."""
+        return None if self.reload() else self.reload_refusal
+
         loop = asyncio.get_running_loop()
         for sig, action in (
             (signal.SIGTERM, self.stop),

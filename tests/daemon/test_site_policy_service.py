@@ -11,6 +11,7 @@ import signal
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 
+import aiohttp
 import pytest
 from smtp_helpers import NextHop, message, send
 
@@ -22,13 +23,14 @@ pytestmark = [pytest.mark.timeout(120), pytest.mark.slow]
 
 SUPPLIER = "orders@vetsupply.example"
 MAREN = "maren.okafor@harbourlane.example"
+TOKEN = "harbour-lane-reload-test"
 
 
 def write_config(path: Path, next_hop: NextHop, policy: str) -> None:
     path.write_text(
         '[smtp]\nlisten = "127.0.0.1:0"\nhostname = "filter.harbourlane.example"\n'
         f'[next_hop]\naddress = "{next_hop.address}"\n'
-        '[http]\nlisten = "127.0.0.1:0"\n'
+        f'[http]\nlisten = "127.0.0.1:0"\ntoken = "{TOKEN}"\n'
         '[policy]\nmode = "enforce"\nposition = "before-queue"\n' + policy,
         encoding="utf-8",
     )
@@ -122,3 +124,25 @@ async def test_listed_mail_is_recorded_but_never_trained(
         "mailweir_feedback_refused_total", {"reason": "listed"}
     )
     assert refused == 2
+
+
+async def test_post_reload_applies_or_refuses_behind_the_token(
+    service: Service, next_hop: NextHop, tmp_path: Path
+) -> None:
+    assert service.http_address is not None
+    url = f"http://127.0.0.1:{service.http_address.port}/reload"
+    path = tmp_path / "mailweir.toml"
+    auth = {"Authorization": f"Bearer {TOKEN}"}
+    async with aiohttp.ClientSession() as client:
+        async with client.post(url) as response:
+            assert response.status == 401  # RFC 6750: no token
+        write_config(path, next_hop, 'block_networks = ["127.0.0.0/8"]\n')
+        async with client.post(url, headers=auth) as response:
+            assert response.status == 200 and (await response.json()) == {"status": "applied"}
+        assert service.settings.policy.block_networks == ("127.0.0.0/8",)
+        write_config(path, next_hop, 'block_networks = ["127.0.0.0/33"]\n')
+        async with client.post(url, headers=auth) as response:
+            assert response.status == 409
+            assert "policy.block_networks" in (await response.json())["error"]
+    assert service.settings.policy.block_networks == ("127.0.0.0/8",)
+    assert (reloads(service, "applied"), reloads(service, "refused")) == (1, 1)
