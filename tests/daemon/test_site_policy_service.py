@@ -4,11 +4,13 @@ a bad file keeping the old policy, and listed mail never trained."""
 from __future__ import annotations
 
 import asyncio
+import email
 import logging
 import os
 import re
 import signal
 from collections.abc import AsyncIterator, Callable
+from email.message import EmailMessage
 from pathlib import Path
 
 import aiohttp
@@ -24,6 +26,7 @@ pytestmark = [pytest.mark.timeout(120), pytest.mark.slow]
 SUPPLIER = "orders@vetsupply.example"
 MAREN = "maren.okafor@harbourlane.example"
 TOKEN = "harbour-lane-reload-test"
+REPORT_SPAM = "report-spam@harbourlane.example"
 
 
 def write_config(path: Path, next_hop: NextHop, policy: str) -> None:
@@ -31,6 +34,7 @@ def write_config(path: Path, next_hop: NextHop, policy: str) -> None:
         '[smtp]\nlisten = "127.0.0.1:0"\nhostname = "filter.harbourlane.example"\n'
         f'[next_hop]\naddress = "{next_hop.address}"\n'
         f'[http]\nlisten = "127.0.0.1:0"\ntoken = "{TOKEN}"\n'
+        f'[feedback]\nspam_address = "{REPORT_SPAM}"\n'
         '[policy]\nmode = "enforce"\nposition = "before-queue"\n' + policy,
         encoding="utf-8",
     )
@@ -146,3 +150,27 @@ async def test_post_reload_applies_or_refuses_behind_the_token(
             assert "policy.block_networks" in (await response.json())["error"]
     assert service.settings.policy.block_networks == ("127.0.0.0/8",)
     assert (reloads(service, "applied"), reloads(service, "refused")) == (1, 1)
+
+
+def forward_as_attachment(original: bytes) -> bytes:
+    """Maren forwards a message to the spam address, the original attached (RFC 2046 5.2.1)."""
+    forward = EmailMessage()
+    forward["From"] = f"Dr. Maren Okafor <{MAREN}>"
+    forward["To"] = REPORT_SPAM
+    forward["Subject"] = "Fwd: Your order 4411"
+    forward.set_content("This one is spam.")
+    forward.add_attachment(email.message_from_bytes(original))
+    return forward.as_bytes()
+
+
+async def test_feedback_by_mail_on_listed_mail_is_refused(
+    service: Service, next_hop: NextHop
+) -> None:
+    port = service.smtp_address.port
+    await send(port, message(), [MAREN], SUPPLIER)
+    delivered = next_hop.deliveries[0].content
+    sent = await send(port, forward_as_attachment(delivered), [REPORT_SPAM], MAREN)
+    assert sent.data is not None and sent.data[0] == 550
+    assert b"5.7.1" in sent.data[1] and b"sender list" in sent.data[1]
+    stats = await asyncio.to_thread(service.store.stats)
+    assert (stats.spam_messages, stats.ledger_rows) == (0, 0)
