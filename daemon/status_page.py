@@ -42,6 +42,7 @@ BAND_COLOURS: Final = {
     "spam": "#d1242f",
     "unjudged": "#8c959f",
     "failed": "#8250df",
+    "listed": "#0969da",  # decided by a sender list of the site policy, not scored
 }
 FP_COLOUR, FN_COLOUR = "#d1242f", "#1f6feb"
 
