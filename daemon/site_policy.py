@@ -35,7 +35,6 @@ from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.settings import PolicySettings, RecipientPolicy
 
 IpAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
-IpNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
 ListName = Literal["allow", "block"]
 
 PATTERN_FORMS = '"local@domain", "@domain" or "@.domain" (the domain and its subdomains)'
@@ -126,26 +125,37 @@ class AddressPatterns:
 
 
 class Networks:
-    """CIDR networks; the first one holding the client wins."""
+    """CIDR networks, found by one dictionary probe per distinct prefix length (longest
+    first, so the most specific entry is reported), not by a scan of every entry."""
 
     def __init__(self, key: str, entries: Iterable[str]) -> None:
-        self.networks: list[tuple[IpNetwork, str]] = []
+        # (IP version, prefix length) -> {network number >> host bits: entry as written}
+        self._tables: dict[tuple[int, int], dict[int, str]] = {}
         for entry in entries:
             try:
-                self.networks.append((ipaddress.ip_network(entry), entry))
+                network = ipaddress.ip_network(entry)
             except ValueError as exc:
                 raise ConfigError(
                     key,
                     f"got {entry!r} ({exc}); expected networks in CIDR form such as "
                     '"192.0.2.0/24" or "2001:db8::/32"',
                 ) from exc
+            host_bits = network.max_prefixlen - network.prefixlen
+            table = self._tables.setdefault((network.version, network.prefixlen), {})
+            table.setdefault(int(network.network_address) >> host_bits, entry)
+        self._tables = dict(sorted(self._tables.items(), key=lambda item: -item[0][1]))
+
+    def __bool__(self) -> bool:
+        return bool(self._tables)
 
     def find(self, address: IpAddress | None) -> str | None:
         if address is None:
             return None
-        for network, entry in self.networks:
-            if address.version == network.version and address in network:
-                return entry
+        for (version, length), table in self._tables.items():
+            if version == address.version:
+                entry = table.get(int(address) >> (address.max_prefixlen - length))
+                if entry is not None:
+                    return entry
         return None
 
 
@@ -179,10 +189,7 @@ class SitePolicy:
     @property
     def has_lists(self) -> bool:
         return bool(
-            self.allow_senders
-            or self.block_senders
-            or self.allow_networks.networks
-            or self.block_networks.networks
+            self.allow_senders or self.block_senders or self.allow_networks or self.block_networks
         )
 
     def sender_hit(self, sender: str | None, peer: object) -> ListHit | None:

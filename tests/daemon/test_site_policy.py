@@ -167,3 +167,12 @@ def test_compiled_parses_once_per_settings_object() -> None:
     assert compiled(policy) is compiled(policy)
     newer = PolicySettings(allow_senders=("@vetsupply.example",))
     assert compiled(newer) is not compiled(policy)
+
+
+def test_networks_most_specific_entry_and_zero_prefix() -> None:
+    nets = Networks("k", ["192.0.2.0/24", "192.0.2.128/25", "0.0.0.0/0"])
+    assert nets.find(client_address("192.0.2.200")) == "192.0.2.128/25"
+    assert nets.find(client_address("192.0.2.7")) == "192.0.2.0/24"
+    assert nets.find(client_address("198.51.100.1")) == "0.0.0.0/0"
+    assert nets.find(client_address("2001:db8::1")) is None  # an IPv4 list holds no IPv6
+    assert Networks("k", ["2001:db8::1/128"]).find(client_address("2001:db8::1")) is not None
