@@ -2,6 +2,8 @@
 
 Hashes come from BLAKE2b, never Python's ``hash()``: that one is salted per process, and the
 counts stored in the database must mean the same token in every process and on every host.
+Orthogonal sparse bigrams (``osb:`` tokens) are hashed from their words' hashes instead
+(``pairs.py``), far cheaper for the many pairs of a message.
 """
 
 from __future__ import annotations
@@ -11,6 +13,7 @@ from hashlib import blake2b
 
 import numpy as np
 
+from .pairs import pair_hash_int, split_pair
 from .types import TokenHashes
 
 _CACHE_LIMIT = 200_000
@@ -22,6 +25,11 @@ _digest_cache: dict[str, bytes] = {}
 
 
 def _digest8(token: str) -> bytes:
+    pair = split_pair(token)
+    if pair is not None:  # the tokenizer mixes these from word hashes (pairs.osb_pair_hashes)
+        distance, earlier, later = pair
+        mixed = pair_hash_int(token_hash(earlier), token_hash(later), distance)
+        return mixed.to_bytes(8, "little", signed=True)
     # Lone surrogates (never produced by the tokenizer) hash instead of raising.
     return blake2b(token.encode("utf-8", "surrogatepass"), digest_size=8).digest()
 
@@ -56,7 +64,7 @@ def hash_tokens(tokens: Iterable[str]) -> TokenHashes:
     TokenHashes, shape (n,)
         ``np.int64`` hashes (``token_hash`` of each token), unique and sorted ascending.
     """
-    return _sorted_unique(token_hashes(tokens))
+    return sorted_unique(token_hashes(tokens))
 
 
 def token_hashes(tokens: Iterable[str]) -> TokenHashes:
@@ -84,8 +92,8 @@ def token_hashes(tokens: Iterable[str]) -> TokenHashes:
     return np.frombuffer(joined, dtype="<i8").astype(np.int64)
 
 
-def _sorted_unique(values: TokenHashes) -> TokenHashes:
-    # Sort and drop repeats; cheaper than np.unique for the few hundred values of a message.
+def sorted_unique(values: TokenHashes) -> TokenHashes:
+    """Sort in place and drop repeats; cheaper than np.unique for a message's few hundred."""
     values.sort()
     if len(values) > 1:
         keep = np.empty(len(values), dtype=bool)
@@ -110,5 +118,5 @@ def message_digest(hashes: TokenHashes) -> bytes:
         Sorting and de-duplicating first makes it independent of order; since the tokenizer
         never reads our own header fields, adding them does not change the identity.
     """
-    canonical = _sorted_unique(np.array(hashes, dtype=np.int64)).astype("<i8")
+    canonical = sorted_unique(np.array(hashes, dtype=np.int64)).astype("<i8")
     return blake2b(canonical.tobytes(), digest_size=16).digest()

@@ -28,18 +28,24 @@ from dataclasses import asdict, dataclass
 from hashlib import blake2b
 from typing import Final
 
+import numpy as np
+
 from .charsets import decode_bytes
 from .domains import is_ip, registrable, text_hosts, url_host
-from .hashing import hash_tokens
+from .hashing import hash_tokens, sorted_unique, token_hashes
 from .header_tokens import bucket, sender_tokens, structure_tokens, subject_tokens
 from .html_text import parse_html
 from .mime import Limits, Part, Walk, walk
 from .normalize import clean_text
+from .pairs import osb_pair_hashes
 from .types import OWN_HEADER_PREFIX, TokenHashes
 from .words import osb_pairs, split_words
 
-TOKENIZER_VERSION: Final = 1
-"""Bumped whenever a change makes the same message and options give different tokens."""
+TOKENIZER_VERSION: Final = 2
+"""Bumped whenever a change makes the same message and options give different tokens.
+
+2: bigram hashes are mixed from their words' hashes (``pairs.py``), no longer BLAKE2b of the
+pair string; single tokens hash as in 1, so only bigram models differ."""
 
 _BODY_TYPES: Final = frozenset({"text/plain", "text/html"})
 _MAX_EXT: Final = 8
@@ -122,11 +128,13 @@ def tokens(raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS) -> list[str]
         Non-empty token strings.  Never raises: a failure inside yields "mime:failed" and
         whatever tokens were made before it.
     """
-    found: dict[str, None] = {}
-    try:
-        _collect(bytes(raw), options, found)
-    except Exception:  # the contract is "never raises"; the marker token records the failure
-        found["mime:failed"] = None
+    found, sequences = _gather(raw, options)
+    if options.bigrams:  # after all single tokens, so bigrams never crowd them out
+        for sequence in sequences:
+            if len(found) >= options.max_tokens:
+                break
+            pairs = osb_pairs(sequence, options.bigram_window)
+            found.update(dict.fromkeys(pairs[: options.max_tokens * 2]))
     return list(found)[: options.max_tokens]
 
 
@@ -136,12 +144,47 @@ def tokenize(raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS) -> TokenHa
     Returns
     -------
     TokenHashes, shape (n,)
-        ``hash_tokens(tokens(raw, options))``: unique int64 hashes sorted ascending.
+        ``hash_tokens(tokens(raw, options))``: unique int64 hashes sorted ascending.  With
+        bigrams the pairs are hashed from their words' hashes (``pairs.py``) without making
+        their strings; the result is the same.
     """
-    return hash_tokens(tokens(raw, options))
+    if not options.bigrams:
+        return hash_tokens(tokens(raw, options))
+    found, sequences = _gather(raw, options)
+    singles = list(found)[: options.max_tokens]
+    room = options.max_tokens - len(singles)
+    parts = [hash_tokens(singles)]
+    if room > 0 and sequences:
+        parts.append(_pair_hashes(sequences, options.bigram_window, room, options.max_tokens * 2))
+    return sorted_unique(np.concatenate(parts))
 
 
-def _collect(raw: bytes, options: TokenizerOptions, found: dict[str, None]) -> None:
+def _pair_hashes(sequences: list[list[str]], window: int, room: int, per_part: int) -> TokenHashes:
+    """The first ``room`` distinct pair hashes in the order ``tokens`` adds pair strings."""
+    pairs = np.concatenate(
+        [osb_pair_hashes(token_hashes(words), window)[:per_part] for words in sequences]
+    )
+    distinct, first = np.unique(pairs, return_index=True)
+    if len(distinct) <= room:
+        return distinct
+    return pairs[np.sort(first)[:room]]
+
+
+def _gather(raw: bytes, options: TokenizerOptions) -> tuple[dict[str, None], list[list[str]]]:
+    """Single tokens in order of first appearance, and each text part's words (for bigrams)."""
+    found: dict[str, None] = {}
+    sequences: list[list[str]] = []
+    try:
+        _collect(bytes(raw), options, found, sequences)
+    except Exception:  # the contract is "never raises"; the marker token records the failure
+        found["mime:failed"] = None
+        sequences.clear()
+    return found, sequences
+
+
+def _collect(
+    raw: bytes, options: TokenizerOptions, found: dict[str, None], sequences: list[list[str]]
+) -> None:
     if len(raw) > options.max_message_bytes:
         raw = raw[: options.max_message_bytes]
         found["mime:limit-message"] = None
@@ -150,17 +193,10 @@ def _collect(raw: bytes, options: TokenizerOptions, found: dict[str, None]) -> N
     for family in (subject_tokens, sender_tokens, structure_tokens):
         found.update(dict.fromkeys(family(tree.top)))
     found.update(dict.fromkeys(_structure(tree)))
-    sequences: list[list[str]] = []
     for part in tree.leaves:
         if len(found) >= options.max_tokens:
             break
         sequences.append(_part_tokens(part, options, found)[: options.max_tokens])
-    if options.bigrams:  # after all single tokens, so bigrams never crowd them out
-        for sequence in sequences:
-            if len(found) >= options.max_tokens:
-                break
-            pairs = osb_pairs(sequence, options.bigram_window)
-            found.update(dict.fromkeys(pairs[: options.max_tokens * 2]))
 
 
 def _structure(tree: Walk) -> list[str]:

@@ -1,0 +1,126 @@
+"""Hashes of orthogonal sparse bigrams, mixed from the hashes of their two words.
+
+A message has several times more word pairs than words, and most pairs were never seen
+before, so a BLAKE2b per pair string (about a microsecond each, plus building the string) was
+most of the tokenizing cost with bigrams.  A pair's hash is instead mixed from the two words'
+64-bit hashes and the distance with integer arithmetic, vectorised in numpy; the same mix in
+plain Python integers gives ``token_hash`` of a pair's text (``"osb:<k>:<earlier> <later>"``),
+so a verdict can still be explained token by token.
+
+The mixing function is the output step of Vigna's splitmix64 generator (public domain, 2015):
+an invertible map of 64-bit words in which every input bit reaches every output bit.
+"""
+
+from __future__ import annotations
+
+from typing import Final
+
+import numpy as np
+import numpy.typing as npt
+
+from .types import TokenHashes
+
+PAIR_PREFIX: Final = "osb:"
+_MASK: Final = (1 << 64) - 1
+# splitmix64's increment and multipliers (constants from memory; tests/model/test_pairs.py
+# checks them against the generator's first output from seed 0).
+GOLDEN: Final = 0x9E3779B97F4A7C15
+_MIX1: Final = 0xBF58476D1CE4E5B9
+_MIX2: Final = 0x94D049BB133111EB
+
+
+def mix64(values: npt.NDArray[np.uint64]) -> npt.NDArray[np.uint64]:
+    """splitmix64's output function, elementwise (a bijection of 64-bit words).
+
+    Parameters
+    ----------
+    values : ndarray of uint64, shape (n,)
+
+    Returns
+    -------
+    ndarray of uint64, shape (n,)
+        Arithmetic wraps modulo 2**64.
+    """
+    z = values ^ (values >> np.uint64(30))
+    z = z * np.uint64(_MIX1)
+    z ^= z >> np.uint64(27)
+    z = z * np.uint64(_MIX2)
+    result: npt.NDArray[np.uint64] = z ^ (z >> np.uint64(31))
+    return result
+
+
+def mix64_int(value: int) -> int:
+    """`mix64` of one unsigned 64-bit value, in plain Python integers."""
+    z = value & _MASK
+    z = ((z ^ (z >> 30)) * _MIX1) & _MASK
+    z = ((z ^ (z >> 27)) * _MIX2) & _MASK
+    return z ^ (z >> 31)
+
+
+def pair_hashes(
+    earlier: TokenHashes, later: TokenHashes, distance: npt.NDArray[np.int64]
+) -> TokenHashes:
+    """Hashes of ordered word pairs with ``distance`` words between them.
+
+    ``mix64(mix64(earlier + (distance + 1) * GOLDEN) ^ later)`` on the words' hashes read as
+    unsigned.  For one (earlier, distance) the later word goes through a bijection, so pairs
+    differing only in the later word never collide; any other two pairs collide with
+    probability about 2**-64.  The order of the words matters.
+
+    Parameters
+    ----------
+    earlier, later : TokenHashes, shape (n,)
+        ``token_hash`` of each pair's two words (signed int64).
+    distance : ndarray of int64, shape (n,)
+        Words between them, k >= 0.
+
+    Returns
+    -------
+    TokenHashes, shape (n,)
+        Signed int64, in the order given (not sorted, repeats kept).
+    """
+    first = np.asarray(earlier, dtype=np.int64).view(np.uint64)
+    second = np.asarray(later, dtype=np.int64).view(np.uint64)
+    steps = (np.asarray(distance, dtype=np.int64) + 1).view(np.uint64)
+    return mix64(mix64(first + steps * np.uint64(GOLDEN)) ^ second).view(np.int64)
+
+
+def pair_hash_int(earlier: int, later: int, distance: int) -> int:
+    """`pair_hashes` of one pair in plain Python integers; signed result."""
+    inner = mix64_int((earlier & _MASK) + (distance + 1) * GOLDEN)
+    value = mix64_int(inner ^ (later & _MASK))
+    return value - (1 << 64) if value >> 63 else value
+
+
+def split_pair(token: str) -> tuple[int, str, str] | None:
+    """``(k, earlier, later)`` of an ``"osb:<k>:<earlier> <later>"`` token, else None."""
+    if not token.startswith(PAIR_PREFIX):
+        return None
+    distance, colon, words = token[len(PAIR_PREFIX) :].partition(":")
+    earlier, space, later = words.partition(" ")
+    if not (colon and space and distance.isdigit() and earlier and later) or " " in later:
+        return None
+    return int(distance), earlier, later
+
+
+def osb_pair_hashes(word_hashes: TokenHashes, window: int) -> TokenHashes:
+    """Pair hashes of a word sequence, in the order of ``words.osb_pairs``.
+
+    Parameters
+    ----------
+    word_hashes : TokenHashes, shape (L,)
+        ``token_hash`` of each word in text order, repeats kept.
+    window : int
+        OSB window N >= 2; each word pairs with the N - 1 words before it.
+
+    Returns
+    -------
+    TokenHashes, shape (<= L * (N - 1),)
+        By later word, nearest earlier word first; repeats kept.
+    """
+    hashes = np.asarray(word_hashes, dtype=np.int64)
+    span = np.arange(window - 1)
+    earlier_at = np.arange(len(hashes))[:, None] - 1 - span[None, :]  # (L, N-1)
+    valid = earlier_at >= 0
+    rows, cols = np.nonzero(valid)  # row-major: by later word, then distance
+    return pair_hashes(hashes[earlier_at[rows, cols]], hashes[rows], span[cols])
