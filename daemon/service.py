@@ -27,6 +27,7 @@ import weakref
 from pathlib import Path
 from typing import Any
 
+from mailweir.daemon import verdict_journal
 from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource, validate
 from mailweir.daemon.digest import DigestSchedule
 from mailweir.daemon.errors import ConfigError
@@ -66,8 +67,8 @@ class Service:
         self.observing: Observing | None = None
         self.smtp_server: Any = None
         self._signals: list[signal.Signals] = []
-
         self.reload_refusal = ""  # why the last refused reload was refused
+
     # -- lifecycle -----------------------------------------------------------------------
 
     async def startup(self) -> None:
@@ -85,8 +86,8 @@ class Service:
                 self.feedback,
             )
             self.observing.http.quarantine = self.quarantine
-            await self.observing.start()
             self.observing.http.reload = self.reload_problem
+            await self.observing.start()
         except BaseException:
             if self.smtp_server is not None:
                 self.smtp_server.close()
@@ -159,8 +160,8 @@ class Service:
             else:
                 validate(settings)
         except ConfigError as exc:
-            log.error("reload refused, keeping the running configuration: %s", exc)
             self.reload_refusal = str(exc)
+            log.error("reload refused, keeping the running configuration: %s", exc)
             self.metrics.config_reload(applied=False)
             return False
         changed = _restart_only_changes(self.settings, settings)
@@ -198,11 +199,11 @@ class Service:
         self.metrics.config_reload(applied=True)
         return True
 
-    def install_signal_handlers(self) -> None:
     def reload_problem(self) -> str | None:
         """:meth:`reload` for the HTTP side: None when applied, else why it was refused."""
         return None if self.reload() else self.reload_refusal
 
+    def install_signal_handlers(self) -> None:
         loop = asyncio.get_running_loop()
         for sig, action in (
             (signal.SIGTERM, self.stop),
@@ -253,8 +254,9 @@ class Service:
             self.store,
             self.settings.log.verdict_batch_seconds,
             retention_days=self.settings.log.verdict_retention_days,
+            journal_dir=self.settings.state_dir / verdict_journal.FOLDER,
         )
-        await self.verdict_log.start()
+        await self.verdict_log.start()  # replays what a killed predecessor left in the journal
         self.metrics.watch_verdict_log(self.verdict_log)
         self.upkeep = Upkeep(self.store, self.settings.upkeep, self.metrics.upkeep)
         await self.upkeep.start()

@@ -8,6 +8,10 @@ so no reply ever waits on this database write.
 A failed write (a locked database) keeps the batch and tries again next round; only past
 ``max_pending`` records are the oldest dropped, and every drop is logged and counted, so a long
 database outage costs log lines, never memory or mail.
+
+With a ``journal_dir``, :meth:`add` first appends the record to the verdict journal
+(daemon/verdict_journal.py), so a record still queued when the process is killed is written
+at the next start instead of being lost.
 """
 
 from __future__ import annotations
@@ -17,7 +21,11 @@ import collections
 import contextlib
 import logging
 import time
+from pathlib import Path
 from typing import Any
+
+from mailweir.daemon import verdict_journal
+from mailweir.daemon.verdict_journal import VerdictJournal
 
 log = logging.getLogger("mailweir.verdict_log")
 
@@ -38,13 +46,19 @@ class VerdictLog:
         *,
         retention_days: float | None = None,
         expire_every: float = EXPIRE_EVERY,
+        journal_dir: Path | None = None,
     ) -> None:
         """``retention_days``: token hashes older than this are erased from the log (the
-        verdict rows stay, for the rates); checked at start and every ``expire_every`` s."""
+        verdict rows stay, for the rates); checked at start and every ``expire_every`` s.
+        ``journal_dir``: where the verdict journal lives; None: no journal."""
         self._store = store
         self._batch_seconds = batch_seconds
         self._batch_size = batch_size
-        self._pending: collections.deque[Any] = collections.deque()
+        # (journal segment, record), in the order added; the segments never decrease.
+        self._pending: collections.deque[tuple[int, Any]] = collections.deque()
+        self._writing: list[int] = []  # the first segment of each batch being written
+        self._journal_dir = journal_dir
+        self._journal: VerdictJournal | None = None
         self._max_pending = max_pending
         self._wake = asyncio.Event()
         self._task: asyncio.Task[None] | None = None
@@ -55,23 +69,28 @@ class VerdictLog:
         self.written = 0
         self.dropped = 0
         self.write_failures = 0
+        self.journal_failures = 0
+        self.replayed = 0  # rows written at start from the previous run's journal
 
     @property
     def pending(self) -> int:
         return len(self._pending)
 
     def add(self, record: Any) -> None:
-        """Queue one record; never blocks and never raises."""
+        """Journal and queue one record; never waits on the database and never raises."""
+        segment = self._append_to_journal(record)
         if len(self._pending) >= self._max_pending:
             self._pending.popleft()
             self.dropped += 1
             if self.dropped == 1 or self.dropped % 1000 == 0:
                 log.error("verdict log backlog full: %d records dropped so far", self.dropped)
-        self._pending.append(record)
+        self._pending.append((segment, record))
         if len(self._pending) >= self._batch_size:
             self._wake.set()
 
     async def start(self) -> None:
+        if self._journal_dir is not None and self._journal is None:
+            await self._open_journal(self._journal_dir)
         if self._task is None:
             self._task = asyncio.create_task(self._run(), name="mailweir-verdict-log")
 
@@ -83,11 +102,19 @@ class VerdictLog:
             with contextlib.suppress(asyncio.CancelledError):
                 await self._task
             self._task = None
+        unwritten = 0
         while self._pending:
             if not await self._write_batch():
-                log.error("verdict log closed with %d records unwritten", len(self._pending))
-                self.dropped += len(self._pending)
+                unwritten = len(self._pending)
+                kept = " (kept in the journal for the next start)" if self._journal else ""
+                log.error("verdict log closed with %d records unwritten%s", unwritten, kept)
+                self.dropped += unwritten
                 self._pending.clear()
+        if self._journal is not None:
+            if not unwritten:
+                self._release_journal()  # everything is written: every segment goes
+            self._journal.close()
+            self._journal = None
 
     async def flush(self) -> None:
         """Write what is queued now (tests, and before a planned pause)."""
@@ -120,8 +147,10 @@ class VerdictLog:
 
     async def _write_batch(self) -> bool:
         batch = [self._pending.popleft() for _ in range(min(self._batch_size, len(self._pending)))]
+        first = batch[0][0] if batch else 0
+        self._writing.append(first)
         try:
-            await asyncio.to_thread(self._store.record_verdicts, batch)
+            await asyncio.to_thread(self._store.record_verdicts, [r for _, r in batch])
         except Exception:
             self.write_failures += 1
             log.exception("writing %d verdict records failed; will retry", len(batch))
@@ -130,5 +159,63 @@ class VerdictLog:
                 self._pending.popleft()
                 self.dropped += 1
             return False
+        finally:
+            self._writing.remove(first)
         self.written += len(batch)
+        self._release_journal()
         return True
+
+    # -- the journal ------------------------------------------------------------------------
+
+    async def _open_journal(self, folder: Path) -> None:
+        """Open the journal and write what the previous run left in it.  Mail comes first: a
+        journal that cannot be used is logged and the daemon runs without one."""
+        journal = VerdictJournal(folder)
+        try:
+            journal.open()
+        except OSError as exc:
+            log.error("verdict journal in %s unusable (%s); running without it", folder, exc)
+            return
+        self._journal = journal
+        if not journal.leftovers:
+            return
+        try:
+            found, written, unreadable = await asyncio.to_thread(
+                verdict_journal.replay, self._store, journal.leftovers
+            )
+        except Exception:
+            log.exception("replaying the verdict journal failed; kept for the next start")
+            return
+        journal.drop_leftovers()
+        self.replayed += written
+        log.info(
+            "verdict journal: %d records left by the last run, %d of them written now (the "
+            "rest were in the log already), %d unreadable lines skipped",
+            found,
+            written,
+            unreadable,
+        )
+
+    def _append_to_journal(self, record: Any) -> int:
+        if self._journal is None:
+            return 0
+        try:
+            return self._journal.append(verdict_journal.encode(record))
+        except Exception as exc:
+            self.journal_failures += 1
+            if self.journal_failures == 1 or self.journal_failures % 1000 == 0:
+                log.error(
+                    "verdict journal write failed (%d so far): %s", self.journal_failures, exc
+                )
+            return self._journal.current
+
+    def _release_journal(self) -> None:
+        """Delete the journal segments whose records all left the queue."""
+        if self._journal is None:
+            return
+        heads = self._writing + ([self._pending[0][0]] if self._pending else [])
+        oldest = min(heads, default=None)
+        try:
+            self._journal.release(oldest)
+        except OSError as exc:
+            log.error("deleting written verdict journal segments failed: %s", exc)

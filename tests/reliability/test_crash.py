@@ -6,6 +6,11 @@ each message, so the kill lands in the middle of DATA for several connections at
 Oracle: everything the upstream got 250 for is at the next hop; everything else it still
 holds, and after the restart its retry delivers it.  The SQLite file survives the kill
 (PRAGMA integrity_check says "ok", sqlite.org/pragma.html#pragma_integrity_check).
+
+The verdict log writes its rows in batches (every 5 s here, so the kill surely finds rows
+queued); the verdict journal (daemon/verdict_journal.py) must bring every one of them back at
+the restart: after it, each message the upstream got 250 for before the kill has its row,
+found by the tracking id in the copy the next hop received, and no tracking id has two rows.
 """
 
 from __future__ import annotations
@@ -14,6 +19,7 @@ import asyncio
 import contextlib
 import os
 import random
+import re
 import signal
 import sqlite3
 import subprocess
@@ -28,6 +34,7 @@ from reliability_helpers import (
     Ledger,
     check_nothing_lost,
     load_message,
+    message_id,
     trained_store,
     upstream,
     verdict_rows,
@@ -37,6 +44,8 @@ from smtp_helpers import free_port
 COUNT = 200
 CLIENTS = 8
 START_SECONDS = 60.0  # the most a cold start (store, process pool) may take before we give up
+_TRACKING_ID = re.compile(rb"^Mailweir-Id:[ \t]*(\S+)", re.IGNORECASE | re.MULTILINE)
+_REPLAYED = re.compile(r"verdict journal: (\d+) records left by the last run, (\d+) of them")
 
 
 def write_config(tmp_path: Path, sink_port: int, smtp_port: int) -> Path:
@@ -67,7 +76,7 @@ database = "{tmp_path / "model.sqlite3"}"
 listen = "{LOCAL}:{free_port()}"
 
 [log]
-verdict_batch_seconds = 0.2
+verdict_batch_seconds = 5
 """,
         encoding="utf-8",
     )
@@ -99,6 +108,31 @@ def daemon_process(config: Path, log: Path) -> Iterator[subprocess.Popen[bytes]]
         # Whatever the daemon left behind in its own process group (pool workers).
         with contextlib.suppress(ProcessLookupError):
             os.killpg(process.pid, signal.SIGKILL)
+
+
+def tracking_ids(sink: FaultyNextHop) -> dict[str, set[str]]:
+    """Message id -> the tracking ids of its delivered copies.  A message has two copies when
+    the kill cut its first one off after the next hop took it: the upstream never heard 250
+    for that copy (its verdict may be gone with the process) and sent the message again."""
+    found: dict[str, set[str]] = {}
+    for delivery in sink.deliveries:
+        match = _TRACKING_ID.search(delivery.content.split(b"\r\n\r\n", 1)[0])
+        if match:
+            key = message_id(delivery.content) or "?"
+            found.setdefault(key, set()).add(match.group(1).decode("ascii"))
+    return found
+
+
+def unlogged(accepted: set[str], copies: dict[str, set[str]], logged: set[str]) -> set[str]:
+    """The accepted messages none of whose copies has a verdict row: the 250 copy has none."""
+    return {key for key in accepted if not copies.get(key, set()) & logged}
+
+
+def logged_tracking_ids(database: Path) -> tuple[set[str], int]:
+    """The tracking ids in the verdict log, and how many rows it has."""
+    with sqlite3.connect(database) as conn:
+        ids = [row[0] for row in conn.execute("SELECT tracking_id FROM weir_verdict")]
+    return set(ids), len(ids)
 
 
 async def wait_listening(port: int, process: subprocess.Popen[bytes], log: Path) -> None:
@@ -151,6 +185,11 @@ async def test_crash_sigkill_mid_transaction_loses_nothing(
     rows_after_kill = verdict_rows(tmp_path / "model.sqlite3")
     with sqlite3.connect(tmp_path / "model.sqlite3") as conn:
         assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    before_kill = ledger.accepted()
+    assert before_kill <= tracking_ids(sink).keys()  # every accepted copy carries its id
+    logged_at_kill = logged_tracking_ids(tmp_path / "model.sqlite3")[0]
+    missing_at_kill = unlogged(before_kill, tracking_ids(sink), logged_at_kill)
+    assert missing_at_kill, "the kill found no verdict row still queued: nothing to prove"
 
     sink.behaviour.delay_at_data = 0.0
     with daemon_process(config, log) as second:
@@ -162,9 +201,19 @@ async def test_crash_sigkill_mid_transaction_loses_nothing(
     assert second.returncode == 0, log.read_text(errors="replace")
     figures = check_nothing_lost(messages, ledger, sink)
     assert figures["accepted"] == COUNT, figures
+    logged, rows = logged_tracking_ids(tmp_path / "model.sqlite3")
+    lost_rows = unlogged(before_kill, tracking_ids(sink), logged)
+    assert not lost_rows, f"verdict rows lost with the kill: {sorted(lost_rows)[:5]}"
+    assert rows == len(logged)  # one row per tracking id (it is the table's key)
+    assert not unlogged(ledger.accepted(), tracking_ids(sink), logged)  # the second run's too
+    replayed = _REPLAYED.search(log.read_text(errors="replace"))
+    assert replayed is not None, "the restart did not replay the journal"
     print(
         f"\nFAULT | daemon SIGKILLed mid-transaction, restarted | {at_kill} | "
         f"in_flight_at_kill={in_flight_at_kill} | after_retry_accepted={figures['accepted']} | "
         f"duplicated by the retry={figures['duplicates_on_retry']} | "
-        f"verdict rows lost with the kill={at_kill['accepted'] - rows_after_kill}"
+        f"verdict rows: {rows_after_kill} written at the kill, {len(missing_at_kill)} of the "
+        f"{len(before_kill)} accepted messages' rows still queued then | replayed at restart: "
+        f"{replayed.group(1)} journal records, {replayed.group(2)} rows written | "
+        f"lost after restart={len(lost_rows)} | rows={rows} for {len(logged)} tracking ids"
     )
