@@ -17,7 +17,8 @@ from typing import Any
 import pytest
 
 from mailweir.daemon.metrics import Metrics
-from mailweir.daemon.settings import HttpSettings
+from mailweir.daemon.quarantine import Quarantine, QuarantineCollector
+from mailweir.daemon.settings import HttpSettings, Settings
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
 ALERTS = DEPLOY / "prometheus" / "alerts.yml"
@@ -36,6 +37,7 @@ ALERT_NAMES = {
     "MailweirVerdictLogFailing",
     "MailweirReportsStale",
     "MailweirUpkeepFailing",
+    "MailweirQuarantineNeedsAttention",
 }
 INSTANCE = {"instance": "mx1.harbourlane.example:7180", "job": "mailweir"}
 
@@ -62,6 +64,15 @@ def sample_names(metrics: Metrics) -> dict[str, set[str]]:
     return names
 
 
+@pytest.fixture
+def daemon_metrics(tmp_path: Path) -> Metrics:
+    """Every family a running daemon serves: Metrics plus the quarantine's own collector."""
+    metrics = Metrics()
+    quarantine = Quarantine(Settings(state_dir=tmp_path))
+    metrics.registry.register(QuarantineCollector(quarantine))
+    return metrics
+
+
 def deploy_text() -> str:
     return ALERTS.read_text() + SCRAPE.read_text() + DASHBOARD.read_text()
 
@@ -69,15 +80,15 @@ def deploy_text() -> str:
 # -- coverage both ways -----------------------------------------------------------------------
 
 
-def test_deploy_mentions_every_metric() -> None:
+def test_deploy_mentions_every_metric(daemon_metrics: Metrics) -> None:
     text = deploy_text()
     used = set(re.findall(r"\bmailweir_[a-z0-9_]+", text))
-    missing = [name for name, forms in sample_names(Metrics()).items() if not forms & used]
+    missing = [name for name, forms in sample_names(daemon_metrics).items() if not forms & used]
     assert missing == [], f"metrics neither on the dashboard nor in an alert: {missing}"
 
 
-def test_deploy_uses_only_metrics_that_exist() -> None:
-    known = set().union(*sample_names(Metrics()).values())
+def test_deploy_uses_only_metrics_that_exist(daemon_metrics: Metrics) -> None:
+    known = set().union(*sample_names(daemon_metrics).values())
     used = set(re.findall(r"\bmailweir_[a-z0-9_]+", deploy_text()))
     assert sorted(used - known) == []
 
@@ -309,6 +320,33 @@ def test_rule_upkeep_failing_needs_the_retry_to_fail_too(tmp_path: Path) -> None
                 "interval": "10m",
                 "input_series": [series(name, "0x6 1x6 2x30", task="tidy")],
                 "alert_rule_test": [quiet(alert, "1h30m"), fires(alert, "2h30m", **labels)],
+            },
+        ],
+    )
+
+
+@needs_promtool
+def test_rule_quarantine_needs_attention_past_retention_or_failed_copies(tmp_path: Path) -> None:
+    past, failed = "mailweir_quarantine_past_retention", "mailweir_quarantine_hold_failures_total"
+    alert = "MailweirQuarantineNeedsAttention"
+    labels = {"severity": "info", "instance": INSTANCE["instance"]}
+    run_rule_tests(
+        tmp_path,
+        [
+            {  # held mail within retention and every copy written: quiet
+                "interval": "1m",
+                "input_series": [series(past, "0x240"), series(failed, "0x240")],
+                "alert_rule_test": [quiet(alert, "4h")],
+            },
+            {  # two messages pass retention at 1h; the alert waits ten minutes, then fires
+                "interval": "1m",
+                "input_series": [series(past, "0x60 2x120"), series(failed, "0x180")],
+                "alert_rule_test": [quiet(alert, "1h5m"), fires(alert, "1h30m", **labels)],
+            },
+            {  # copies not written (451 upstream) from 1h10m on
+                "interval": "1m",
+                "input_series": [series(past, "0x180"), series(failed, "0x69 1 2 3 4 5 6x110")],
+                "alert_rule_test": [quiet(alert, "1h15m"), fires(alert, "2h", **labels)],
             },
         ],
     )
