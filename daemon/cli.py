@@ -16,6 +16,7 @@ from mailweir.daemon import (
     check,
     exchange_commands,
     learning,
+    margin,
     quarantine_commands,
     upkeep,
 )
@@ -33,7 +34,9 @@ Handler = Callable[[argparse.Namespace], int]
 
 def cmd_train(args: argparse.Namespace) -> int:
     label = SPAM if args.spam else HAM
-    model = learning.open_model(args.db, bigrams=args.bigrams, method=args.method)
+    model = learning.open_model(
+        args.db, bigrams=args.bigrams, method=args.method, margin=args.margin
+    )
     try:
         progress = learning.Progress("trained", None if not args.json else False)
         summary = learning.train_from(
@@ -77,7 +80,9 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
         help="learn messages as spam or ham",
         description="Learn messages from mbox files, Maildir folders, folders of .eml files, "
         "single files or standard input (-). A message trained before is skipped; one trained "
-        "the other way is moved.",
+        "the other way is moved. By default a message the model already judges right with at "
+        "least the model's training margin (log-odds, 10 unless set when the model was made) "
+        "is not trained and is counted as confident.",
     )
     kind = train.add_mutually_exclusive_group(required=True)
     kind.add_argument("--spam", action="store_true", help="the messages are spam")
@@ -91,6 +96,7 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
         help="orthogonal sparse bigrams; fixed when a model is created",
     )
     train.add_argument("--method", help="scoring method to stamp on a new model")
+    _margin_arguments(train, learning.STAMPED, "the model's own, stamped when it was made")
     db_argument(train)
     json_argument(train)
     train.set_defaults(handler=cmd_train)
@@ -104,6 +110,32 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
     db_argument(untrain)
     json_argument(untrain)
     untrain.set_defaults(handler=cmd_untrain)
+
+
+def _margin_value(text: str) -> float | None:
+    try:
+        return margin.parse_margin(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _margin_arguments(parser: argparse.ArgumentParser, default: object, what: str) -> None:
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument(
+        "--margin",
+        type=_margin_value,
+        default=default,
+        metavar="LOGODDS",
+        help="train only messages misjudged or judged with less than this log-odds margin "
+        f"(default: {what}); on a new model it becomes the model's own",
+    )
+    group.add_argument(
+        "--every-message",
+        dest="margin",
+        action="store_const",
+        const=None,
+        help="train every message, however sure the model already is",
+    )
 
 
 # -- score --------------------------------------------------------------------------------
@@ -184,7 +216,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         bigrams=args.bigrams,
         ignore_headers=tuple(p.lower() for p in args.ignore_header),
         database=args.replay_db,
-        train_only_on_errors_margin=args.thick_threshold,
+        train_margin=args.margin,
     )
     progress = learning.Progress("replayed", None if not args.json else False)
     result = replay.replay(corpus, plan, progress=progress)
@@ -206,6 +238,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         "tokens": result.tokens,
         "database_bytes": result.database_bytes,
         "bigrams": args.bigrams,
+        "train_margin": args.margin,
         "warmup": args.warmup,
         "methods": figures,
     }
@@ -262,13 +295,7 @@ def _add_replay_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]
         metavar="PREFIX",
         help="drop header fields whose name starts with PREFIX before tokenizing (repeatable)",
     )
-    rp.add_argument(
-        "--thick-threshold",
-        type=float,
-        default=None,
-        metavar="LOGODDS",
-        help="online: train only on errors and messages within this log-odds margin",
-    )
+    _margin_arguments(rp, margin.DEFAULT_TRAIN_MARGIN, "as mailweir train on a new model")
     rp.add_argument("--cutoff", type=float, action="append", help="cut-offs to report")
     rp.add_argument("--target-fpr", type=float, default=0.001)
     rp.add_argument("--warmup", type=int, default=0, help="leave the first N out of figures")

@@ -2,29 +2,58 @@
 
 A model database remembers its tokenizer settings and scoring method (store meta keys
 ``tokenizer`` and ``method``): hashes made with other settings would silently miss, so every
-command and the daemon read them back instead of trusting their own flags.
+command and the daemon read them back instead of trusting their own flags.  It also remembers
+the training margin chosen when it was made (``train_margin``, see ``margin.py``), which bulk
+training uses unless told otherwise.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import enum
 import json
 import sys
 import time
 from collections import Counter
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
+from typing import Final
 
+from mailweir.daemon.margin import (
+    DEFAULT_TRAIN_MARGIN,
+    META_MARGIN,
+    PendingCounts,
+    margin_text,
+    parse_margin,
+    should_train,
+)
 from mailweir.daemon.sources import read_messages
 from mailweir.model.hashing import hash_tokens, message_digest
 from mailweir.model.nb import NaiveBayes, Score, make_scorer
-from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokenize, tokens
+from mailweir.model.tokenize import (
+    DEFAULT_OPTIONS,
+    TOKENIZER_VERSION,
+    TokenizerOptions,
+    tokenize,
+    tokens,
+)
 from mailweir.model.types import TokenHashes
 from mailweir.store import ModelStore, TrainResult
 
 DEFAULT_METHOD = "fisher"
 META_TOKENIZER = "tokenizer"
 META_METHOD = "method"
+
+
+class Stamped(enum.Enum):
+    """``open_model(margin=STAMPED)``: use the model's own margin."""
+
+    MARGIN = "the model's own margin"
+
+
+STAMPED: Final = Stamped.MARGIN
+VERSION_KEY = "tokenizer_version"  # in the tokenizer stamp
+PAIR_HASHES_SINCE = 2  # bigram hashes mixed from word hashes (model/pairs.py)
 
 
 class ModelMismatch(Exception):
@@ -36,20 +65,32 @@ class OpenModel:
     store: ModelStore
     options: TokenizerOptions
     scorer: NaiveBayes
+    margin: float | None = DEFAULT_TRAIN_MARGIN  # None: train every message
 
     def close(self) -> None:
         self.store.close()
 
 
 def options_to_json(options: TokenizerOptions) -> str:
-    return json.dumps(dataclasses.asdict(options), sort_keys=True)
+    stamp = {**dataclasses.asdict(options), VERSION_KEY: TOKENIZER_VERSION}
+    return json.dumps(stamp, sort_keys=True)
 
 
 def options_from_json(text: str) -> TokenizerOptions:
+    """The stamped options; refuses a bigram model whose pair hashes this version cannot make."""
     values = json.loads(text)
     fields = {f.name for f in dataclasses.fields(TokenizerOptions)}
     known = {k: tuple(v) if isinstance(v, list) else v for k, v in values.items() if k in fields}
-    return TokenizerOptions(**known)
+    options = TokenizerOptions(**known)
+    version = int(values.get(VERSION_KEY, 1))  # stamps before version 2 carried no version
+    if options.bigrams and version < PAIR_HASHES_SINCE:
+        raise ModelMismatch(
+            f"this model's bigram counts were made by tokenizer version {version}, whose pair "
+            f"hashes version {TOKENIZER_VERSION} no longer makes, so they would never be found; "
+            "train a new database (mailweir train --bigrams --db NEW ...) from the same mail "
+            "(models without bigrams are not affected)"
+        )
+    return options
 
 
 def open_model(
@@ -58,21 +99,38 @@ def open_model(
     bigrams: bool | None = None,
     method: str | None = None,
     ignore_headers: tuple[str, ...] = (),
+    margin: float | Stamped | None = STAMPED,
     **store_options: float,
 ) -> OpenModel:
-    """Open (and on first use, stamp) a model database; flags must agree with its stamp."""
+    """Open (and on first use, stamp) a model database; flags must agree with its stamp.
+
+    ``margin`` is this run's training margin (a number, or None for every message); the
+    default ``STAMPED`` takes the model's own, stamped when the model is made.
+    """
     store = ModelStore.open(target, **store_options)  # type: ignore[arg-type]
     try:
+        chosen_margin = _training_margin(store, margin)
         options = _tokenizer_options(store, bigrams)
         if ignore_headers:
             options = dataclasses.replace(options, ignore_headers=ignore_headers)
         chosen = method or store.get_meta(META_METHOD) or DEFAULT_METHOD
         if store.get_meta(META_METHOD) is None:
             store.set_meta(META_METHOD, chosen)
-        return OpenModel(store, options, make_scorer(chosen))
+        return OpenModel(store, options, make_scorer(chosen), chosen_margin)
     except BaseException:
         store.close()
         raise
+
+
+def _training_margin(store: ModelStore, wanted: float | Stamped | None) -> float | None:
+    """This run's margin; a new model (no tokenizer stamp yet) records it as its own."""
+    stamped = store.get_meta(META_MARGIN)
+    # A model made before margins existed has no stamp: it trains as new models do.
+    own = DEFAULT_TRAIN_MARGIN if stamped is None else parse_margin(stamped)
+    chosen = own if isinstance(wanted, Stamped) else wanted
+    if stamped is None and store.get_meta(META_TOKENIZER) is None:
+        store.set_meta(META_MARGIN, margin_text(chosen))
+    return chosen
 
 
 def _tokenizer_options(store: ModelStore, bigrams: bool | None) -> TokenizerOptions:
@@ -146,21 +204,38 @@ def iter_sources(targets: Iterable[str], unreadable: Counter[str]) -> Iterator[t
 
 
 BATCH = 500
+SKIPPED = "confident"  # summary key: not trained, the model was already sure and right
 
 
 def train_from(
     model: OpenModel, targets: Iterable[str], label: int, *, source: str, progress: Progress
 ) -> Counter[str]:
-    """Train every message found at ``targets`` as ``label``; returns a summary by outcome."""
+    """Train the messages found at ``targets`` as ``label``; returns a summary by outcome.
+
+    With ``model.margin`` set, a message is trained only when the model, as trained by the
+    messages before it, misjudges it or gives its class less than the margin in log-odds;
+    the others are counted under ``confident``.
+    """
     summary: Counter[str] = Counter()
     failures: Counter[str] = Counter()
     batch: list[tuple[TokenHashes, int, bytes, str]] = []
+    pending = PendingCounts(model.store) if model.margin is not None else None
     for _name, raw in iter_sources(targets, failures):
         hashes = tokenize(raw, model.options)
-        batch.append((hashes, label, message_digest(hashes), source))
+        digest = message_digest(hashes)
+        if pending is not None:
+            probability, counts = pending.probability(model.scorer, hashes)
+            progress.tick()
+            if not should_train(probability, label, model.margin):
+                summary[SKIPPED] += 1
+                continue
+            pending.add(hashes, counts, label, digest)
+        batch.append((hashes, label, digest, source))
         if len(batch) >= BATCH:
-            _flush(model, batch, summary, progress)
-    _flush(model, batch, summary, progress)
+            _flush(model, batch, summary, progress if pending is None else None)
+            if pending is not None:
+                pending.clear()
+    _flush(model, batch, summary, progress if pending is None else None)
     summary["unreadable"] += sum(failures.values())
     return summary
 
@@ -169,13 +244,14 @@ def _flush(
     model: OpenModel,
     batch: list[tuple[TokenHashes, int, bytes, str]],
     summary: Counter[str],
-    progress: Progress,
+    progress: Progress | None,
 ) -> None:
     if not batch:
         return
     for outcome, n in model.store.train_many(batch).items():
         summary[outcome.name.lower()] += n
-    progress.tick(len(batch))
+    if progress is not None:
+        progress.tick(len(batch))
     batch.clear()
 
 

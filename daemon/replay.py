@@ -3,7 +3,9 @@
 Two protocols:
 
 - ``online`` (TREC spam track): messages in order; each is scored with the counts learned so far,
-  then trained on its true label -- the way the daemon learns from feedback, only faster.
+  then trained on its true label, by default only when misjudged or judged with less than the
+  training margin (``margin.py``), as ``mailweir train`` does; ``train_margin=None`` trains
+  every message.
 - ``split``: the first ``train_fraction`` of the order trains, the rest is scored without learning.
 
 Several scoring methods can be replayed at once: they read the same counts, so one pass gives a
@@ -23,6 +25,7 @@ import numpy as np
 
 from mailweir.daemon.charts import Series, line_chart
 from mailweir.daemon.learning import OpenModel, Progress, open_model
+from mailweir.daemon.margin import DEFAULT_TRAIN_MARGIN, outside_margin, should_train
 from mailweir.daemon.replay_counts import MemoryCounts
 from mailweir.daemon.sources import LabelledMessage
 from mailweir.model import evaluate
@@ -48,7 +51,8 @@ class ReplayPlan:
     bigrams: bool = False
     ignore_headers: tuple[str, ...] = ()
     database: str | None = None  # None: a throw-away SQLite file
-    train_only_on_errors_margin: float | None = None  # thick threshold, in log-odds (None: off)
+    # Log-odds margin as in `mailweir train` (None: train every message).
+    train_margin: float | None = DEFAULT_TRAIN_MARGIN
     in_memory: bool = False  # counts in numpy arrays, no database (see MemoryCounts)
 
 
@@ -115,7 +119,11 @@ def replay(
     with tempfile.TemporaryDirectory(prefix="mailweir-replay-") as scratch:
         target = plan.database or str(Path(scratch) / "replay.sqlite3")
         model = open_model(
-            target, bigrams=plan.bigrams, method=plan.methods[0], ignore_headers=plan.ignore_headers
+            target,
+            bigrams=plan.bigrams,
+            method=plan.methods[0],
+            ignore_headers=plan.ignore_headers,
+            margin=plan.train_margin,
         )
         try:
             return _run(model, corpus, plan, progress)
@@ -135,7 +143,7 @@ def replay_hashes(
     """The replay of already tokenized messages, counts in memory (for benchmarks and sweeps).
 
     ``scorers`` (default: ``plan.methods`` with default parameters) may carry parameters; with
-    a thick threshold the first one decides what is trained.  With ``log_odds`` the scores are
+    a training margin the first one decides what is trained.  With ``log_odds`` the scores are
     ``jll[spam] - jll[ham]`` instead of probabilities: the same order, but without the ties a
     probability rounded to 1.0 makes among the most certain messages.
     """
@@ -242,18 +250,15 @@ def _run(
 
 
 def _should_train(probability: float, label: int, plan: ReplayPlan) -> bool:
-    """Train on every message, or (thick threshold) only on errors and near-misses."""
-    if plan.train_only_on_errors_margin is None:
-        return True
-    p = min(max(probability, 1e-300), 1 - 1e-16)
-    return _logit_should_train(float(np.log(p) - np.log1p(-p)), label, plan)
+    """Train on every message, or only on errors and near-misses (the product's own rule)."""
+    return should_train(probability, label, plan.train_margin)
 
 
 def _logit_should_train(logit: float, label: int, plan: ReplayPlan) -> bool:
-    if plan.train_only_on_errors_margin is None:
+    if plan.train_margin is None:
         return True
     signed = logit if label == 1 else -logit  # > 0: judged the right way
-    return signed < plan.train_only_on_errors_margin
+    return outside_margin(signed, plan.train_margin)
 
 
 def write_scores(path: Path, result: MethodResult, cutoff: float) -> None:

@@ -51,9 +51,7 @@ def test_memory_counts_refuse_training_twice() -> None:
 def test_replay_in_memory_equals_the_store_replay(thick: float | None) -> None:
     corpus = _interleaved(40, 11)
     corpus.append(corpus[3])  # an exact copy: the store's ledger does not count it twice
-    plan = ReplayPlan(
-        methods=("fisher", "multinomial", "bernoulli"), train_only_on_errors_margin=thick
-    )
+    plan = ReplayPlan(methods=("fisher", "multinomial", "bernoulli"), train_margin=thick)
     stored = replay(corpus, plan, progress=Progress("replayed", enabled=False))
     memory = replay(corpus, ReplayPlan(**{**vars(plan), "in_memory": True}), progress=Progress(""))
     for a, b in zip(stored.results, memory.results, strict=True):
@@ -71,7 +69,7 @@ def test_replay_hashes_names_changed_parameters() -> None:
         hashes,
         [m.label for m in corpus],
         [m.name for m in corpus],
-        ReplayPlan(methods=()),
+        ReplayPlan(methods=(), train_margin=None),
         [make_scorer("fisher"), make_scorer("fisher", strength=0.5)],
     )
     assert [r.method for r in result.results] == ["fisher", "fisher(strength=0.5)"]
