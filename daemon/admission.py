@@ -17,12 +17,15 @@ concurrency is set where they run (Postfix: the process limit in master.cf).
 from __future__ import annotations
 
 import ipaddress
+import logging
 from collections import Counter
 from collections.abc import Iterable
 
 from mailweir.daemon import replies
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import SmtpSettings
+
+log = logging.getLogger("mailweir.smtp")
 
 IpNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
 
@@ -77,6 +80,7 @@ class Admission:
         )
         self.outside_limit = max(limit - reserved_connections, 0)
         self.by_client: Counter[str] = Counter()  # open connections per outside client
+        self.refused: Counter[str] = Counter()  # refusals by enhanced code, since start
 
     @classmethod
     def from_settings(cls, smtp: SmtpSettings) -> Admission:
@@ -96,17 +100,25 @@ class Admission:
 
         ``open_now``: the connections open before this one.  Every admitted connection is
         given back with :meth:`release` and the same ``host``."""
-        if open_now >= self.limit:
-            return replies.TOO_MANY_CONNECTIONS
         key = self._outside_key(host)
+        if open_now >= self.limit:
+            return self._refuse(host, replies.TOO_MANY_CONNECTIONS)
         if key is None:
             return None
         if self.per_client is not None and self.by_client[key] >= self.per_client:
-            return TOO_MANY_FROM_CLIENT
+            return self._refuse(host, TOO_MANY_FROM_CLIENT)
         if self.outside >= self.outside_limit:
-            return replies.TOO_MANY_CONNECTIONS
+            return self._refuse(host, replies.TOO_MANY_CONNECTIONS)
         self.by_client[key] += 1
         return None
+
+    def _refuse(self, host: str | None, reply: Reply) -> Reply:
+        # A flood would write a line per connection: the first refusal and every 1,000th.
+        self.refused[reply.enhanced] += 1
+        count = self.refused.total()
+        if count == 1 or count % 1000 == 0:
+            log.warning("connection from %s refused: %s (%d refused so far)", host, reply, count)
+        return reply
 
     def release(self, host: str | None) -> None:
         key = self._outside_key(host)

@@ -62,6 +62,7 @@ def test_admission_per_client_cap_answers_4_7_0() -> None:
     admission.release("192.0.2.7")
     assert admission.admit("192.0.2.7", 2) is None  # a slot given back can be taken again
     assert str(TOO_MANY_FROM_CLIENT).startswith("421 4.7.0 ")
+    assert admission.refused == {"4.7.0": 1}  # counted (and logged: the first, every 1,000th)
 
 
 def test_admission_outsiders_cannot_take_the_reserved_slots() -> None:
@@ -76,6 +77,7 @@ def test_admission_outsiders_cannot_take_the_reserved_slots() -> None:
     assert admission.outside == 3
     admission.release("198.51.100.25")  # a reserved client's slot is not an outsider's
     assert admission.outside == 3
+    assert admission.refused == {"4.3.2": 2}
 
 
 def test_admission_reserved_clients_have_no_per_client_cap() -> None:
