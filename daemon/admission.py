@@ -54,7 +54,10 @@ def _address(host: str | None) -> ipaddress.IPv4Address | ipaddress.IPv6Address 
 
 def client_key(host: str | None) -> str:
     """The identity the per-client cap counts: the address, or an IPv6 address's /64."""
-    address = _address(host)
+    return _key(_address(host))
+
+
+def _key(address: ipaddress.IPv4Address | ipaddress.IPv6Address | None) -> str:
     if address is None:
         return UNKNOWN_CLIENT
     if isinstance(address, ipaddress.IPv6Address):
@@ -133,4 +136,4 @@ class Admission:
         address = _address(host)
         if address is not None and any(address in net for net in self.reserved_networks):
             return None
-        return client_key(host)
+        return _key(address)
