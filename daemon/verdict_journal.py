@@ -3,9 +3,10 @@
 The verdict log writes the database in batches behind the message path, so a daemon killed
 between two batches (SIGKILL, the OOM killer) used to lose the rows still queued; the mail was
 never at risk, only its record.  Now :meth:`VerdictLog.add` first appends the record as one
-JSON line to a segment file in ``<state_dir>/verdict-journal/``.  It is a plain ``write(2)``:
-once it returns, the line is the kernel's, and it outlives the process.  It does not outlive a
-power cut (no fsync: that would put a disk flush before every 250, for a log line).
+line (see :func:`encode`) to a segment file in ``<state_dir>/verdict-journal/``.  It is a
+plain ``write(2)``: once it returns, the line is the kernel's, and it outlives the process.  It
+does not outlive a power cut (no fsync: that would put a disk flush before every 250, for a log
+line).
 
 A segment is deleted as soon as every record in it has left the queue (written, or dropped
 past the backlog limit); a new one starts past ``SEGMENT_BYTES``.  At start, the segments of
@@ -35,7 +36,7 @@ log = logging.getLogger("mailweir.verdict_log")
 FOLDER = "verdict-journal"
 SEGMENT_BYTES = 4 * 1024 * 1024  # about a thousand verdicts of a few hundred tokens each
 REPLAY_BATCH = 500
-_SEGMENT = re.compile(r"^segment-(\d{1,18})\.jsonl$")
+_SEGMENT = re.compile(r"^segment-(\d{1,18})\.journal$")
 _FIELDS = tuple(f.name for f in dataclasses.fields(VerdictRecord))
 
 
@@ -147,7 +148,7 @@ class VerdictJournal:
         self._size = 0
 
     def _path(self, number: int) -> Path:
-        return self.folder / f"segment-{number:012d}.jsonl"
+        return self.folder / f"segment-{number:012d}.journal"
 
 
 def read_segments(paths: Iterable[Path]) -> tuple[list[VerdictRecord], int]:

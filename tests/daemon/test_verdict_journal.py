@@ -63,7 +63,7 @@ class KeyedStore:
 
 
 def segments(folder: Path) -> list[str]:
-    return sorted(p.name for p in folder.glob("segment-*.jsonl"))
+    return sorted(p.name for p in folder.glob("segment-*.journal"))
 
 
 async def abandon(log: VerdictLog) -> None:
@@ -91,7 +91,7 @@ def test_journal_line_round_trips(n: int) -> None:
 
 def test_journal_torn_line_is_skipped(tmp_path: Path) -> None:
     whole = encode(record(1)) + encode(record(2))
-    path = tmp_path / "segment-000000000000.jsonl"
+    path = tmp_path / "segment-000000000000.journal"
     path.write_bytes(whole + encode(record(3))[:25])  # a power cut in the middle of a line
     assert decode(encode(record(3))[:25]) is None
     records, unreadable = read_segments([path])
@@ -109,7 +109,7 @@ def test_journal_rolls_segments_and_releases_the_written(tmp_path: Path) -> None
     assert numbers == [0, 0, 0, 1, 1, 1, 2]
     assert len(segments(tmp_path)) == 3
     journal.release(2)  # the oldest queued record is in segment 2
-    assert segments(tmp_path) == ["segment-000000000002.jsonl"]
+    assert segments(tmp_path) == ["segment-000000000002.journal"]
     journal.release(None)  # nothing queued: the current segment goes too
     assert segments(tmp_path) == []
     assert journal.append(line) == 3
@@ -123,7 +123,7 @@ def test_journal_open_lists_leftovers_and_numbers_on(tmp_path: Path) -> None:
     first.close()
     second = VerdictJournal(tmp_path)
     second.open()
-    assert [p.name for p in second.leftovers] == ["segment-000000000000.jsonl"]
+    assert [p.name for p in second.leftovers] == ["segment-000000000000.journal"]
     assert second.append(encode(record(2))) == 1
     second.close()
 
