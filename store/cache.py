@@ -64,6 +64,8 @@ class CountCache:
         counts = np.zeros((len(hashes), 2), dtype=np.int64)
         found = np.zeros(len(hashes), dtype=np.bool_)
         for run in (self._main, self._recent):
+            if not len(run.keys):
+                continue  # the recent run is often empty: skip its mask work
             idx = run.find(hashes)
             hit = idx >= 0
             counts[hit] = run.counts[idx[hit]]
