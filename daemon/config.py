@@ -424,6 +424,7 @@ def _check_admission(smtp: SmtpSettings) -> None:
             f"({smtp.max_connections!r})",
         )
     _check_networks("smtp.reserved_networks", smtp.reserved_networks)
+    _check_networks("smtp.xforward_networks", smtp.xforward_networks)
 
 
 def _check_networks(key: str, networks: tuple[str, ...]) -> None:

@@ -39,7 +39,7 @@ from typing import Any, Final, Protocol
 
 import numpy as np
 
-from mailweir.daemon import forwarded
+from mailweir.daemon import forwarded, xforward
 from mailweir.daemon.actions import ID_FIELD
 from mailweir.daemon.feedback_types import (
     Correction,
@@ -477,8 +477,9 @@ class FeedbackGate:
     async def handle_RCPT(
         self, server: Any, session: Any, envelope: Any, address: str, rcpt_options: list[str]
     ) -> str:
+        client = xforward.upstream_client(session, envelope)
         answer = self.intake.screen_recipient(
-            session.peer, envelope.mail_from, envelope.mail_options, envelope.rcpt_tos, address
+            client, envelope.mail_from, envelope.mail_options, envelope.rcpt_tos, address
         )
         if answer is None:
             return str(
@@ -498,7 +499,7 @@ class FeedbackGate:
         try:
             with keep_open:
                 reply = await self.intake.receive_mail(
-                    session.peer,
+                    xforward.upstream_client(session, envelope),
                     envelope.mail_from,
                     envelope.rcpt_tos,
                     envelope.original_content or b"",

@@ -37,6 +37,9 @@ class SmtpSettings:
     max_connections_per_client: int = 20
     reserved_networks: tuple[str, ...] = ("127.0.0.1/32", "::1/128")
     reserved_connections: int = 20
+    # Clients whose XFORWARD (the upstream mail server's word on its own client) is believed;
+    # empty: XFORWARD is neither offered nor accepted.
+    xforward_networks: tuple[str, ...] = ("127.0.0.1/32", "::1/128")
     # RFC 5321 section 4.5.3.2 asks servers to wait at least 5 minutes for a command.
     command_timeout: float = 300.0
     # Before the first command a client has not started a dialogue yet: a silent connection

@@ -20,7 +20,7 @@ from typing import Any, AnyStr, Protocol
 
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
-from mailweir.daemon import actions, headers, replies, site_policy
+from mailweir.daemon import actions, headers, replies, site_policy, xforward
 from mailweir.daemon.admission import NO_FIRST_COMMAND, Admission
 from mailweir.daemon.errors import NextHopUnavailable, RelayError, reply_for
 from mailweir.daemon.judge import Judgement, new_tracking_id
@@ -83,10 +83,12 @@ class FilterSession(Session):
 
 
 class FilterEnvelope(Envelope):
-    """One transaction; ``relay_failure`` answers every later RCPT once the next hop failed."""
+    """One transaction; ``relay_failure`` answers every later RCPT once the next hop failed;
+    ``forwarded`` is what XFORWARD said about the upstream's client (daemon/xforward.py)."""
 
     relay_open: bool = False
     relay_failure: Reply | None = None
+    forwarded: xforward.Forwarded | None = None
 
 
 class Connections:
@@ -164,6 +166,9 @@ class FilterSMTP(SMTP):
             loop=loop,
         )
         self._connections = connections
+        self._xforward_networks = site_policy.Networks(
+            "smtp.xforward_networks", smtp.xforward_networks
+        )
         self._counted = False
         self._refused = False
         self._peer_host: str | None = None
@@ -239,6 +244,29 @@ class FilterSMTP(SMTP):
             return
         log.debug("%s: no first command in %ss", self._peer_host, self._first_command_timeout)
         _close_with(self.transport, NO_FIRST_COMMAND)
+
+    @property
+    def xforward_allowed(self) -> bool:
+        """Whether this connection's client may send XFORWARD (and is offered it)."""
+        address = site_policy.client_address(self._peer_host)
+        return self._xforward_networks.find(address) is not None
+
+    async def smtp_XFORWARD(self, arg: str | None) -> None:
+        """XFORWARD NAME= ADDR= PROTO= HELO= SOURCE= (see daemon/xforward.py)."""
+        if not self.xforward_allowed:
+            await self.push(str(xforward.NOT_PERMITTED))
+        elif not self.session.host_name:
+            await self.push(str(xforward.NEEDS_EHLO))
+        elif self.envelope.mail_from is not None:
+            await self.push(str(xforward.IN_TRANSACTION))
+        else:
+            envelope: Any = self.envelope
+            try:
+                envelope.forwarded = xforward.parse(arg, envelope.forwarded)
+            except xforward.XforwardError as exc:
+                await self.push(str(exc.reply))
+                return
+            await self.push(str(xforward.OK))
 
     async def push(self, status: AnyStr) -> None:
         raw = status if isinstance(status, bytes) else status.encode("utf-8", "surrogateescape")
@@ -353,6 +381,8 @@ class FilterHandler:
         # AUTH is dropped: no authentication is configured, aiosmtpd would offer it after TLS.
         session.host_name = hostname
         offered = [line for line in responses[:-1] if not line.startswith("250-AUTH")]
+        if server.xforward_allowed:
+            offered.append(xforward.EHLO_LINE)
         return [*offered, "250-PIPELINING", responses[-1]]
 
     async def handle_RSET(
@@ -397,7 +427,7 @@ class FilterHandler:
         policy = self.settings.policy  # one policy for the whole message, even across a reload
         site = site_policy.compiled(policy)
         views = [site.recipient_view(address) for address in envelope.rcpt_tos]
-        hit = site.sender_hit(envelope.mail_from, session.peer)
+        hit = site.sender_hit(envelope.mail_from, xforward.upstream_client(session, envelope))
         if hit is not None:
             # Never scored, so never tokenized: no token hashes, nothing feedback could train.
             band: Any = actions.LISTED_BAND  # not one of the judge's bands: no score gave it

@@ -13,8 +13,10 @@ The metrics output is read back with prometheus_client's own text parser.
 
 from __future__ import annotations
 
+import asyncio
 import dataclasses
 import re
+import smtplib
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from pathlib import Path
@@ -273,6 +275,33 @@ async def test_feedback_smtp_untrusted_client_is_refused(
         assert len(next_hop.deliveries) == relayed
         assert daemon.sample("mailweir_feedback_refused_total", reason="untrusted") == 1
         assert daemon.sample("mailweir_feedback_total", kind="false_positive") == 0
+
+
+def _rcpt_to_wanted(port: int) -> list[tuple[int, bytes]]:
+    """Postfix in front, as smtplib: one RCPT with XFORWARD naming an outside client, one
+    without (the forwarded client holds for one transaction only)."""
+    with smtplib.SMTP("127.0.0.1", port, timeout=20) as client:
+        client.ehlo("mx.harbourlane.example")
+        assert client.docmd("XFORWARD ADDR=198.51.100.23 NAME=mx.mail.example")[0] == 250
+        client.mail(TOBIAS)
+        forwarded = client.rcpt(WANTED)
+        client.rset()
+        client.mail(TOBIAS)
+        direct = client.rcpt(WANTED)
+        client.rset()
+        return [forwarded, direct]
+
+
+async def test_feedback_smtp_xforward_client_outside_trusted_networks_is_refused(
+    tmp_path: Path, next_hop: NextHop
+) -> None:
+    # Behind a mail server every connection is from 127.0.0.1 (trusted by default); XFORWARD
+    # tells mailweir who the mail server's client really was (daemon/xforward.py).
+    async with feedback_daemon(tmp_path, next_hop) as daemon:
+        forwarded, direct = await asyncio.to_thread(_rcpt_to_wanted, daemon.port)
+        assert forwarded == (550, b"5.7.1 Feedback is accepted only from trusted networks")
+        assert direct[0] == 250
+        assert daemon.sample("mailweir_feedback_refused_total", reason="untrusted") == 1
 
 
 async def test_feedback_smtp_rate_limit_per_sender(tmp_path: Path, next_hop: NextHop) -> None:
