@@ -7,7 +7,10 @@ count for learning but not for the figures.
 
 - mailweir: ``daemon.replay.replay_hashes`` (counts in memory, the same arithmetic as the
   daemon's store), one pass per tokenizer setting and training regime; every ``--variant``
-  of a pass reads the same counts.  With ``--thick`` the first variant decides what is trained.
+  of a pass reads the same counts, and the first one decides what is trained.  By default the
+  regime is the product's: a message is trained only when misjudged or judged with less than
+  ``mailweir train``'s default margin (``--margin M`` to change it, ``--every-message`` to train
+  all); the row for the default method, words and that margin is named "mailweir default".
 - ``sk-mnb-words``: scikit-learn MultinomialNB (alpha 0.01, the best of 1 and 0.01 in
   bench/ACCURACY.md) on hashed word counts, scored over the features seen in training so far.
 - ``sk-sgd-char4``: scikit-learn SGDClassifier(loss="log_loss", constant step 5.0, alpha 1e-7,
@@ -21,7 +24,8 @@ The baselines are trained in mini-batches (``--mnb-batch`` 10 by default, as Mul
 scored before its batch is learned, so scores use earlier messages only.
 
     python bench/bench_accuracy.py [CORPUS] [--variant fisher --variant 'fisher:strength=0.5']
-        [--bigrams] [--thick 10] [--no-baselines] [--warmup 1000] [--json out.json]
+        [--bigrams] [--margin 10 | --every-message] [--no-baselines] [--warmup 1000]
+        [--json out.json]
 
 Corpus: Enron-Spam (V. Metsis, I. Androutsopoulos, G. Paliouras, "Spam Filtering with Naive
 Bayes - Which Naive Bayes?", CEAS 2006).  Prints figures only; asserts nothing.
@@ -42,6 +46,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from mailweir.daemon.learning import DEFAULT_METHOD
+from mailweir.daemon.margin import DEFAULT_TRAIN_MARGIN
 from mailweir.daemon.replay import ReplayPlan, replay_hashes
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.sources import LabelledMessage, read_corpus
@@ -247,7 +253,17 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--variant", action="append", help="method[:param=value,...]")
     parser.add_argument("--bigrams", action="store_true", help="orthogonal sparse bigrams")
     parser.add_argument("--bigram-window", type=int, default=DEFAULT_OPTIONS.bigram_window)
-    parser.add_argument("--thick", type=float, default=None, help="thick threshold, log-odds")
+    regime = parser.add_mutually_exclusive_group()
+    regime.add_argument(
+        "--margin",
+        type=float,
+        default=DEFAULT_TRAIN_MARGIN,
+        help="train only messages misjudged or within this log-odds margin (default: the "
+        "product's)",
+    )
+    regime.add_argument(
+        "--every-message", dest="margin", action="store_const", const=None, help="train all"
+    )
     parser.add_argument("--no-baselines", action="store_true")
     parser.add_argument(
         "--baseline", action="append", choices=("mnb", "sgd"), help="only these baselines"
@@ -277,23 +293,26 @@ def main(argv: Sequence[str] | None = None) -> int:
         DEFAULT_OPTIONS, bigrams=args.bigrams, bigram_window=args.bigram_window
     )
     hashes, tokenize_seconds = tokenized(corpus, options, args.cache)
-    plan = ReplayPlan(methods=(), train_only_on_errors_margin=args.thick)
-    scorers = [parse_variant(v) for v in args.variant or ["fisher"]]
+    plan = ReplayPlan(methods=(), train_margin=args.margin)
+    scorers = [parse_variant(v) for v in args.variant or [DEFAULT_METHOD]]
     result = replay_hashes(
         hashes, labels.tolist(), [m.name for m in corpus], plan, scorers, log_odds=args.log_odds
     )
     w = args.warmup
     regime = f"{'osb' + str(args.bigram_window) if args.bigrams else 'words'}" + (
-        f", thick {args.thick:g}" if args.thick is not None else ""
+        f", margin {args.margin:g}" if args.margin is not None else ", every message"
     )
+    product = options == DEFAULT_OPTIONS and args.margin == DEFAULT_TRAIN_MARGIN
     cutoff = args.cutoff
     if args.log_odds:  # the cut-off is a probability; compare log-odds with its logit
         cutoff = float(np.log(args.cutoff) - np.log1p(-args.cutoff))
         regime += ", log-odds"
-    rows = [
-        figures(f"mailweir {r.method} [{regime}]", labels[w:], r.scores[w:], cutoff)
-        for r in result.results
-    ]
+    product = product and not args.log_odds
+    rows = []
+    for m, r in enumerate(result.results):
+        # Only the first variant trains the counts, so only it can be the product's regime.
+        name = "default" if product and m == 0 and r.method == DEFAULT_METHOD else r.method
+        rows.append(figures(f"mailweir {name} [{regime}]", labels[w:], r.scores[w:], cutoff))
     if not args.no_baselines:
         chosen = args.baseline or ("mnb", "sgd")
         found = baselines(

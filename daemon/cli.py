@@ -320,6 +320,7 @@ def cmd_stats(args: argparse.Namespace) -> int:
     report["bytes_per_token"] = (
         round(stats.database_bytes / stats.tokens, 1) if stats.tokens else None
     )
+    report["train_margin"] = margin.margin_text(model.margin)
     lines = [f"{key.replace('_', ' ')}: {value}" for key, value in report.items()]
     print_report(args, report, lines)
     return 0

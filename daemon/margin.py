@@ -91,6 +91,7 @@ class PendingCounts:
         self._size = 0
         self._token_total = np.zeros(2, dtype=np.int64)
         self._histogram = np.zeros((2, 1), dtype=np.int64)
+        self._base: Vocabulary | None = None  # the store's, read once per batch
 
     def clear(self) -> None:
         """Forget the pending messages once the store holds them."""
@@ -108,7 +109,9 @@ class PendingCounts:
         return self._store.class_count() + self._classes
 
     def vocabulary(self) -> Vocabulary:
-        base = self._store.vocabulary()
+        if self._base is None:
+            self._base = self._store.vocabulary()
+        base = self._base
         if not self._digests:
             return base
         width = max(base.count_histogram.shape[1], self._histogram.shape[1])

@@ -17,7 +17,7 @@ from __future__ import annotations
 import dataclasses
 import tempfile
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -139,13 +139,15 @@ def replay_hashes(
     scorers: Sequence[NaiveBayes] | None = None,
     *,
     log_odds: bool = False,
+    before_each: Callable[[int, MemoryCounts], object] | None = None,
 ) -> ReplayResult:
     """The replay of already tokenized messages, counts in memory (for benchmarks and sweeps).
 
     ``scorers`` (default: ``plan.methods`` with default parameters) may carry parameters; with
     a training margin the first one decides what is trained.  With ``log_odds`` the scores are
     ``jll[spam] - jll[ham]`` instead of probabilities: the same order, but without the ties a
-    probability rounded to 1.0 makes among the most certain messages.
+    probability rounded to 1.0 makes among the most certain messages.  ``before_each(i, counts)``
+    runs before message ``i`` is scored (e.g. to prune the counts, as upkeep would).
     """
     chosen = list(scorers) if scorers is not None else [make_scorer(m) for m in plan.methods]
     counts = MemoryCounts(messages)
@@ -163,6 +165,8 @@ def replay_hashes(
         learn(i)
     scores = np.zeros((len(chosen), len(messages) - n_train))
     for i in range(n_train, len(messages)):
+        if before_each is not None:
+            before_each(i, counts)
         found, classes, vocabulary = counts.lookup(i), counts.class_count(), counts.vocabulary()
         for m, scorer in enumerate(chosen):
             scores[m, i - n_train] = _score(scorer, found, classes, vocabulary, log_odds)

@@ -73,6 +73,21 @@ class MemoryCounts:
         self._classes[label] += 1
         self._token_total[label] += len(rows)
 
+    def prune(self, max_count: int) -> int:
+        """Forget tokens seen in at most ``max_count`` messages (as ``mailweir prune`` does).
+
+        Returns the number of tokens removed; they count as new if they come back.
+        """
+        total = self._counts.sum(axis=1)
+        gone = np.flatnonzero((total > 0) & (total <= max_count))
+        old = self._counts[gone]
+        for c in (HAM, SPAM):
+            np.subtract.at(self._histogram[c], old[:, c], 1)
+        self._token_total -= old.sum(axis=0)
+        self._size -= len(gone)
+        self._counts[gone] = 0
+        return len(gone)
+
     def _grow(self, width: int) -> None:
         if width > self._histogram.shape[1]:
             grown = np.zeros((2, max(width, 2 * self._histogram.shape[1])), dtype=np.int64)

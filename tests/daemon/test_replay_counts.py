@@ -40,6 +40,28 @@ def test_memory_counts_summary_equals_rebuilt_vocabulary() -> None:
         assert counts.lookup(i).shape == (len(message), 2)
 
 
+def test_memory_counts_prune_keeps_the_summary_exact() -> None:
+    # Oracle: the summary rebuilt from the remaining counts (Vocabulary.from_token_counts).
+    rng = np.random.default_rng(9)
+    messages = [np.unique(rng.integers(-60, 60, size=rng.integers(1, 30))) for _ in range(80)]
+    counts = MemoryCounts(messages)
+    for i in range(80):
+        counts.train(i, int(rng.integers(0, 2)))
+        if i in (30, 60):
+            before = counts.tokens
+            rare = int(((counts.token_counts().sum(axis=1)) <= 2).sum())
+            assert counts.prune(2) == rare
+            assert counts.tokens == before - rare
+            assert (counts.token_counts().sum(axis=1) > 2).all()
+        expected = Vocabulary.from_token_counts(counts.token_counts())
+        got = counts.vocabulary()
+        width = expected.count_histogram.shape[1]
+        assert got.size == expected.size
+        assert got.token_total.tolist() == expected.token_total.tolist()
+        assert np.array_equal(got.count_histogram[:, :width], expected.count_histogram)
+        assert not got.count_histogram[:, width:].any()
+
+
 def test_memory_counts_refuse_training_twice() -> None:
     counts = MemoryCounts([np.array([1, 2], dtype=np.int64)])
     counts.train(0, SPAM)
