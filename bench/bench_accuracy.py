@@ -52,9 +52,8 @@ from mailweir.daemon.replay import ReplayPlan, replay_hashes
 from mailweir.daemon.settings import PolicySettings
 from mailweir.daemon.sources import LabelledMessage, read_corpus
 from mailweir.model import evaluate
-from mailweir.model.hashing import hash_tokens
 from mailweir.model.nb import NaiveBayes, make_scorer
-from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
+from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokenize
 from mailweir.model.types import Vocabulary
 
 DEFAULT_CORPUS = Path(__file__).resolve().parents[2] / "shared/corpora/dev/enron-spam-dev.tar.gz"
@@ -130,7 +129,7 @@ def tokenized(
             stored["seconds"]
         )
     started = time.process_time()
-    hashes = [hash_tokens(tokens(m.raw, options)) for m in corpus]
+    hashes = [tokenize(m.raw, options) for m in corpus]
     seconds = time.process_time() - started
     if path:
         path.parent.mkdir(parents=True, exist_ok=True)

@@ -24,13 +24,13 @@ from pathlib import Path
 import numpy as np
 
 from mailweir.daemon.charts import Series, line_chart
-from mailweir.daemon.learning import OpenModel, Progress, open_model
+from mailweir.daemon.learning import OpenModel, Progress, open_model, scorer_for
 from mailweir.daemon.margin import DEFAULT_TRAIN_MARGIN, outside_margin, should_train
 from mailweir.daemon.replay_counts import MemoryCounts
 from mailweir.daemon.sources import LabelledMessage
 from mailweir.model import evaluate
 from mailweir.model.hashing import message_digest
-from mailweir.model.nb import NaiveBayes, make_scorer
+from mailweir.model.nb import NaiveBayes
 from mailweir.model.tokenize import DEFAULT_OPTIONS, tokenize
 from mailweir.model.types import (
     HAM,
@@ -149,7 +149,8 @@ def replay_hashes(
     probability rounded to 1.0 makes among the most certain messages.  ``before_each(i, counts)``
     runs before message ``i`` is scored (e.g. to prune the counts, as upkeep would).
     """
-    chosen = list(scorers) if scorers is not None else [make_scorer(m) for m in plan.methods]
+    options = dataclasses.replace(DEFAULT_OPTIONS, bigrams=plan.bigrams)
+    chosen = list(scorers) if scorers else [scorer_for(m, options) for m in plan.methods]
     counts = MemoryCounts(messages)
     started = time.monotonic()
     n_train = int(len(messages) * plan.train_fraction) if plan.protocol == "split" else 0
@@ -217,7 +218,7 @@ def _describe(scorer: NaiveBayes) -> str:
 def _run(
     model: OpenModel, corpus: Sequence[LabelledMessage], plan: ReplayPlan, progress: Progress
 ) -> ReplayResult:
-    scorers = [make_scorer(name) for name in plan.methods]
+    scorers = [scorer_for(name, model.options) for name in plan.methods]
     n_train = int(len(corpus) * plan.train_fraction) if plan.protocol == "split" else 0
     scored = corpus[n_train:] if plan.protocol == "split" else corpus
     scores = np.zeros((len(plan.methods), len(scored)))
