@@ -84,6 +84,7 @@ class Admission:
         self.outside_limit = max(limit - reserved_connections, 0)
         self.by_client: Counter[str] = Counter()  # open connections per outside client
         self.refused: Counter[str] = Counter()  # refusals by enhanced code, since start
+        self.first_command_timeouts = 0  # connections closed for silence after the greeting
 
     @classmethod
     def from_settings(cls, smtp: SmtpSettings) -> Admission:

@@ -124,6 +124,53 @@ class _VerdictLogCollector(Collector):
             "Verdict records queued and not yet written.",
             value=src.pending if src else 0,
         )
+        yield CounterMetricFamily(
+            "mailweir_verdict_journal_failures",
+            "Verdict records that could not be appended to the verdict journal (a kill before "
+            "their batch is written would lose their rows; the mail is not affected).",
+            value=getattr(src, "journal_failures", 0) if src else 0,
+        )
+        yield CounterMetricFamily(
+            "mailweir_verdict_journal_replayed",
+            "Verdict rows written at start from the journal a killed predecessor left.",
+            value=getattr(src, "replayed", 0) if src else 0,
+        )
+
+
+# Enhanced code of a refusal at the greeting (daemon/admission.py) -> its reason label.
+GREETING_REFUSALS = {"4.3.2": "capacity", "4.7.0": "per_client"}
+
+
+class _ConnectionsCollector(Collector):
+    """The SMTP side's connection figures (daemon/admission.py), read at scrape time."""
+
+    def __init__(self) -> None:
+        self.source: Any = None  # daemon/smtp.py's Connections
+
+    def collect(self) -> Iterator[Metric]:
+        connections = self.source
+        admission = connections.admission if connections is not None else None
+        yield GaugeMetricFamily(
+            "mailweir_smtp_connections_open",
+            "Upstream SMTP connections open now.",
+            value=connections.active if connections is not None else 0,
+        )
+        refused = CounterMetricFamily(
+            "mailweir_smtp_connections_refused",
+            "Connections answered 421 at the greeting: over smtp.max_connections or the share "
+            "of clients outside smtp.reserved_networks (capacity), or over "
+            "smtp.max_connections_per_client (per_client).",
+            labels=["reason"],
+        )
+        for code, reason in GREETING_REFUSALS.items():
+            refused.add_metric([reason], admission.refused[code] if admission else 0)
+        yield refused
+        yield CounterMetricFamily(
+            "mailweir_smtp_first_command_timeouts",
+            "Connections closed (421 4.4.2) for sending no command within "
+            "smtp.first_command_timeout.",
+            value=admission.first_command_timeouts if admission else 0,
+        )
 
 
 def _version() -> str:
@@ -250,6 +297,8 @@ class Metrics:
         self.upkeep = UpkeepMetrics(r)  # mailweir_upkeep_*, set by daemon/upkeep.py
         self._verdict_log = _VerdictLogCollector()
         r.register(self._verdict_log)
+        self._connections = _ConnectionsCollector()
+        r.register(self._connections)
         self._zero_known_series()
 
     def _zero_known_series(self) -> None:
@@ -308,6 +357,11 @@ class Metrics:
     def watch_verdict_log(self, verdict_log: Any) -> None:
         """Export this verdict log's written / dropped / failed / pending figures."""
         self._verdict_log.source = verdict_log
+
+    def watch_connections(self, connections: Any) -> None:
+        """Export the SMTP side's open connections and refusals (daemon/smtp.py's
+        ``Connections``)."""
+        self._connections.source = connections
 
     # -- periodic refresh from the store -------------------------------------------------
 

@@ -76,7 +76,7 @@ class Service:
         self._prepare_state_dir()
         try:
             await self._open_parts()
-            self.smtp_server = await _create_smtp_server(self.settings, self.handler)
+            self.smtp_server = await _create_smtp_server(self.settings, self.handler, self.metrics)
             self.observing = Observing(
                 self.settings,
                 self.metrics,
@@ -337,10 +337,12 @@ def _make_handler(
     return TransactionWatch(FeedbackGate(filtering, intake))
 
 
-async def _create_smtp_server(settings: Settings, handler: Any) -> Any:
-    from mailweir.daemon.smtp import create_smtp_server
+async def _create_smtp_server(settings: Settings, handler: Any, metrics: Metrics) -> Any:
+    from mailweir.daemon.smtp import Connections, create_smtp_server
 
-    return await create_smtp_server(settings, handler)
+    connections = Connections.from_settings(settings.smtp)
+    metrics.watch_connections(connections)
+    return await create_smtp_server(settings, handler, connections=connections)
 
 
 class TransactionWatch:

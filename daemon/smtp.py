@@ -243,6 +243,7 @@ class FilterSMTP(SMTP):
         if self.transport is None:
             return
         log.debug("%s: no first command in %ss", self._peer_host, self._first_command_timeout)
+        self._connections.admission.first_command_timeouts += 1
         _close_with(self.transport, NO_FIRST_COMMAND)
 
     @property
@@ -600,4 +601,9 @@ async def create_smtp_server(
             loop=loop,
         )
 
-    return await loop.create_server(protocol, host=smtp.listen.host, port=smtp.listen.port)
+    # A burst of connections beyond asyncio's default backlog (100) would wait in the kernel
+    # for SYN-ACK retries (seconds to a minute) instead of getting their 220 or 421 at once.
+    backlog = max(128, smtp.max_connections + smtp.max_connections // 2)
+    return await loop.create_server(
+        protocol, host=smtp.listen.host, port=smtp.listen.port, backlog=backlog
+    )

@@ -15,6 +15,8 @@ from mailweir.daemon import replies
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
 from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, failure_kind
 from mailweir.daemon.replies import Reply
+from mailweir.daemon.settings import SmtpSettings
+from mailweir.daemon.smtp import Connections
 from mailweir.store import ModelStore, reports
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 
@@ -47,6 +49,11 @@ EXPECTED_FAMILIES = {
     "mailweir_upkeep_failures": "counter",
     "mailweir_listed_messages": "counter",
     "mailweir_config_reloads": "counter",
+    "mailweir_verdict_journal_failures": "counter",
+    "mailweir_verdict_journal_replayed": "counter",
+    "mailweir_smtp_connections_open": "gauge",
+    "mailweir_smtp_connections_refused": "counter",
+    "mailweir_smtp_first_command_timeouts": "counter",
 }
 
 
@@ -167,6 +174,24 @@ def test_metrics_verdict_log_read_at_scrape_time() -> None:
     assert value(m, "mailweir_verdict_log_dropped_total") == 2
     assert value(m, "mailweir_verdict_log_written_total") == 40
     assert value(m, "mailweir_verdict_log_pending") == 7
+
+
+def test_metrics_connections_read_at_scrape_time() -> None:
+    m = Metrics()
+    assert value(m, "mailweir_smtp_connections_open") == 0
+    connections = Connections.from_settings(
+        SmtpSettings(max_connections=3, max_connections_per_client=1, reserved_connections=0)
+    )
+    m.watch_connections(connections)
+    first, second, third = object(), object(), object()
+    assert connections.admit(first, "198.51.100.7") is None  # type: ignore[arg-type]
+    assert connections.admit(second, "198.51.100.7") is not None  # type: ignore[arg-type]
+    assert connections.admit(third, "198.51.100.8") is None  # type: ignore[arg-type]
+    connections.admission.first_command_timeouts += 1
+    assert value(m, "mailweir_smtp_connections_open") == 2
+    assert value(m, "mailweir_smtp_connections_refused_total", reason="per_client") == 1
+    assert value(m, "mailweir_smtp_connections_refused_total", reason="capacity") == 0
+    assert value(m, "mailweir_smtp_first_command_timeouts_total") == 1
 
 
 async def test_report_refresher_sets_gauges_from_a_real_store(tmp_path: Path) -> None:
