@@ -19,6 +19,8 @@ from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from typing import Final
 
+import numpy as np
+
 from mailweir.daemon.margin import (
     DEFAULT_TRAIN_MARGIN,
     META_MARGIN,
@@ -39,6 +41,7 @@ from mailweir.model.tokenize import (
 )
 from mailweir.model.types import TokenHashes
 from mailweir.store import ModelStore, TrainResult
+from mailweir.store.training import TrainItem
 
 DEFAULT_METHOD = "fisher"
 META_TOKENIZER = "tokenizer"
@@ -230,41 +233,53 @@ def train_from(
     """
     summary: Counter[str] = Counter()
     failures: Counter[str] = Counter()
-    batch: list[tuple[TokenHashes, int, bytes, str]] = []
     pending = PendingCounts(model.store) if model.margin is not None else None
-    for _name, raw in iter_sources(targets, failures):
-        hashes = tokenize(raw, model.options)
-        digest = message_digest(hashes)
+    for chunk in _batches(iter_sources(targets, failures)):
+        hashed = [tokenize(raw, model.options) for raw in chunk]
+        batch = [(hashes, label, message_digest(hashes), source) for hashes in hashed]
         if pending is not None:
-            probability, counts = pending.probability(model.scorer, hashes)
-            progress.tick()
-            if not should_train(probability, label, model.margin):
-                summary[SKIPPED] += 1
-                continue
-            pending.add(hashes, counts, label, digest)
-        batch.append((hashes, label, digest, source))
-        if len(batch) >= BATCH:
-            _flush(model, batch, summary, progress if pending is None else None)
-            if pending is not None:
-                pending.clear()
-    _flush(model, batch, summary, progress if pending is None else None)
+            batch = _within_margin(model, pending, batch, summary)
+        _flush(model, batch, summary)
+        progress.tick(len(chunk))
+        if pending is not None:
+            pending.clear()
     summary["unreadable"] += sum(failures.values())
     return summary
 
 
-def _flush(
-    model: OpenModel,
-    batch: list[tuple[TokenHashes, int, bytes, str]],
-    summary: Counter[str],
-    progress: Progress | None,
-) -> None:
-    if not batch:
-        return
-    for outcome, n in model.store.train_many(batch).items():
-        summary[outcome.name.lower()] += n
-    if progress is not None:
-        progress.tick(len(batch))
-    batch.clear()
+def _batches(messages: Iterable[tuple[str, bytes]]) -> Iterator[list[bytes]]:
+    chunk: list[bytes] = []
+    for _name, raw in messages:
+        chunk.append(raw)
+        if len(chunk) >= BATCH:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+def _within_margin(
+    model: OpenModel, pending: PendingCounts, batch: list[TrainItem], summary: Counter[str]
+) -> list[TrainItem]:
+    """The messages of ``batch`` the margin says to train, decided one after another."""
+    # One query for the whole batch fills the store's cache, instead of one per message.
+    model.store.lookup(np.unique(np.concatenate([item[0] for item in batch])))
+    chosen = []
+    for item in batch:
+        hashes, label, digest, _source = item
+        probability, counts = pending.probability(model.scorer, hashes)
+        if should_train(probability, label, model.margin):
+            pending.add(hashes, counts, label, digest)
+            chosen.append(item)
+        else:
+            summary[SKIPPED] += 1
+    return chosen
+
+
+def _flush(model: OpenModel, batch: list[TrainItem], summary: Counter[str]) -> None:
+    if batch:
+        for outcome, n in model.store.train_many(batch).items():
+            summary[outcome.name.lower()] += n
 
 
 def untrain_from(model: OpenModel, targets: Iterable[str], progress: Progress) -> Counter[str]:
