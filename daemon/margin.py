@@ -18,11 +18,11 @@ import math
 from typing import Final
 
 import numpy as np
-import numpy.typing as npt
 
 from mailweir.model.nb import NaiveBayes
 from mailweir.model.types import SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
 from mailweir.store import ModelStore
+from mailweir.store.vocab import VocabularyTracker
 
 DEFAULT_TRAIN_MARGIN: Final = 10.0
 """Log-odds; the plateau of 10-20 measured in bench/ACCURACY.md (5 was too thin)."""
@@ -85,17 +85,15 @@ class PendingCounts:
 
     def __init__(self, store: ModelStore) -> None:
         self._store = store
-        self._counts: dict[int, list[int]] = {}
-        self._classes = np.zeros(2, dtype=np.int64)
-        self._digests: set[bytes] = set()
-        self._size = 0
-        self._token_total = np.zeros(2, dtype=np.int64)
-        self._histogram = np.zeros((2, 1), dtype=np.int64)
-        self._base: Vocabulary | None = None  # the store's, read once per batch
+        self.clear()
 
     def clear(self) -> None:
         """Forget the pending messages once the store holds them."""
-        self.__init__(self._store)  # type: ignore[misc]
+        self._counts: dict[int, list[int]] = {}
+        self._classes = np.zeros(2, dtype=np.int64)
+        self._digests: set[bytes] = set()
+        self._delta = VocabularyTracker()  # from zero: the pending change to the summary
+        self._base: Vocabulary | None = None  # the store's, read once per batch
 
     def lookup(self, hashes: TokenHashes) -> TokenCounts:
         """Shape (n, 2): stored counts plus pending ones for ``hashes``."""
@@ -114,11 +112,12 @@ class PendingCounts:
         base = self._base
         if not self._digests:
             return base
-        width = max(base.count_histogram.shape[1], self._histogram.shape[1])
+        delta = self._delta
+        width = max(base.count_histogram.shape[1], delta.histogram.shape[1])
         histogram = np.zeros((2, width), dtype=np.int64)
         histogram[:, : base.count_histogram.shape[1]] += base.count_histogram
-        histogram[:, : self._histogram.shape[1]] += self._histogram
-        return Vocabulary(base.size + self._size, base.token_total + self._token_total, histogram)
+        histogram[:, : delta.histogram.shape[1]] += delta.histogram
+        return Vocabulary(base.size + delta.size, base.token_total + delta.token_total, histogram)
 
     def probability(self, scorer: NaiveBayes, hashes: TokenHashes) -> tuple[float, TokenCounts]:
         """The spam probability of a message's tokens now, and the counts it was scored on."""
@@ -133,23 +132,7 @@ class PendingCounts:
         self._classes[label] += 1
         after = counts.copy()
         after[:, label] += 1
-        self._change(counts, -1)
-        self._change(after, 1)
+        self._delta.apply(counts, after)
         for h in hashes.tolist():
             row = self._counts.setdefault(h, [0, 0])
             row[label] += 1
-
-    def _change(self, counts: npt.NDArray[np.int64], sign: int) -> None:
-        # The vocabulary summary's arithmetic (store/vocab.py): live tokens leave or enter.
-        live = counts[(counts > 0).any(axis=1)]
-        if not len(live):
-            return
-        self._size += sign * len(live)
-        self._token_total += sign * live.sum(axis=0)
-        width = int(live.max()) + 1
-        if width > self._histogram.shape[1]:
-            grown = np.zeros((2, width), dtype=np.int64)
-            grown[:, : self._histogram.shape[1]] = self._histogram
-            self._histogram = grown
-        for c in (0, 1):
-            self._histogram[c, :width] += sign * np.bincount(live[:, c], minlength=width)
