@@ -2,8 +2,10 @@
 
 Tokenizes the same synthetic messages (bench_tokenize's 4 KB and 100 KB ones) three ways in
 one run: words only; bigrams as ``tokenize`` makes them now (pair hashes mixed in numpy from
-the words' hashes, ``model/pairs.py``); and bigrams the way tokenizer version 1 did (every
-pair string built, then hashed by an 8-byte BLAKE2b through a cache of the same size).
+the words' hashes, ``model/pairs.py``); bigrams the way tokenizer version 1 did (every pair
+string built, then hashed by an 8-byte BLAKE2b through a cache of the same size); and the two
+ways to get texts with their hashes, for naming evidence: ``tokens_and_hashes`` and
+``token_hashes(tokens(...))`` (which parses each pair text back into its words).
 
     python bench/bench_pairs.py [--messages 200]
 
@@ -20,7 +22,8 @@ from hashlib import blake2b
 import numpy as np
 from bench_tokenize import synthetic_message
 
-from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens
+from mailweir.model.hashing import token_hashes
+from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens, tokens_and_hashes
 
 WORDS = TokenizerOptions()
 BIGRAMS = TokenizerOptions(bigrams=True)
@@ -60,10 +63,13 @@ def main() -> None:
         words = cpu_ms(messages, lambda raw: tokenize(raw, WORDS))
         mixed = cpu_ms(messages, lambda raw: tokenize(raw, BIGRAMS))
         old = cpu_ms(messages, version1)
+        named = cpu_ms(messages, lambda raw: tokens_and_hashes(raw, BIGRAMS))
+        texts = cpu_ms(messages, lambda raw: token_hashes(tokens(raw, BIGRAMS)))
         print(
             f"{label:>6}: words {words:7.3f} ms, bigrams mixed {mixed:7.3f} ms, "
             f"bigrams BLAKE2b per pair (version 1) {old:7.3f} ms per message CPU "
-            f"({old / mixed:.1f}x)"
+            f"({old / mixed:.1f}x); with texts for evidence: tokens_and_hashes {named:7.3f} ms, "
+            f"token_hashes(tokens()) {texts:7.3f} ms"
         )
 
 

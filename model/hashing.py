@@ -13,7 +13,7 @@ from hashlib import blake2b
 
 import numpy as np
 
-from .pairs import pair_hash_int, split_pair
+from .pairs import pair_hash_int, pair_hashes, split_pair
 from .types import TokenHashes
 
 _CACHE_LIMIT = 200_000
@@ -28,10 +28,17 @@ def _digest8(token: str) -> bytes:
     pair = split_pair(token)
     if pair is not None:  # the tokenizer mixes these from word hashes (pairs.osb_pair_hashes)
         distance, earlier, later = pair
-        mixed = pair_hash_int(token_hash(earlier), token_hash(later), distance)
+        mixed = pair_hash_int(_cached_hash(earlier), _cached_hash(later), distance)
         return mixed.to_bytes(8, "little", signed=True)
     # Lone surrogates (never produced by the tokenizer) hash instead of raising.
     return blake2b(token.encode("utf-8", "surrogatepass"), digest_size=8).digest()
+
+
+def _cached_hash(word: str) -> int:
+    digest = _digest_cache.get(word)
+    if digest is None:
+        digest = _digest_cache[word] = _digest8(word)
+    return int.from_bytes(digest, "little", signed=True)
 
 
 def token_hash(token: str) -> int:
@@ -85,11 +92,30 @@ def token_hashes(tokens: Iterable[str]) -> TokenHashes:
     if None in digests:
         if len(_digest_cache) > _CACHE_LIMIT:
             _digest_cache.clear()
+        deferred: list[tuple[int, int, str, str]] = []
         for index, digest in enumerate(digests):
             if digest is None:
-                digests[index] = _digest_cache[tokens[index]] = _digest8(tokens[index])
+                token = tokens[index]
+                pair = split_pair(token)
+                if pair is None:
+                    digests[index] = _digest_cache[token] = _digest8(token)
+                else:
+                    deferred.append((index, *pair))
+        if deferred:
+            _mix_pairs(tokens, digests, deferred)
     joined = b"".join(digests)  # type: ignore[arg-type]  # no None left
     return np.frombuffer(joined, dtype="<i8").astype(np.int64)
+
+
+def _mix_pairs(
+    tokens: list[str], digests: list[bytes | None], deferred: list[tuple[int, int, str, str]]
+) -> None:
+    """Fill in the digests of pair texts missing from the cache, mixed in one numpy pass."""
+    where, distance, earlier, later = zip(*deferred, strict=True)
+    mixed = pair_hashes(token_hashes(earlier), token_hashes(later), np.array(distance))
+    packed = mixed.astype("<i8").tobytes()
+    for n, index in enumerate(where):
+        digests[index] = _digest_cache[tokens[index]] = packed[8 * n : 8 * n + 8]
 
 
 def sorted_unique(values: TokenHashes) -> TokenHashes:

@@ -159,6 +159,41 @@ def tokenize(raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS) -> TokenHa
     return sorted_unique(np.concatenate(parts))
 
 
+def tokens_and_hashes(
+    raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS
+) -> tuple[list[str], TokenHashes]:
+    """``tokens(raw, options)`` and the hash of each, aligned (for naming evidence).
+
+    The same as ``token_hashes(tokens(raw, options))``, but bigram hashes come straight from
+    the word hashes (``pairs.py``) instead of being parsed back out of each pair's text.
+
+    Returns
+    -------
+    texts : list of str, length n <= options.max_tokens
+    hashes : TokenHashes, shape (n,)
+        ``hashes[i]`` is ``token_hash(texts[i])``; not sorted, as ``tokens`` orders them.
+    """
+    found, sequences = _gather(raw, options)
+    texts = list(found)[: options.max_tokens]
+    hashes = [token_hashes(texts)]
+    room = options.max_tokens - len(texts)
+    if options.bigrams and room > 0:
+        pairs: dict[str, int] = {}
+        for words in sequences:
+            if len(pairs) >= room:
+                break
+            limit = options.max_tokens * 2
+            made = osb_pair_hashes(token_hashes(words), options.bigram_window)[:limit]
+            for text, value in zip(
+                osb_pairs(words, options.bigram_window)[:limit], made.tolist(), strict=True
+            ):
+                pairs.setdefault(text, value)
+        chosen = list(pairs.items())[:room]
+        texts += [text for text, _ in chosen]
+        hashes.append(np.array([value for _, value in chosen], dtype=np.int64))
+    return texts, np.concatenate(hashes)
+
+
 def _pair_hashes(sequences: list[list[str]], window: int, room: int, per_part: int) -> TokenHashes:
     """The first ``room`` distinct pair hashes in the order ``tokens`` adds pair strings."""
     pairs = np.concatenate(

@@ -13,7 +13,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from mailweir.model.hashing import hash_tokens, token_hash
+from mailweir.model.hashing import hash_tokens, token_hash, token_hashes
 from mailweir.model.pairs import (
     GOLDEN,
     mix64,
@@ -23,7 +23,7 @@ from mailweir.model.pairs import (
     pair_hashes,
     split_pair,
 )
-from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens
+from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens, tokens_and_hashes
 from mailweir.model.words import osb_pairs
 
 INT64 = st.integers(min_value=-(2**63), max_value=2**63 - 1)
@@ -144,3 +144,18 @@ def test_tokenize_bigrams_deterministic() -> None:
     raw = (HEAD + "Kennel cough vaccine, forty doses, for Tuesday's clinic.\r\n").encode()
     options = TokenizerOptions(bigrams=True)
     assert np.array_equal(tokenize(raw, options), tokenize(raw, options))
+
+
+def test_tokens_and_hashes_equal_hashing_the_texts() -> None:
+    body = "Tobias Lindqvist orders kennel cough vaccine; Priya Raman books the kennel visit.\r\n"
+    raw = (HEAD + body * 4).encode()
+    for options in (
+        TokenizerOptions(),
+        TokenizerOptions(bigrams=True),
+        TokenizerOptions(bigrams=True, max_tokens=25),
+        TokenizerOptions(bigrams=True, bigram_window=2),
+    ):
+        texts, hashes = tokens_and_hashes(raw, options)
+        assert texts == tokens(raw, options)
+        assert hashes.tolist() == [token_hash(text) for text in texts]
+        assert np.array_equal(token_hashes(texts), hashes)
