@@ -30,14 +30,14 @@ from mailweir.daemon.margin import (
     should_train,
 )
 from mailweir.daemon.sources import read_messages
-from mailweir.model.hashing import hash_tokens, message_digest
+from mailweir.model.hashing import message_digest, sorted_unique
 from mailweir.model.nb import NaiveBayes, Score, make_scorer
 from mailweir.model.tokenize import (
     DEFAULT_OPTIONS,
     TOKENIZER_VERSION,
     TokenizerOptions,
     tokenize,
-    tokens,
+    tokens_and_hashes,
 )
 from mailweir.model.types import TokenHashes
 from mailweir.store import ModelStore, TrainResult
@@ -166,8 +166,9 @@ def _tokenizer_options(store: ModelStore, bigrams: bool | None) -> TokenizerOpti
 
 
 def message_hashes(model: OpenModel, raw: bytes) -> tuple[TokenHashes, list[str]]:
-    words = tokens(raw, model.options)
-    return hash_tokens(words), words
+    """The message's sorted unique hashes, and its token texts (to name evidence)."""
+    words, aligned = tokens_and_hashes(raw, model.options)
+    return sorted_unique(aligned), words
 
 
 def score_message(model: OpenModel, raw: bytes, n_evidence: int = 8) -> tuple[Score, list[str]]:
