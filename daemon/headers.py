@@ -47,6 +47,17 @@ def _split_header(raw: bytes) -> tuple[list[bytes], int]:
     return lines, position
 
 
+def _header_length(raw: bytes) -> int:
+    """Where the first empty line starts (as in :func:`_split_header`), else ``len(raw)``."""
+    if raw[:1] == b"\n" or raw[:2] == b"\r\n":
+        return 0
+    crlf = raw.find(b"\n\r\n")
+    limit = len(raw) if crlf < 0 else crlf + 2  # a bare-LF empty line can only come before
+    lf = raw.find(b"\n\n", 0, limit)
+    ends = [at + 1 for at in (crlf, lf) if at >= 0]
+    return min(ends, default=len(raw))
+
+
 def _field_name(line: bytes) -> bytes | None:
     """The field name of a line that starts a field, else None (continuations, junk)."""
     if line[:1] in (b" ", b"\t"):
@@ -57,6 +68,8 @@ def _field_name(line: bytes) -> bytes | None:
 
 def remove_own_fields(raw: bytes) -> bytes:
     """``raw`` without any header field named ``mailweir-*`` (case-insensitive)."""
+    if _PREFIX not in raw[: _header_length(raw)].lower():
+        return raw  # the common case, in C: no line of the header can start a field of ours
     lines, body_at = _split_header(raw)
     kept: list[bytes] = []
     dropping = False
