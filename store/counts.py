@@ -42,6 +42,8 @@ from mailweir.store.vocab import VocabularyTracker
 
 # Bulk training flushes a batch once it holds this many token occurrences.
 _BATCH_TOKENS = 300_000
+PRUNE_CHUNK_ROWS = 100_000  # rows one prune transaction deletes (memory, and training's wait)
+INT64_MIN, INT64_MAX = -(2**63), 2**63 - 1  # token hashes are signed 64-bit
 _WRITE_ATTEMPTS = 3
 
 
@@ -367,25 +369,51 @@ class ModelStore:
                 )
         return plan.results
 
-    def prune(self, *, max_count: int = 1, unseen_days: int = 60, today: int | None = None) -> int:
-        """Delete rare tokens (ham + spam <= max_count) not trained for *unseen_days* days."""
+    def prune(
+        self,
+        *,
+        max_count: int = 1,
+        unseen_days: int = 60,
+        today: int | None = None,
+        chunk_rows: int = PRUNE_CHUNK_ROWS,
+    ) -> int:
+        """Delete rare tokens (ham + spam <= max_count) not trained for *unseen_days* days.
+
+        In chunks of *chunk_rows* in hash order, each its own transaction: memory stays
+        bounded with tens of millions of rows, and training waits at most one chunk."""
         day = day_number() if today is None else today
+        removed, after = 0, INT64_MIN
+        while True:
+            count, last = self._prune_chunk(max_count, day - unseen_days, after, chunk_rows)
+            removed += count
+            if count < chunk_rows or last is None or last == INT64_MAX:
+                return removed
+            after = last + 1
+
+    def _prune_chunk(
+        self, max_count: int, before_day: int, after: int, chunk_rows: int
+    ) -> tuple[int, int | None]:
+        """One chunk of :meth:`prune` from hash *after* on; (rows removed, last hash)."""
         t = schema.token
+        doomed = (
+            select(t.c.hash)
+            .where(t.c.hash >= after, t.c.ham + t.c.spam <= max_count, t.c.last_seen < before_day)
+            .order_by(t.c.hash)
+            .limit(chunk_rows)
+        )
         with self.transaction() as conn:
             rows = conn.execute(
-                delete(t)
-                .where(t.c.ham + t.c.spam <= max_count, t.c.last_seen < day - unseen_days)
-                .returning(t.c.hash, t.c.ham, t.c.spam)
+                delete(t).where(t.c.hash.in_(doomed)).returning(t.c.hash, t.c.ham, t.c.spam)
             ).all()
             if not rows:
-                return 0
-            gone = np.array([tuple(r) for r in rows], dtype=np.int64).reshape(-1, 3)
+                return 0, None
+            gone = np.array(rows, dtype=np.int64).reshape(-1, 3)
             hashes, old = gone[:, 0], gone[:, 1:]
             revision = bump_totals(conn, np.zeros(2, dtype=np.int64))
             self._after_commit(
                 lambda: self._committed(revision, hashes, -old, old, np.zeros(2, np.int64))
             )
-        return len(rows)
+        return len(rows), int(hashes.max())
 
     # -- bookkeeping ---------------------------------------------------------------------------
 

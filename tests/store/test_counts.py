@@ -194,6 +194,21 @@ def test_prune_keeps_recent_and_frequent_tokens(store: ModelStore) -> None:
     assert token_rows(store) == {}
 
 
+def test_prune_in_small_chunks_removes_the_same_as_in_one(store: ModelStore) -> None:
+    # Hashes across the whole signed range, including both ends, so the hash-order cursor
+    # must start below the smallest and stop at the largest.
+    keep = [-(2**63) + 5, -7, 11, 2**62]
+    rare = [-(2**63), -(2**40), -3, 0, 3, 2**40, 2**63 - 1]
+    store.train(hashes_of(*keep, *rare), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(*keep), HAM, digest=digest_of("b"), source="t")
+    store.lookup(hashes_of(*keep, *rare))
+    store.vocabulary()
+    assert store.prune(max_count=1, unseen_days=0, today=10**6, chunk_rows=2) == len(rare)
+    assert token_rows(store) == {h: (1, 1) for h in keep}
+    assert store.lookup(hashes_of(*rare)).tolist() == [[0, 0]] * len(rare)
+    assert store.vocabulary().size == len(keep)
+
+
 def test_untrain_after_prune_never_goes_negative(store: ModelStore) -> None:
     store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
     store.train(hashes_of(2), SPAM, digest=digest_of("b"), source="t")
