@@ -9,6 +9,8 @@ and stay in the driver's prepared-statement cache.  PostgreSQL gets one array pa
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from sqlalchemy import Connection
 
@@ -46,13 +48,13 @@ class CountReader:
         # Plain tuples: numpy would probe each SQLAlchemy Row as a mapping, very slowly.
         rows: list[tuple[int, int, int]] = []
         if self.postgres:
-            rows = list(map(tuple, conn.exec_driver_sql(_PG_SQL, (values.tolist(),)).fetchall()))
+            rows = _plain_rows(conn, _PG_SQL, (values.tolist(),))
         else:
             for start in range(0, len(values), self.limit):
                 part = values[start : start + self.limit].tolist()
                 size = _sqlite_bucket(len(part), self.limit)
                 params = tuple(part + [part[0]] * (size - len(part)))
-                rows += map(tuple, conn.exec_driver_sql(self._sqlite_text(size), params).fetchall())
+                rows += _plain_rows(conn, self._sqlite_text(size), params)
         if rows:
             found = np.array(rows, dtype=np.int64)
             order = np.argsort(values)
@@ -65,3 +67,13 @@ class CountReader:
         if text is None:
             text = self._texts[size] = f"{_SELECT} IN ({','.join('?' * size)})"
         return text
+
+
+def _plain_rows(conn: Connection, statement: str, params: tuple[Any, ...]) -> list[Any]:
+    """The driver's own row tuples: building SQLAlchemy Row objects, then tuples from them,
+    cost more than the query on a cold lookup of thousands of hashes."""
+    result = conn.exec_driver_sql(statement, params)
+    try:
+        return list(result.cursor.fetchall())
+    finally:
+        result.close()
