@@ -29,8 +29,8 @@ Hops: every round trip to a pool costs the loop a submit and a wake-up, and a pr
 also pickling both ways and the pool's manager thread.  Three hops per message (tokenize in the
 process pool, look up in a thread, score in the process pool) cost 12.3 ms of daemon CPU per
 4 KB message in ``bench/bench_relay.py`` (8 clients, 500,000-token model); one thread hop
-costs 5.0 ms.  So a message shorter than ``INLINE_BELOW`` is judged in one hop on the loop's
-thread pool (tokenize, look up, score, name the evidence), holding the GIL for about a
+costs 5.0 ms.  So a message shorter than ``INLINE_BELOW`` is judged in one hop on the judge's
+own threads (tokenize, look up, score, name the evidence), holding the GIL for about a
 millisecond; a longer one is tokenized in the process pool, where its parse time stays off
 the loop's GIL, and then looked up and scored in one thread hop.
 
@@ -184,6 +184,16 @@ class Judge:
             executor = executor_factory()
         self.executor = executor
         self._executor_factory = executor_factory
+        # Beside a process pool the in-process steps get threads of their own, as many as
+        # model.scoring_workers: the loop's default pool has up to six, and each thread that
+        # looks up keeps its own database connection (about 35 MB more resident each,
+        # measured with bench/bench_relay.py), while more threads than cores only contend
+        # for the GIL.
+        self._threads: concurrent.futures.ThreadPoolExecutor | None = None
+        if isinstance(executor, concurrent.futures.ProcessPoolExecutor):
+            self._threads = concurrent.futures.ThreadPoolExecutor(
+                settings.model.scoring_workers, thread_name_prefix="mailweir-judge"
+            )
         self._semaphore = asyncio.Semaphore(settings.model.max_concurrent_scoring)
         self._policy = settings.policy
         self.options, self.scorer = _model_identity(store, settings)
@@ -217,6 +227,8 @@ class Judge:
         if self._executor_factory is not None and self.executor is not None:
             self.executor.shutdown(wait=True, cancel_futures=True)
             self.executor = None
+        if self._threads is not None:
+            self._threads.shutdown(wait=True, cancel_futures=True)
 
     def _replace_executor(self, broken: concurrent.futures.Executor | None) -> None:
         if self._executor_factory is None or broken is None or self.executor is not broken:
@@ -244,7 +256,7 @@ class Judge:
                 work = functools.partial(
                     self._score_here, hashes, texts, policy.min_trained, parsing
                 )
-            executor = None  # looking up and scoring stay in this process (its thread pool)
+            executor = self._threads  # looking up and scoring stay in this process
         steps = await loop.run_in_executor(executor, work)
         if steps.score is None:
             return Judgement(tracking_id, "unjudged", None, (), steps.hashes)
