@@ -33,7 +33,6 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 BENCH = Path(__file__).resolve().parent
 sys.path.insert(0, str(BENCH))
@@ -73,7 +72,9 @@ def _free_port() -> int:
         return int(sock.getsockname()[1])
 
 
-def _start(argv: list[str], port_file: Path | None, port: int | None = None) -> tuple[Any, int]:
+def _start(
+    argv: list[str], port_file: Path | None, port: int | None = None
+) -> tuple[subprocess.Popen[bytes], int]:
     process = subprocess.Popen(argv, stdin=subprocess.DEVNULL)
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:

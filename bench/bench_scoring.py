@@ -16,6 +16,7 @@ resident memory <= 100 MB + 40 B per token held, <= 32 database bytes per token.
 from __future__ import annotations
 
 import argparse
+import os
 import shutil
 import sys
 import tempfile
@@ -109,11 +110,11 @@ def bench_memory(path: Path) -> None:
     with sqlite3.connect(path) as db:
         every = np.array([row[0] for row in db.execute("SELECT hash FROM weir_token")])
     every.sort()
-    before = proc_cpu.rss_bytes(proc_cpu.os.getpid())
+    before = proc_cpu.rss_bytes(os.getpid())
     store = ModelStore.open(str(path), cache_tokens=len(every) + 1)
     for start in range(0, len(every), 4096):
         store.lookup(every[start : start + 4096])
-    after = proc_cpu.rss_bytes(proc_cpu.os.getpid())
+    after = proc_cpu.rss_bytes(os.getpid())
     stats = store.stats()
     store.close()
     tokens_held = len(every)

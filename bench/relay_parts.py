@@ -51,7 +51,8 @@ class RelayHandler:
             answer = await client.mail(envelope.mail_from or "")
             envelope.relay_open = True  # type: ignore[attr-defined]
         answer = await client.rcpt(address)
-        envelope.rcpt_tos.append(address)
+        if answer.code < 400:
+            envelope.rcpt_tos.append(address)  # a handle_RCPT hook records the recipient itself
         return f"{answer.code} {answer.message}"
 
     async def handle_DATA(self, server: SMTP, session: Session, envelope: Envelope) -> str:
