@@ -407,7 +407,7 @@ class ModelStore:
             ).all()
             if not rows:
                 return 0, None
-            gone = np.array(rows, dtype=np.int64).reshape(-1, 3)
+            gone = np.array([tuple(r) for r in rows], dtype=np.int64).reshape(-1, 3)
             hashes, old = gone[:, 0], gone[:, 1:]
             revision = bump_totals(conn, np.zeros(2, dtype=np.int64))
             self._after_commit(
