@@ -338,7 +338,7 @@ def _make_handler(
 
 
 async def _create_smtp_server(settings: Settings, handler: Any, metrics: Metrics) -> Any:
-    from mailweir.daemon.smtp import Connections, create_smtp_server
+    from mailweir.daemon.smtp_server import Connections, create_smtp_server
 
     connections = Connections.from_settings(settings.smtp)
     metrics.watch_connections(connections)

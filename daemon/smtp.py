@@ -1,44 +1,31 @@
-"""The SMTP side: aiosmtpd receives, :class:`FilterHandler` judges, acts and relays.
+"""The data path of one message: :class:`FilterHandler` relays, judges, acts and replies.
 
-One handler instance serves every connection and keeps no state of its own: the next-hop
-client lives on the session (one per upstream connection), the transaction's relay state on
-the envelope.  The upstream hears 250 for a message only after the next hop accepted it.
+aiosmtpd (with the listener in daemon/smtp_server.py) receives; one handler instance serves
+every connection and keeps no state of its own: the next-hop client lives on the session (one
+per upstream connection), the transaction's relay state on the envelope.  The upstream hears
+250 for a message only after the next hop accepted it.
 """
 
 from __future__ import annotations
 
-import asyncio
 import dataclasses
-import functools
 import logging
 import socket
-import ssl
 import time
-from collections.abc import Awaitable, Callable, Iterator, Sequence
-from contextlib import contextmanager
-from typing import Any, AnyStr, Protocol
-
-from aiosmtpd.smtp import SMTP, Envelope, Session
+from collections.abc import Sequence
+from typing import Any, Protocol
 
 from mailweir.daemon import actions, headers, replies, site_policy, xforward
-from mailweir.daemon.admission import NO_FIRST_COMMAND, Admission
 from mailweir.daemon.errors import NextHopUnavailable, RelayError, reply_for
 from mailweir.daemon.judge import Judgement, new_tracking_id
 from mailweir.daemon.log_setup import message_scoped, tag_message
 from mailweir.daemon.relay import HEADER_ALLOWANCE, MailParameters, NextHopSession, RelayTimeouts
 from mailweir.daemon.replies import Reply
-from mailweir.daemon.settings import Settings, SmtpSettings
+from mailweir.daemon.settings import Settings
+from mailweir.daemon.smtp_server import FilterEnvelope, FilterSession, FilterSMTP
 from mailweir.store.verdicts import VerdictRecord
 
 log = logging.getLogger("mailweir.smtp")
-
-# aiosmtpd words these replies itself, without enhanced codes.  With the line limit lifted to
-# the message size limit, a line too long can only be a message too big.
-_OWN_WORDING = {
-    b"552 Error: Too much mail data": str(replies.MESSAGE_TOO_BIG),
-    b"552 Error: message size exceeds fixed maximum message size": str(replies.MESSAGE_TOO_BIG),
-    b"500 Line too long (see RFC5321 4.5.3.1.6)": str(replies.MESSAGE_TOO_BIG),
-}
 
 
 class JudgeLike(Protocol):
@@ -74,228 +61,6 @@ class Holding(Protocol):
         band: str,
     ) -> Reply | None: ...
     def let_go(self, tracking_id: str) -> None: ...
-
-
-class FilterSession(Session):
-    """One upstream connection; ``relay`` is its next-hop client, opened at the first RCPT."""
-
-    relay: NextHopSession | None = None
-
-
-class FilterEnvelope(Envelope):
-    """One transaction; ``relay_failure`` answers every later RCPT once the next hop failed;
-    ``forwarded`` is what XFORWARD said about the upstream's client (daemon/xforward.py)."""
-
-    relay_open: bool = False
-    relay_failure: Reply | None = None
-    forwarded: xforward.Forwarded | None = None
-
-
-class Connections:
-    """The open upstream connections of one server, for the caps and for shutdown.
-
-    ``admission`` decides who may connect (daemon/admission.py); without one, only the total
-    ``limit`` applies.
-    """
-
-    def __init__(self, limit: int, admission: Admission | None = None) -> None:
-        self.admission = admission or Admission(limit)
-        self.protocols: set[FilterSMTP] = set()
-
-    @classmethod
-    def from_settings(cls, smtp: SmtpSettings) -> Connections:
-        return cls(smtp.max_connections, Admission.from_settings(smtp))
-
-    @property
-    def limit(self) -> int:
-        return self.admission.limit
-
-    def admit(self, protocol: FilterSMTP, host: str | None) -> Reply | None:
-        """Count ``protocol`` in, or return the refusal to send before closing it."""
-        refusal = self.admission.admit(host, self.active)
-        if refusal is None:
-            self.protocols.add(protocol)
-        return refusal
-
-    def release(self, protocol: FilterSMTP, host: str | None) -> None:
-        if protocol in self.protocols:
-            self.protocols.discard(protocol)
-            self.admission.release(host)
-
-    @property
-    def active(self) -> int:
-        return len(self.protocols)
-
-    @property
-    def working(self) -> int:
-        """Connections in the middle of a relay (a RCPT or a DATA being passed on)."""
-        return sum(1 for protocol in self.protocols if protocol.working)
-
-    def close_all(self) -> None:
-        for protocol in list(self.protocols):
-            if protocol.transport is not None:
-                protocol.transport.close()
-
-
-class FilterSMTP(SMTP):
-    """aiosmtpd's SMTP with the changes a filter in the mail path needs."""
-
-    def __init__(
-        self,
-        handler: FilterHandler,
-        *,
-        smtp: SmtpSettings,
-        hostname: str,
-        connections: Connections,
-        tls_context: ssl.SSLContext | None = None,
-        loop: asyncio.AbstractEventLoop | None = None,
-    ) -> None:
-        # RFC 5321 section 4.5.3.1.6 asks for 1,000-octet lines, but behind the queue a 500 for
-        # a longer line makes the upstream bounce mail it accepted; any line that fits the
-        # size limit passes (+2 for CRLF, +1 for a transparency dot).
-        self.line_length_limit = smtp.max_message_bytes + 3
-        super().__init__(
-            handler,
-            data_size_limit=smtp.max_message_bytes,
-            enable_SMTPUTF8=True,
-            decode_data=False,
-            hostname=hostname,
-            ident="mailweir",
-            tls_context=tls_context,
-            timeout=smtp.command_timeout,
-            loop=loop,
-        )
-        self._connections = connections
-        self._xforward_networks = site_policy.Networks(
-            "smtp.xforward_networks", smtp.xforward_networks
-        )
-        self._counted = False
-        self._refused = False
-        self._peer_host: str | None = None
-        self.working = False
-        # A client that never sends a command is cut off after smtp.first_command_timeout;
-        # the first command it sends (any verb aiosmtpd knows) ends that wait.
-        self._first_command_timeout = smtp.first_command_timeout
-        self._first_command_timer: asyncio.TimerHandle | None = None
-        self._smtp_methods = {
-            verb: self._ends_first_wait(method) for verb, method in self._smtp_methods.items()
-        }
-
-    def _create_session(self) -> Session:
-        return FilterSession(self.loop)
-
-    def _create_envelope(self) -> Envelope:
-        return FilterEnvelope()
-
-    def connection_made(self, transport: asyncio.BaseTransport) -> None:
-        if not self._counted:  # the first call; STARTTLS calls again on the same connection
-            peer = transport.get_extra_info("peername")
-            self._peer_host = peer[0] if isinstance(peer, tuple) and peer else None
-            refusal = self._connections.admit(self, self._peer_host)
-            if refusal is not None:
-                self._refused = True
-                _close_with(transport, refusal)
-                return
-            self._counted = True
-            self._first_command_timer = self.loop.call_later(
-                self._first_command_timeout, self._no_first_command
-            )
-        elif isinstance(self.session, FilterSession) and self.session.relay is not None:
-            self.session.relay.abort()  # STARTTLS starts a new session (RFC 3207 section 4.2)
-        super().connection_made(transport)
-
-    def connection_lost(self, error: Exception | None) -> None:
-        if self._refused:
-            asyncio.StreamReaderProtocol.connection_lost(self, error)
-            return
-        if self._counted:
-            self._connections.release(self, self._peer_host)
-            self._counted = False
-        self._end_first_wait()
-        session = self.session
-        if isinstance(session, FilterSession) and session.relay is not None:
-            session.relay.abort()  # the upstream is gone: its open transaction must not finish
-            session.relay = None
-        super().connection_lost(error)
-
-    def data_received(self, data: bytes) -> None:
-        # An idle timeout rather than a per-command deadline: a large message arriving slowly
-        # keeps the connection alive (RFC 5321 section 4.5.3.2.5 times each data block).
-        if not self.working and self._timeout_handle is not None:
-            self._reset_timeout()
-        super().data_received(data)
-
-    def _ends_first_wait(self, method: Callable[[str | None], Awaitable[None]]) -> Any:
-        @functools.wraps(method)
-        async def command(arg: str | None) -> None:
-            self._end_first_wait()
-            await method(arg)
-
-        return command
-
-    def _end_first_wait(self) -> None:
-        if self._first_command_timer is not None:
-            self._first_command_timer.cancel()
-            self._first_command_timer = None
-
-    def _no_first_command(self) -> None:
-        self._first_command_timer = None
-        if self.transport is None:
-            return
-        log.debug("%s: no first command in %ss", self._peer_host, self._first_command_timeout)
-        self._connections.admission.first_command_timeouts += 1
-        _close_with(self.transport, NO_FIRST_COMMAND)
-
-    @property
-    def xforward_allowed(self) -> bool:
-        """Whether this connection's client may send XFORWARD (and is offered it)."""
-        address = site_policy.client_address(self._peer_host)
-        return self._xforward_networks.find(address) is not None
-
-    async def smtp_XFORWARD(self, arg: str | None) -> None:
-        """XFORWARD NAME= ADDR= PROTO= HELO= SOURCE= (see daemon/xforward.py)."""
-        if not self.xforward_allowed:
-            await self.push(str(xforward.NOT_PERMITTED))
-        elif not self.session.host_name:
-            await self.push(str(xforward.NEEDS_EHLO))
-        elif self.envelope.mail_from is not None:
-            await self.push(str(xforward.IN_TRANSACTION))
-        else:
-            envelope: Any = self.envelope
-            try:
-                envelope.forwarded = xforward.parse(arg, envelope.forwarded)
-            except xforward.XforwardError as exc:
-                await self.push(str(exc.reply))
-                return
-            await self.push(str(xforward.OK))
-
-    async def push(self, status: AnyStr) -> None:
-        raw = status if isinstance(status, bytes) else status.encode("utf-8", "surrogateescape")
-        ours = _OWN_WORDING.get(raw)
-        await (super().push(status) if ours is None else super().push(ours))
-
-    @contextmanager
-    def busy(self, seconds: float) -> Iterator[None]:
-        """Keep the upstream connection open while we work for ``seconds`` at most (the idle
-        timer would otherwise close it during a slow relay), then restart the idle timer."""
-        self.working = True
-        self._reset_timeout(max(seconds, self._timeout_duration))
-        try:
-            yield
-        finally:
-            self.working = False
-            if self.transport is not None:
-                self._reset_timeout()
-
-    def forget_transaction(self) -> None:
-        """Drop the envelope after a failed DATA, so the next MAIL starts clean."""
-        self.envelope = self._create_envelope()
-
-
-def _close_with(transport: asyncio.BaseTransport, reply: Reply) -> None:
-    """Send a last reply (a 421: the server closes, RFC 5321 section 3.8) and close."""
-    transport.write(str(reply).encode("ascii") + b"\r\n")  # type: ignore[attr-defined]
-    transport.close()
 
 
 class FilterHandler:
@@ -562,48 +327,3 @@ class FilterHandler:
             self.verdict_log.add(record)
         except Exception:
             log.exception("%s: verdict not recorded", judgement.tracking_id)
-
-
-def tls_context(smtp: SmtpSettings) -> ssl.SSLContext | None:
-    """The server-side TLS context for STARTTLS, when a certificate and key are configured."""
-    if smtp.tls_cert is None or smtp.tls_key is None:
-        return None
-    context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
-    context.load_cert_chain(str(smtp.tls_cert), str(smtp.tls_key))
-    return context
-
-
-async def create_smtp_server(
-    settings: Settings,
-    handler: FilterHandler,
-    loop: asyncio.AbstractEventLoop | None = None,
-    connections: Connections | None = None,
-) -> asyncio.Server:
-    """Bind the SMTP listener on the running loop (no threaded Controller).
-
-    Pass ``connections`` to watch the open connections (``working`` tells when in-flight
-    relays are done during a graceful shutdown; ``close_all`` ends the rest).
-    """
-    loop = loop or asyncio.get_running_loop()
-    smtp = settings.smtp
-    # aiosmtpd would look the name up on every connection; once is enough.
-    hostname = smtp.hostname or await asyncio.to_thread(socket.getfqdn)
-    connections = connections or Connections.from_settings(smtp)
-    context = tls_context(smtp)
-
-    def protocol() -> FilterSMTP:
-        return FilterSMTP(
-            handler,
-            smtp=smtp,
-            hostname=hostname,
-            connections=connections,
-            tls_context=context,
-            loop=loop,
-        )
-
-    # A burst of connections beyond asyncio's default backlog (100) would wait in the kernel
-    # for SYN-ACK retries (seconds to a minute) instead of getting their 220 or 421 at once.
-    backlog = max(128, smtp.max_connections + smtp.max_connections // 2)
-    return await loop.create_server(
-        protocol, host=smtp.listen.host, port=smtp.listen.port, backlog=backlog
-    )

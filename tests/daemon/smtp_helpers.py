@@ -23,7 +23,8 @@ from mailweir.daemon.settings import (
     Settings,
     SmtpSettings,
 )
-from mailweir.daemon.smtp import Connections, FilterHandler, create_smtp_server
+from mailweir.daemon.smtp import FilterHandler
+from mailweir.daemon.smtp_server import Connections, create_smtp_server
 
 LOCAL = "127.0.0.1"
 SINK_LIMIT = 128 * 1024 * 1024

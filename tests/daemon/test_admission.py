@@ -29,7 +29,8 @@ from mailweir.daemon.admission import (
 from mailweir.daemon.config import load_settings
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.settings import Settings, SmtpSettings
-from mailweir.daemon.smtp import Connections, FilterHandler, FilterSMTP, create_smtp_server
+from mailweir.daemon.smtp import FilterHandler
+from mailweir.daemon.smtp_server import Connections, FilterSMTP, create_smtp_server
 
 pytestmark = pytest.mark.timeout(60)
 

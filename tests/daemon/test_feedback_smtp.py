@@ -33,7 +33,8 @@ from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake, hashes_of
 from mailweir.daemon.judge import Judge
 from mailweir.daemon.metrics import Metrics, ReportRefresher
 from mailweir.daemon.settings import FeedbackSettings, Settings
-from mailweir.daemon.smtp import FilterHandler, create_smtp_server
+from mailweir.daemon.smtp import FilterHandler
+from mailweir.daemon.smtp_server import create_smtp_server
 from mailweir.daemon.verdict_log import VerdictLog
 from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import DEFAULT_OPTIONS

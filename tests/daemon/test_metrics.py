@@ -16,7 +16,7 @@ from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayErr
 from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, failure_kind
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import SmtpSettings
-from mailweir.daemon.smtp import Connections
+from mailweir.daemon.smtp_server import Connections
 from mailweir.store import ModelStore, reports
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 

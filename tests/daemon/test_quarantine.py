@@ -32,7 +32,8 @@ from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import feedback_closed
 from mailweir.daemon.quarantine import HOLD_FAILED, Quarantine, QuarantineCollector
 from mailweir.daemon.settings import HostPort, HttpSettings, Settings
-from mailweir.daemon.smtp import Connections, FilterHandler, create_smtp_server
+from mailweir.daemon.smtp import FilterHandler
+from mailweir.daemon.smtp_server import Connections, create_smtp_server
 from mailweir.store.held_mail import HeldEnvelope
 
 QUARANTINE = "quarantine@harbourlane.example"

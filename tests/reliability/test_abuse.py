@@ -43,7 +43,8 @@ from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.judge import Judge
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.settings import FeedbackSettings
-from mailweir.daemon.smtp import FilterHandler, create_smtp_server
+from mailweir.daemon.smtp import FilterHandler
+from mailweir.daemon.smtp_server import create_smtp_server
 from mailweir.daemon.verdict_log import VerdictLog
 from mailweir.model.tokenize import DEFAULT_OPTIONS
 from mailweir.store import ModelStore
