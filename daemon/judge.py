@@ -56,10 +56,10 @@ from typing import Any, Literal
 
 import numpy as np
 
+from mailweir.daemon.log_setup import tag_message
 from mailweir.daemon.settings import PolicySettings, Settings
-from mailweir.model.hashing import token_hashes
-from mailweir.model.nb import NaiveBayes, Score, make_scorer
-from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
+from mailweir.model.nb import NaiveBayes, Score
+from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens_and_hashes
 from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
 
 log = logging.getLogger("mailweir.judge")
@@ -112,8 +112,8 @@ def band_for(probability: float, policy: PolicySettings) -> Literal["ham", "susp
 
 def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, list[str]]:
     """Return the message's unique sorted hashes and one token text per hash (same order)."""
-    words = tokens(raw, options)
-    aligned = token_hashes(words)  # each word hashed once, through the digest cache
+    # Each word hashed once (through the digest cache); bigram hashes mixed from word hashes.
+    words, aligned = tokens_and_hashes(raw, options)
     order = np.argsort(aligned, kind="stable")
     ordered = aligned[order]
     first = np.ones(len(ordered), dtype=np.bool_)  # the first word of each hash keeps it
@@ -209,6 +209,7 @@ class Judge:
 
     async def judge(self, raw: bytes) -> Judgement:
         tracking_id = new_tracking_id()
+        tag_message(tracking_id)  # this message's log lines (a scoring failure's too) carry it
         policy = self._policy  # one policy for the whole message, even across a reload
         executor = self.executor
         try:
@@ -314,13 +315,13 @@ def _model_identity(store: Any, settings: Settings) -> tuple[TokenizerOptions, N
     Hashes made with other tokenizer options would silently miss every stored count, so the
     store's stamp wins over the configuration.
     """
+    from mailweir.daemon.learning import options_from_json, scorer_for
+
     options = DEFAULT_OPTIONS
     stamped = store.get_meta(META_TOKENIZER)
     if stamped:
-        from mailweir.daemon.learning import options_from_json
-
         options = options_from_json(stamped)
     method = store.get_meta(META_METHOD) or settings.model.method
     if method != settings.model.method:
         log.info("model database was built for method %r; using it over model.method", method)
-    return options, make_scorer(method)
+    return options, scorer_for(method, options)  # a bigram model: Fisher over every token

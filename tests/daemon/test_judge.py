@@ -16,9 +16,10 @@ import pytest
 
 from mailweir.daemon import judge as judge_module
 from mailweir.daemon.judge import Judge, band_for, make_executor, new_tracking_id
+from mailweir.daemon.learning import META_TOKENIZER, options_to_json
 from mailweir.daemon.settings import ModelSettings, PolicySettings, Settings
 from mailweir.model.hashing import message_digest
-from mailweir.model.tokenize import tokenize
+from mailweir.model.tokenize import DEFAULT_OPTIONS, tokenize
 from mailweir.model.types import HAM, SPAM, Vocabulary
 
 try:
@@ -254,14 +255,14 @@ async def test_judge_cpu_and_database_work_leave_the_loop_free(
     # loop, the loop could never reach release.set() and the wait would time out.
     release = threading.Event()
     seen: dict[str, Any] = {}
-    real_tokens = judge_module.tokens
+    real_tokens = judge_module.tokens_and_hashes
 
-    def held_tokens(raw: bytes, options: Any) -> list[str]:
+    def held_tokens(raw: bytes, options: Any) -> Any:
         seen["thread"] = threading.get_ident()
         seen["released"] = release.wait(10)
         return real_tokens(raw, options)
 
-    monkeypatch.setattr(judge_module, "tokens", held_tokens)
+    monkeypatch.setattr(judge_module, "tokens_and_hashes", held_tokens)
     store = FakeStore()
     task = asyncio.create_task(Judge(store, settings()).judge(NEW_HAM))
     for _ in range(1000):
@@ -280,9 +281,9 @@ async def test_judge_concurrency_capped_by_semaphore(monkeypatch: pytest.MonkeyP
     gate = threading.Event()
     lock = threading.Lock()
     state = {"now": 0, "most": 0}
-    real_tokens = judge_module.tokens
+    real_tokens = judge_module.tokens_and_hashes
 
-    def counting_tokens(raw: bytes, options: Any) -> list[str]:
+    def counting_tokens(raw: bytes, options: Any) -> Any:
         with lock:
             state["now"] += 1
             state["most"] = max(state["most"], state["now"])
@@ -291,7 +292,7 @@ async def test_judge_concurrency_capped_by_semaphore(monkeypatch: pytest.MonkeyP
             state["now"] -= 1
         return real_tokens(raw, options)
 
-    monkeypatch.setattr(judge_module, "tokens", counting_tokens)
+    monkeypatch.setattr(judge_module, "tokens_and_hashes", counting_tokens)
     capped = dataclasses.replace(settings(), model=ModelSettings(max_concurrent_scoring=2))
     with concurrent.futures.ThreadPoolExecutor(8) as pool:
         judge = Judge(FakeStore(), capped, pool)
@@ -353,3 +354,17 @@ async def test_judge_never_lets_cancellation_pass_as_failure() -> None:
     with pytest.raises(asyncio.CancelledError):
         await task
     assert judge.counts["failed"] == 0
+
+
+def test_judge_scores_a_bigram_model_with_every_token_and_words_with_the_cap() -> None:
+    # bench/ACCURACY.md: capped at 25 tokens a bigram model did far worse than words alone;
+    # the daemon must score as `mailweir train`/`replay` do (learning.scorer_for).
+    words_store, bigram_store = FakeStore(), FakeStore()
+    bigram_options = dataclasses.replace(DEFAULT_OPTIONS, bigrams=True)
+    bigram_store.meta[META_TOKENIZER] = options_to_json(bigram_options)
+    words = Judge(words_store, settings())
+    bigrams = Judge(bigram_store, settings())
+    assert getattr(words.scorer, "max_tokens", None) == 25
+    assert bigrams.options.bigrams and getattr(bigrams.scorer, "max_tokens", 0) is None
+    words.close()
+    bigrams.close()
