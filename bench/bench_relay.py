@@ -169,6 +169,9 @@ def main() -> None:
     parser.add_argument("--large-messages", type=int, default=150, help="100 KB ones per run")
     parser.add_argument("--clients", type=int, nargs="+", default=[1, 8, 32])
     parser.add_argument("--rounds", type=int, default=1, help="repeat every pair of runs")
+    parser.add_argument(
+        "--sizes", nargs="+", choices=["4KB", "100KB"], default=["4KB", "100KB"], help="sizes"
+    )
     parser.add_argument("--min-tokens", type=int, default=500_000, help="model size")
     args = parser.parse_args()
     model = bench_mail.build_model(args.min_tokens)
@@ -198,6 +201,8 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
     )
     for size, count in ((4096, args.messages), (100 * 1024, args.large_messages)):
         label = f"{size // 1024}KB"
+        if label not in args.sizes:
+            continue
         messages = [bench_mail.message(i, size, seed=7) for i in range(count)]
         # One pass first, so the count cache holds these messages' tokens: the steady state
         # of a site whose model fits model.cache_tokens (the default is 1,000,000).
