@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING, Any, AnyStr
 
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
-from mailweir.daemon import replies, site_policy, xforward
+from mailweir.daemon import replies, site_policy, smtp_paths, xforward
 from mailweir.daemon.admission import NO_FIRST_COMMAND, Admission
 from mailweir.daemon.relay import NextHopSession
 from mailweir.daemon.replies import Reply
@@ -231,6 +231,15 @@ class FilterSMTP(SMTP):
                 await self.push(str(exc.reply))
                 return
             await self.push(str(xforward.OK))
+
+    def _getaddr(self, arg: str) -> tuple[str | None, str | None]:
+        plain = smtp_paths.plain_path(arg)
+        if plain is None:
+            return super()._getaddr(arg)
+        local_part = plain[0].rpartition("@")[0]
+        if self.local_part_limit and len(local_part) > self.local_part_limit:
+            return None, None
+        return plain
 
     async def push(self, status: AnyStr) -> None:
         raw = status if isinstance(status, bytes) else status.encode("utf-8", "surrogateescape")
