@@ -122,6 +122,21 @@ async def test_smtp_slow_upload_not_cut_while_bytes_arrive(next_hop):
     assert len(next_hop.deliveries) == 1
 
 
+async def test_smtp_idle_timeout_counts_from_last_command(next_hop):
+    # The idle timer notes activity and re-checks when it fires: commands keep the connection
+    # past several timeout periods, and silence after them still closes it.
+    settings = with_smtp(daemon_settings(next_hop.address), command_timeout=0.5)
+    async with running_daemon(settings) as daemon:
+        reader, writer = await asyncio.open_connection(LOCAL, daemon.port)
+        assert (await reader.readline()).startswith(b"220 ")
+        for _ in range(8):  # 8 x 0.2 s, past three timeout periods in total
+            writer.write(b"NOOP\r\n")
+            assert (await reader.readline()).startswith(b"250 ")
+            await asyncio.sleep(0.2)
+        assert await asyncio.wait_for(reader.read(), timeout=10) == b""
+        writer.close()
+
+
 async def test_smtp_slow_next_hop_within_its_timeout_keeps_upstream(next_hop):
     # Relaying may take longer than the upstream command timeout (RFC 5321 section 4.5.3.2.6
     # gives the end of DATA 10 minutes); the upstream connection must stay open meanwhile.
