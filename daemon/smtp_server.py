@@ -13,7 +13,7 @@ import functools
 import logging
 import socket
 import ssl
-from collections.abc import Awaitable, Callable, Iterator
+from collections.abc import Awaitable, Callable, Coroutine, Iterator
 from contextlib import contextmanager
 from typing import TYPE_CHECKING, Any, AnyStr
 
@@ -32,10 +32,15 @@ log = logging.getLogger("mailweir.smtp")
 
 # aiosmtpd words these replies itself, without enhanced codes.  With the line limit lifted to
 # the message size limit, a line too long can only be a message too big.
-_OWN_WORDING = {
+_OWN_WORDING_BYTES = {
     b"552 Error: Too much mail data": str(replies.MESSAGE_TOO_BIG),
     b"552 Error: message size exceeds fixed maximum message size": str(replies.MESSAGE_TOO_BIG),
     b"500 Line too long (see RFC5321 4.5.3.1.6)": str(replies.MESSAGE_TOO_BIG),
+}
+# Looked up by the reply as aiosmtpd pushes it, str or bytes (the same text either way).
+_OWN_WORDING: dict[Any, str] = {
+    **_OWN_WORDING_BYTES,
+    **{raw.decode("ascii"): ours for raw, ours in _OWN_WORDING_BYTES.items()},
 }
 
 
@@ -266,10 +271,9 @@ class FilterSMTP(SMTP):
             return None, None
         return plain
 
-    async def push(self, status: AnyStr) -> None:
-        raw = status if isinstance(status, bytes) else status.encode("utf-8", "surrogateescape")
-        ours = _OWN_WORDING.get(raw)
-        await (super().push(status) if ours is None else super().push(ours))
+    def push(self, status: AnyStr) -> Coroutine[Any, Any, None]:
+        # Not a coroutine itself: it hands back aiosmtpd's, one frame less on every reply.
+        return super().push(_OWN_WORDING.get(status, status))
 
     @contextmanager
     def busy(self, seconds: float) -> Iterator[None]:
