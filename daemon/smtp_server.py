@@ -143,6 +143,7 @@ class FilterSMTP(SMTP):
         self.working = False
         self._idle_timer = False  # whether the running timer is the plain idle timeout
         self._last_activity = 0.0  # loop time of the last command or data
+        self._busy_until = 0.0  # loop time a busy() relay may last until
         # A client that never sends a command is cut off after smtp.first_command_timeout;
         # the first command it sends (any verb aiosmtpd knows) ends that wait.
         self._first_command_timeout = smtp.first_command_timeout
@@ -198,8 +199,8 @@ class FilterSMTP(SMTP):
     def _reset_timeout(self, duration: float | None = None) -> None:
         # Called for every command and every chunk of data: while the idle timer runs, only
         # note the time; the timer looks at it when it fires (cancelling and scheduling a
-        # timer each time cost about 5% of the daemon's CPU).  A given duration (busy())
-        # always starts a timer of its own.
+        # timer each time cost about 5% of the daemon's CPU).  A given duration (aiosmtpd's
+        # PROXY wait) always starts a timer of its own.
         self._last_activity = self.loop.time()
         if duration is None and self._idle_timer and self._timeout_handle is not None:
             return
@@ -211,9 +212,13 @@ class FilterSMTP(SMTP):
         )
 
     def _timeout_cb(self) -> None:
-        if self._idle_timer and not self.working:
-            left = self._last_activity + self._timeout_duration - self.loop.time()
-            if left > 0:  # activity since the timer started: wait the rest of the period
+        if self._idle_timer:
+            if self.working:  # busy(): the relay's own time limit
+                until = self._busy_until
+            else:  # idle: a full period after the last command, data or relay
+                until = self._last_activity + self._timeout_duration
+            left = until - self.loop.time()
+            if left > 0:
                 self._timeout_handle = self.loop.call_later(left, self._timeout_cb)
                 return
         super()._timeout_cb()
@@ -278,15 +283,16 @@ class FilterSMTP(SMTP):
     @contextmanager
     def busy(self, seconds: float) -> Iterator[None]:
         """Keep the upstream connection open while we work for ``seconds`` at most (the idle
-        timer would otherwise close it during a slow relay), then restart the idle timer."""
+        timer would otherwise close it during a slow relay), then restart the idle period.
+        The running idle timer reads both times when it fires; none is rescheduled here."""
+        self._reset_timeout()
         self.working = True
-        self._reset_timeout(max(seconds, self._timeout_duration))
+        self._busy_until = self.loop.time() + max(seconds, self._timeout_duration)
         try:
             yield
         finally:
             self.working = False
-            if self.transport is not None:
-                self._reset_timeout()
+            self._last_activity = self.loop.time()
 
     def forget_transaction(self) -> None:
         """Drop the envelope after a failed DATA, so the next MAIL starts clean."""
