@@ -269,7 +269,7 @@ def _within_margin(
     for item in batch:
         hashes, label, digest, _source = item
         probability, counts = pending.probability(model.scorer, hashes)
-        if should_train(probability, label, model.margin):
+        if should_train(probability, label, model.margin, int(pending.class_count()[label])):
             pending.add(hashes, counts, label, digest)
             chosen.append(item)
         else:

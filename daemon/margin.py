@@ -61,9 +61,22 @@ def signed_log_odds(probability: float, label: int) -> float:
     return logit if label == SPAM else -logit
 
 
-def should_train(probability: float, label: int, margin: float | None) -> bool:
-    """True unless the model already gives the true class with at least ``margin`` log-odds."""
-    return margin is None or outside_margin(signed_log_odds(probability, label), margin)
+MARGIN_WARMUP: Final = 50
+"""Messages of a class trained whatever the margin says, before the margin applies to it.
+
+A small first import of clearly separate mail would otherwise stop training after a dozen
+messages of a class, and the daemon's cold-start guard (``policy.min_trained``, also 50 by
+default) would hold for good: the guard counts trained messages."""
+
+
+def should_train(
+    probability: float, label: int, margin: float | None, class_trained: int = MARGIN_WARMUP
+) -> bool:
+    """True unless the model already gives the true class with at least ``margin`` log-odds
+    (and already holds ``MARGIN_WARMUP`` trained messages of that class)."""
+    if margin is None or class_trained < MARGIN_WARMUP:
+        return True
+    return outside_margin(signed_log_odds(probability, label), margin)
 
 
 def outside_margin(signed: float, margin: float) -> bool:

@@ -25,7 +25,12 @@ import numpy as np
 
 from mailweir.daemon.charts import Series, line_chart
 from mailweir.daemon.learning import OpenModel, Progress, open_model, scorer_for
-from mailweir.daemon.margin import DEFAULT_TRAIN_MARGIN, outside_margin, should_train
+from mailweir.daemon.margin import (
+    DEFAULT_TRAIN_MARGIN,
+    MARGIN_WARMUP,
+    outside_margin,
+    should_train,
+)
 from mailweir.daemon.replay_counts import MemoryCounts
 from mailweir.daemon.sources import LabelledMessage
 from mailweir.model import evaluate
@@ -172,10 +177,11 @@ def replay_hashes(
         for m, scorer in enumerate(chosen):
             scores[m, i - n_train] = _score(scorer, found, classes, vocabulary, log_odds)
         first = scores[0, i - n_train]
+        known = int(classes[labels[i]])
         if plan.protocol == "online" and (
-            _logit_should_train(first, labels[i], plan)
+            _logit_should_train(first, labels[i], plan, known)
             if log_odds
-            else _should_train(first, labels[i], plan)
+            else _should_train(first, labels[i], plan, known)
         ):
             learn(i)
     label_array = np.asarray(labels[n_train:], dtype=np.int64)
@@ -237,7 +243,8 @@ def _run(
         classes, vocabulary = model.store.class_count(), model.store.vocabulary()
         for m, scorer in enumerate(scorers):
             scores[m, i] = scorer.spam_probability(counts, classes, vocabulary)
-        if plan.protocol == "online" and _should_train(scores[0, i], message.label, plan):
+        known = int(classes[message.label])
+        if plan.protocol == "online" and _should_train(scores[0, i], message.label, plan, known):
             model.store.train(hashes, message.label, digest=message_digest(hashes), source="replay")
             trained += 1
         progress.tick()
@@ -254,13 +261,13 @@ def _run(
     )
 
 
-def _should_train(probability: float, label: int, plan: ReplayPlan) -> bool:
+def _should_train(probability: float, label: int, plan: ReplayPlan, class_trained: int) -> bool:
     """Train on every message, or only on errors and near-misses (the product's own rule)."""
-    return should_train(probability, label, plan.train_margin)
+    return should_train(probability, label, plan.train_margin, class_trained)
 
 
-def _logit_should_train(logit: float, label: int, plan: ReplayPlan) -> bool:
-    if plan.train_margin is None:
+def _logit_should_train(logit: float, label: int, plan: ReplayPlan, class_trained: int) -> bool:
+    if plan.train_margin is None or class_trained < MARGIN_WARMUP:
         return True
     signed = logit if label == 1 else -logit  # > 0: judged the right way
     return outside_margin(signed, plan.train_margin)

@@ -16,17 +16,19 @@ import numpy as np
 import pytest
 
 from mailweir.daemon import learning
+from mailweir.daemon import margin as margin_module
 from mailweir.daemon.feedback import FeedbackIntake
 from mailweir.daemon.feedback_types import FeedbackRequest, FeedbackStatus
 from mailweir.daemon.learning import ModelMismatch, OpenModel, Progress, open_model, train_from
 from mailweir.daemon.margin import (
     DEFAULT_TRAIN_MARGIN,
+    MARGIN_WARMUP,
     parse_margin,
     should_train,
     signed_log_odds,
 )
 from mailweir.daemon.metrics import Metrics
-from mailweir.daemon.settings import FeedbackSettings
+from mailweir.daemon.settings import FeedbackSettings, PolicySettings
 from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import tokenize
 from mailweir.model.types import HAM, SPAM
@@ -82,6 +84,12 @@ def quiet() -> Progress:
     return Progress("trained", enabled=False)
 
 
+@pytest.fixture
+def no_warmup(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The margin from the first message on, so a dozen messages show the rule at work."""
+    monkeypatch.setattr(margin_module, "MARGIN_WARMUP", 0)
+
+
 # -- the rule ----------------------------------------------------------------------------------
 
 
@@ -92,6 +100,27 @@ def test_signed_log_odds_is_the_logit_of_the_true_class() -> None:
     # 1.0 is clipped to 1 - 1e-16, which rounds to 1 - 2**-53: logit 53 ln 2.
     assert signed_log_odds(1.0, SPAM) == pytest.approx(53 * math.log(2))
     assert math.isfinite(signed_log_odds(0.0, HAM))
+
+
+def test_should_train_every_message_until_the_class_has_its_warmup() -> None:
+    sure = 1 - 1e-6
+    assert should_train(sure, SPAM, 10.0, class_trained=MARGIN_WARMUP - 1)
+    assert not should_train(sure, SPAM, 10.0, class_trained=MARGIN_WARMUP)
+
+
+def test_small_first_import_trains_enough_for_the_cold_start_guard(
+    model: OpenModel, tmp_path: Path
+) -> None:
+    # Sixty clearly separate messages per class, all ham first: without the warm-up the
+    # margin skipped most spam after a dozen, and the daemon's guard (policy.min_trained,
+    # 50) never let a verdict act (found by the real-Postfix integration test).
+    ham = write(tmp_path / "ham", HAM_LINES, 0, 60, "priya@harbourlane.example")
+    spam = write(tmp_path / "spam", SPAM_LINES, 100, 60, "offers@prizes.example")
+    train_from(model, [str(p) for p in ham], HAM, source="import", progress=quiet())
+    summary = train_from(model, [str(p) for p in spam], SPAM, source="import", progress=quiet())
+    assert PolicySettings().min_trained == MARGIN_WARMUP
+    assert model.store.class_count().min() >= MARGIN_WARMUP
+    assert summary["confident"] > 0  # after the warm-up the margin applies again
 
 
 def test_should_train_errors_and_near_misses_only() -> None:
@@ -115,7 +144,7 @@ def test_parse_margin_values_and_errors() -> None:
 
 
 def test_train_from_skips_a_message_already_judged_confidently(
-    model: OpenModel, tmp_path: Path
+    model: OpenModel, tmp_path: Path, no_warmup: None
 ) -> None:
     ham = write(tmp_path / "ham", HAM_LINES, 0, 12, "priya@harbourlane.example")
     spam = write(tmp_path / "spam", SPAM_LINES, 100, 12, "offers@prizes.example")
@@ -174,7 +203,7 @@ def test_open_model_stamps_the_default_margin_on_a_new_model(tmp_path: Path) -> 
 
 @pytest.mark.parametrize("method", ["fisher", "multinomial"])
 def test_train_from_batched_equals_one_message_at_a_time(
-    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, method: str
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, method: str, no_warmup: None
 ) -> None:
     # Reference: score each message on the store, train it alone if the rule says so.
     monkeypatch.setattr(learning, "BATCH", 4)  # several batch writes within one call
@@ -202,7 +231,7 @@ def test_train_from_batched_equals_one_message_at_a_time(
                 p = single.scorer.spam_probability(
                     store.lookup(hashes), store.class_count(), store.vocabulary()
                 )
-                if should_train(p, label, margin):
+                if should_train(p, label, margin, int(store.class_count()[label])):
                     store.train(hashes, label, digest=message_digest(hashes), source="t")
         assert skipped > 0
         assert batched.store.class_count().tolist() == single.store.class_count().tolist()
