@@ -11,10 +11,12 @@ import numpy as np
 import numpy.typing as npt
 
 from mailweir.model.nb_base import (
+    UNTRAINED_PROBABILITY,
     FloatArray,
     NaiveBayes,
     check_counts,
     check_frequency,
+    is_trained,
     posterior_spam,
     require_trained,
 )
@@ -122,6 +124,7 @@ class RobinsonFisher(NaiveBayes):
     """
 
     name: ClassVar[str] = "fisher"
+    uses_vocabulary: ClassVar[bool] = False  # f(w) reads only the token and class counts
     # Defaults chosen by measured accuracy (bench/ACCURACY.md): on the Enron-Spam development
     # corpus a light prior and the 25 most extreme tokens gave (1-AUC)% 0.163 against 0.301
     # for Robinson's s = 1 with every token, and caught 80% of spam at 0.1% false positives.
@@ -148,7 +151,13 @@ class RobinsonFisher(NaiveBayes):
         """Shape (n,): Robinson's smoothed spam probability f(w) of each token."""
         counts, classes = check_counts(token_count, class_count)
         require_trained(classes, self.name)
-        if np.any(counts > classes):
+        return self._probability(counts, classes)
+
+    def _probability(
+        self, counts: npt.NDArray[np.int64], classes: npt.NDArray[np.int64]
+    ) -> FloatArray:
+        """`token_probability` of counts already checked (``check_counts``, trained)."""
+        if (counts > classes).any():
             raise ValueError(
                 "fisher: a token is counted in more messages than were trained "
                 f"(class_count={classes.tolist()})"
@@ -162,10 +171,16 @@ class RobinsonFisher(NaiveBayes):
         f: FloatArray = (self.strength * self.assumed + n * p) / (self.strength + n)
         return f
 
-    def _selected(self, f: FloatArray, present: npt.NDArray[np.bool_]) -> npt.NDArray[np.intp]:
-        """Indices of the tokens used, most extreme first."""
+    def _selected(
+        self, f: FloatArray, present: npt.NDArray[np.bool_] | None = None
+    ) -> npt.NDArray[np.intp]:
+        """Indices of the tokens used, most extreme first (``present`` None: every token)."""
         deviation = np.abs(f - 0.5)
-        keep = present & (deviation >= self.min_deviation) & (deviation > 0)
+        keep = deviation > 0
+        if self.min_deviation > 0:
+            keep &= deviation >= self.min_deviation
+        if present is not None:
+            keep &= present
         chosen = np.flatnonzero(keep)
         chosen = chosen[np.argsort(-deviation[chosen], kind="stable")]
         return chosen if self.max_tokens is None else chosen[: self.max_tokens]
@@ -173,14 +188,9 @@ class RobinsonFisher(NaiveBayes):
     def indicator(self, f: FloatArray) -> float:
         """Robinson's I = (1 + H - S) / 2 for token probabilities f in (0, 1), shape (n,)."""
         f = np.asarray(f, dtype=np.float64)
-        if not np.all((f > 0) & (f < 1)):
+        if not ((f > 0) & (f < 1)).all():
             raise ValueError("fisher: token probabilities must lie strictly between 0 and 1")
-        if len(f) == 0:
-            return 0.5
-        dof = 2 * len(f)
-        h = chi2_survival_even(-2.0 * float(np.log(f).sum()), dof)
-        s = chi2_survival_even(-2.0 * float(np.log1p(-f).sum()), dof)
-        return min(1.0, max(0.0, (1.0 + h - s) / 2.0))
+        return _combined(np.log(f), np.log1p(-f))
 
     def joint_log_likelihood(
         self,
@@ -191,35 +201,67 @@ class RobinsonFisher(NaiveBayes):
     ) -> FloatArray:
         """Shape (2,): ``log([1 - I, I])``, Robinson's indicator in the kernel's shape."""
         f = self.token_probability(token_count, class_count)
-        present = check_frequency(frequency, len(f)) > 0
-        spam = self.indicator(f[self._selected(f, present)])
-        result = np.empty(2)
-        with np.errstate(divide="ignore"):
-            result[HAM] = np.log(1.0 - spam)
-            result[SPAM] = np.log(spam)
-        return result
+        present = None if frequency is None else check_frequency(frequency, len(f)) > 0
+        return _as_jll(self.indicator(f[self._selected(f, present)]))
+
+    def spam_probability(
+        self,
+        token_count: TokenCounts,
+        class_count: ClassCounts,
+        vocabulary: Vocabulary,
+        frequency: npt.ArrayLike | None = None,
+    ) -> float:
+        """As the base class gives it, with the counts checked once (margin training)."""
+        if frequency is not None:
+            return super().spam_probability(token_count, class_count, vocabulary, frequency)
+        counts, classes = check_counts(token_count, class_count)
+        if not is_trained(classes):
+            return UNTRAINED_PROBABILITY
+        f = self._probability(counts, classes)
+        return posterior_spam(_as_jll(self.indicator(f[self._selected(f)])))
 
     def probability_and_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
     ) -> tuple[float, FloatArray]:
-        """As the two kernels give them, with f and the selection worked out once (hot path)."""
-        f = self.token_probability(token_count, class_count)
-        chosen = self._selected(f, np.ones(len(f), dtype=bool))
-        spam = self.indicator(f[chosen])
-        jll = np.empty(2)
-        with np.errstate(divide="ignore"):
-            jll[HAM] = np.log(1.0 - spam)
-            jll[SPAM] = np.log(spam)
+        """As the two kernels give them, with f, the selection and the logarithms of the
+        tokens used worked out once (hot path)."""
+        counts, classes = check_counts(token_count, class_count)
+        require_trained(classes, self.name)
+        f = self._probability(counts, classes)
+        chosen = self._selected(f)
+        used = f[chosen]
+        if not ((used > 0) & (used < 1)).all():
+            raise ValueError("fisher: token probabilities must lie strictly between 0 and 1")
+        log_f, log_rest = np.log(used), np.log1p(-used)
         weights = np.zeros(len(f))
-        weights[chosen] = np.log(f[chosen]) - np.log1p(-f[chosen])
-        return posterior_spam(jll), weights
+        weights[chosen] = log_f - log_rest
+        return posterior_spam(_as_jll(_combined(log_f, log_rest))), weights
 
     def token_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
     ) -> FloatArray:
         """Shape (n,): log(f / (1 - f)) for the tokens used, 0 for the others."""
         f = self.token_probability(token_count, class_count)
-        chosen = self._selected(f, np.ones(len(f), dtype=bool))
+        chosen = self._selected(f)
         weights = np.zeros(len(f))
         weights[chosen] = np.log(f[chosen]) - np.log1p(-f[chosen])
         return weights
+
+
+def _combined(log_f: FloatArray, log_rest: FloatArray) -> float:
+    """Robinson's I from ln f and ln(1 - f) of the tokens used, shape (n,)."""
+    if len(log_f) == 0:
+        return 0.5
+    dof = 2 * len(log_f)
+    h = chi2_survival_even(-2.0 * float(log_f.sum()), dof)
+    s = chi2_survival_even(-2.0 * float(log_rest.sum()), dof)
+    return min(1.0, max(0.0, (1.0 + h - s) / 2.0))
+
+
+def _as_jll(spam: float) -> FloatArray:
+    """``log([1 - I, I])``: Robinson's indicator in the kernel's shape (-inf at 0 or 1)."""
+    result = np.empty(2)
+    with np.errstate(divide="ignore"):
+        result[HAM] = np.log(1.0 - spam)
+        result[SPAM] = np.log(spam)
+    return result

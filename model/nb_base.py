@@ -65,7 +65,7 @@ class Score:
 
 def is_trained(class_count: ClassCounts) -> bool:
     """True when both classes have at least one trained message."""
-    return bool(np.all(np.asarray(class_count) > 0))
+    return bool((np.asarray(class_count) > 0).all())
 
 
 def check_counts(
@@ -75,7 +75,7 @@ def check_counts(
     counts = np.asarray(token_count)
     classes = np.asarray(class_count)
     for label, array in (("token_count", counts), ("class_count", classes)):
-        if array.size and not np.issubdtype(array.dtype, np.integer):
+        if array.size and array.dtype.kind not in "iu":  # np.integer's kinds, checked cheaply
             raise ValueError(f"{label} must hold integers, got dtype {array.dtype}")
     if counts.ndim != 2 or counts.shape[1] != 2:
         raise ValueError(f"token_count must have shape (n, 2), got {counts.shape}")
@@ -140,11 +140,15 @@ def strongest_evidence(
     if n_evidence < 0:
         raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
     hashes = np.asarray(token_hashes, dtype=np.int64)
+    # Zero weights are never listed, so only the others are ranked (often a few of hundreds).
     # lexsort keys run last-primary: strongest first, ties broken by hash for a stable list.
-    order = np.lexsort((hashes, -np.abs(weights)))
+    signed = np.flatnonzero(weights)
+    order = signed[np.lexsort((hashes[signed], -np.abs(weights[signed])))]
     ranked = weights[order]
     chosen = np.concatenate([order[ranked > 0][:n_evidence], order[ranked < 0][:n_evidence]])
-    return tuple(Evidence(int(hashes[i]), float(weights[i])) for i in chosen)
+    return tuple(
+        map(Evidence, hashes[chosen].tolist(), weights[chosen].astype(np.float64).tolist())
+    )
 
 
 class NaiveBayes(ABC):
@@ -155,6 +159,8 @@ class NaiveBayes(ABC):
     """
 
     name: ClassVar[str]
+    uses_vocabulary: ClassVar[bool] = True
+    """False when the vocabulary summary never changes a result (callers may skip making it)."""
 
     @abstractmethod
     def joint_log_likelihood(
