@@ -46,7 +46,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from mailweir.daemon.learning import DEFAULT_METHOD
+from mailweir.daemon.learning import DEFAULT_METHOD, scorer_for
 from mailweir.daemon.margin import DEFAULT_TRAIN_MARGIN
 from mailweir.daemon.replay import ReplayPlan, replay_hashes
 from mailweir.daemon.settings import PolicySettings
@@ -293,7 +293,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     hashes, tokenize_seconds = tokenized(corpus, options, args.cache)
     plan = ReplayPlan(methods=(), train_margin=args.margin)
-    scorers = [parse_variant(v) for v in args.variant or [DEFAULT_METHOD]]
+    # Without --variant, the scorer the product gives a model with these options.
+    scorers = (
+        [parse_variant(v) for v in args.variant]
+        if args.variant
+        else [scorer_for(DEFAULT_METHOD, options)]
+    )
     result = replay_hashes(
         hashes, labels.tolist(), [m.name for m in corpus], plan, scorers, log_odds=args.log_odds
     )
