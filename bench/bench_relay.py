@@ -31,6 +31,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -175,22 +176,26 @@ def main() -> None:
     parser.add_argument("--min-tokens", type=int, default=500_000, help="model size")
     args = parser.parse_args()
     model = bench_mail.build_model(args.min_tokens)
-    with tempfile.TemporaryDirectory(prefix="mailweir-bench-relay-") as tmp:
+    with tempfile.TemporaryDirectory(prefix="mailweir-bench-relay-") as tmp, ExitStack() as stop:
         folder = Path(tmp)
         here = [PYTHON, str(BENCH / "relay_parts.py")]
+        # Each process is stopped however the run ends, a later one failing to start included.
         sink, sink_port = _start([*here, "sink", str(folder / "sink")], folder / "sink")
+        stop.callback(_stop, sink)
         bare, bare_port = _start(
             [*here, "bare", f"{LOCAL}:{sink_port}", str(folder / "bare")], folder / "bare"
         )
+        stop.callback(_stop, bare)
         port = _free_port()
         config = _mailweir_config(folder, model, sink_port, port)
         daemon, _ = _start([MAILWEIR, "run", "--config", str(config)], None, port)
-        try:
-            _run(args, bare.pid, bare_port, daemon.pid, port)
-        finally:
-            for process in (daemon, bare, sink):
-                process.terminate()
-                process.wait(30)
+        stop.callback(_stop, daemon)
+        _run(args, bare.pid, bare_port, daemon.pid, port)
+
+
+def _stop(process: subprocess.Popen[bytes]) -> None:
+    process.terminate()
+    process.wait(30)
 
 
 def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port: int) -> None:
