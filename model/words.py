@@ -29,6 +29,9 @@ _MONEY: Final = re.compile(
     r"([$€£¥])\s?(\d{1,15}(?:[.,]\d{1,3})*)|(?<![\w.,])(\d{1,15}(?:[.,]\d{1,3})*)\s?"
     r"([$€£¥]|usd\b|eur\b|gbp\b)"
 )
+_SIGNS: Final = "$€£¥"
+_NUMBER_THEN_WORD: Final = re.compile(r"\d\s?(?:usd|eur|gbp)")
+_MONEY_START: Final = re.compile(r"[$€£¥\d]\d*")  # a sign, or a run of digits from its first
 # Cheap tests that decide whether the slower obfuscation checks run at all.
 _LEET_HINT: Final = LEET_NEIGHBOUR
 _SEPARATED_HINT: Final = re.compile(r"\b\w[-._*+~·•]\w[-._*+~·•]\w[-._*+~·•]\w\b")
@@ -50,11 +53,37 @@ def magnitude(digits: int) -> str:
 def money_tokens(text: str) -> list[str]:
     """ "money:<symbol>:<magnitude>" for amounts such as "$250", "€ 1.200,00" or "99 usd"."""
     found: list[str] = []
-    for symbol, amount, amount2, symbol2 in _MONEY.findall(text):
+    for symbol, amount, amount2, symbol2 in _money_matches(text):
         currency = _CURRENCY.get(symbol or symbol2, "?")
         whole = _CENTS.split(amount or amount2)[0]
         digits = sum(ch.isdigit() for ch in whole)
         found.append(f"money:{currency}:{magnitude(max(digits, 1))}")
+    return found
+
+
+def _money_matches(text: str) -> list[tuple[str, str, str, str]]:
+    """``_MONEY.findall(text)``, found faster.
+
+    ``_MONEY`` starts with a look-behind, so ``findall`` tries both branches at every
+    character (about 0.3 µs each; "eur" inside "amateur" sent a fifth of the development
+    corpus's messages through it).  A match holds a currency sign, or a digit followed by a
+    currency word; without either there is none.  Otherwise a match can only start at a sign
+    or at the first digit of a run (a later digit follows a word character, which the
+    look-behind refuses), so ``match`` is tried only there, and scanning resumes after each
+    match as ``findall`` does.
+    """
+    if not any(sign in text for sign in _SIGNS) and not _NUMBER_THEN_WORD.search(text):
+        return []
+    found: list[tuple[str, str, str, str]] = []
+    search, match = _MONEY_START.search, _MONEY.match
+    at = 0
+    while (start := search(text, at)) is not None:
+        amount = match(text, start.start())
+        if amount is None:
+            at = start.end()
+        else:
+            found.append(amount.groups(default=""))  # type: ignore[arg-type]
+            at = amount.end()
     return found
 
 
