@@ -18,6 +18,7 @@ import math
 from typing import Final
 
 import numpy as np
+import numpy.typing as npt
 
 from mailweir.model.nb import NaiveBayes
 from mailweir.model.types import SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
@@ -94,6 +95,11 @@ class PendingCounts:
     pending messages are written, so each decision sees every message before it.  A digest
     seen twice is counted once, as the store's ledger does.  (A message the ledger holds under
     the other class is moved by the store; here it only adds until the batch is written.)
+
+    The counts of a batch's tokens are read from the store once (``prefetch``, one query) and
+    held in arrays sorted by hash, stored and pending counts added together, so deciding one
+    message is a ``searchsorted`` and no store lookup.  The store is not written until the
+    batch is, so what it would answer per message is what was read for the batch.
     """
 
     def __init__(self, store: ModelStore) -> None:
@@ -102,19 +108,41 @@ class PendingCounts:
 
     def clear(self) -> None:
         """Forget the pending messages once the store holds them."""
-        self._counts: dict[int, list[int]] = {}
+        self._keys = np.empty(0, dtype=np.int64)  # sorted unique hashes held
+        self._counts = np.zeros((0, 2), dtype=np.int64)  # stored + pending, row per key
         self._classes = np.zeros(2, dtype=np.int64)
         self._digests: set[bytes] = set()
         self._delta = VocabularyTracker()  # from zero: the pending change to the summary
+        self._unapplied: list[tuple[TokenCounts, int]] = []  # added since the summary was made
         self._base: Vocabulary | None = None  # the store's, read once per batch
 
+    def prefetch(self, hashes: TokenHashes) -> None:
+        """Read the stored counts of ``hashes`` (every token of a batch, repeats allowed) that
+        are not held yet, in one lookup."""
+        wanted = np.unique(np.asarray(hashes, dtype=np.int64))
+        if len(self._keys):
+            wanted = wanted[~_held(self._keys, wanted)]
+        if not len(wanted):
+            return
+        stored = self._store.lookup(wanted)
+        keys = np.concatenate([self._keys, wanted])
+        order = np.argsort(keys, kind="stable")
+        self._keys = keys[order]
+        self._counts = np.concatenate([self._counts, stored])[order]
+
     def lookup(self, hashes: TokenHashes) -> TokenCounts:
-        """Shape (n, 2): stored counts plus pending ones for ``hashes``."""
-        counts = self._store.lookup(hashes)
-        if self._counts:
-            extra = [self._counts.get(h, (0, 0)) for h in hashes.tolist()]
-            counts = counts + np.array(extra, dtype=np.int64).reshape(-1, 2)
-        return counts
+        """Shape (n, 2): stored counts plus pending ones for ``hashes`` (unique)."""
+        return self._counts[self._rows(hashes)]
+
+    def _rows(self, hashes: TokenHashes) -> npt.NDArray[np.intp]:
+        """Row of each hash in the held arrays, reading any not held yet from the store."""
+        hashes = np.asarray(hashes, dtype=np.int64)
+        if len(self._keys):
+            rows = np.minimum(np.searchsorted(self._keys, hashes), len(self._keys) - 1)
+            if (self._keys[rows] == hashes).all():
+                return rows
+        self.prefetch(hashes)
+        return np.searchsorted(self._keys, hashes)
 
     def class_count(self) -> ClassCounts:
         return self._store.class_count() + self._classes
@@ -126,6 +154,11 @@ class PendingCounts:
         if not self._digests:
             return base
         delta = self._delta
+        for before, label in self._unapplied:  # deferred: a scorer may never ask for it
+            after = before.copy()
+            after[:, label] += 1
+            delta.apply(before, after)
+        self._unapplied.clear()
         width = max(base.count_histogram.shape[1], delta.histogram.shape[1])
         histogram = np.zeros((2, width), dtype=np.int64)
         histogram[:, : base.count_histogram.shape[1]] += base.count_histogram
@@ -135,7 +168,13 @@ class PendingCounts:
     def probability(self, scorer: NaiveBayes, hashes: TokenHashes) -> tuple[float, TokenCounts]:
         """The spam probability of a message's tokens now, and the counts it was scored on."""
         counts = self.lookup(hashes)
-        return scorer.spam_probability(counts, self.class_count(), self.vocabulary()), counts
+        if scorer.uses_vocabulary:
+            vocabulary = self.vocabulary()
+        else:  # the store's summary only stands in: this scorer's result does not depend on it
+            if self._base is None:
+                self._base = self._store.vocabulary()
+            vocabulary = self._base
+        return scorer.spam_probability(counts, self.class_count(), vocabulary), counts
 
     def add(self, hashes: TokenHashes, counts: TokenCounts, label: int, digest: bytes) -> None:
         """Count a message decided for training; ``counts`` are its tokens' counts before it."""
@@ -143,9 +182,13 @@ class PendingCounts:
             return
         self._digests.add(digest)
         self._classes[label] += 1
-        after = counts.copy()
-        after[:, label] += 1
-        self._delta.apply(counts, after)
-        for h in hashes.tolist():
-            row = self._counts.setdefault(h, [0, 0])
-            row[label] += 1
+        self._unapplied.append((counts, label))
+        # A message's hashes are unique, so each row gains one at most.
+        self._counts[self._rows(hashes), label] += 1
+
+
+def _held(keys: TokenHashes, hashes: TokenHashes) -> npt.NDArray[np.bool_]:
+    """Which of ``hashes`` the sorted, non-empty ``keys`` hold."""
+    rows = np.minimum(np.searchsorted(keys, hashes), len(keys) - 1)
+    held: npt.NDArray[np.bool_] = keys[rows] == hashes
+    return held
