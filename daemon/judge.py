@@ -52,7 +52,7 @@ import time
 from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Any, Final, Literal
 
 import numpy as np
 
@@ -149,6 +149,10 @@ class _ModelView:
     class_count: ClassCounts
     counts: TokenCounts | None  # None when the cold-start guard holds
     vocabulary: Vocabulary | None
+
+
+_NO_VOCABULARY: Final = Vocabulary.from_token_counts(np.zeros((0, 2), dtype=np.int64))
+"""Handed to a scorer that declares it does not use the vocabulary summary."""
 
 
 @dataclass(frozen=True)
@@ -293,7 +297,10 @@ class Judge:
         # An empty class leaves no posterior at all, so the guard holds even with min_trained 0.
         if class_count.min() < max(min_trained, 1):
             return _ModelView(class_count, None, None)
-        return _ModelView(class_count, self._store.lookup(hashes), self._store.vocabulary())
+        # Fisher reads only token and class counts: no vocabulary summary (its snapshot costs
+        # time per message and, made once in a thread, memory the allocator keeps).
+        vocabulary = self._store.vocabulary() if self.scorer.uses_vocabulary else _NO_VOCABULARY
+        return _ModelView(class_count, self._store.lookup(hashes), vocabulary)
 
 
 def _evidence_text(

@@ -146,6 +146,7 @@ class FakeStore:
         return np.tile(np.array([[1, 0]], dtype=np.int64), (len(hashes), 1))
 
     def vocabulary(self) -> Vocabulary:
+        self.vocabulary_reads = getattr(self, "vocabulary_reads", 0) + 1
         return Vocabulary.from_token_counts(np.array([[1, 0], [0, 1]], dtype=np.int64))
 
 
@@ -368,3 +369,35 @@ def test_judge_scores_a_bigram_model_with_every_token_and_words_with_the_cap() -
     assert bigrams.options.bigrams and getattr(bigrams.scorer, "max_tokens", 0) is None
     words.close()
     bigrams.close()
+
+
+@pytest.mark.parametrize(("method", "reads"), [("fisher", 0), ("multinomial", 1)])
+async def test_judge_reads_the_vocabulary_only_for_a_scorer_that_uses_it(
+    method: str, reads: int
+) -> None:
+    store = FakeStore()
+    judge = Judge(store, dataclasses.replace(settings(), model=ModelSettings(method=method)))
+    try:
+        judgement = await judge.judge(NEW_HAM)
+    finally:
+        judge.close()
+    assert judgement.band == "ham"
+    assert getattr(store, "vocabulary_reads", 0) == reads
+
+
+def test_fisher_score_is_the_same_without_the_vocabulary_summary() -> None:
+    # What the judge relies on when it passes Fisher an empty summary (uses_vocabulary False).
+    rng = np.random.default_rng(7)
+    counts = rng.integers(0, 40, size=(300, 2))
+    hashes = np.arange(300, dtype=np.int64)
+    classes = np.array([700, 500], dtype=np.int64)
+    full = Vocabulary.from_token_counts(rng.integers(0, 40, size=(5000, 2)))
+    empty = Vocabulary.from_token_counts(np.zeros((0, 2), dtype=np.int64))
+    judge = Judge(FakeStore(), settings())
+    fisher = judge.scorer
+    judge.close()
+    assert not fisher.uses_vocabulary
+    with_summary = fisher.score(hashes, counts, classes, full, 4)
+    without = fisher.score(hashes, counts, classes, empty, 4)
+    assert with_summary.spam_probability == without.spam_probability
+    assert with_summary.evidence == without.evidence
