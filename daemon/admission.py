@@ -24,10 +24,9 @@ from collections.abc import Iterable
 from mailweir.daemon import replies
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import SmtpSettings
+from mailweir.daemon.site_policy import IpAddress, Networks, client_address
 
 log = logging.getLogger("mailweir.smtp")
-
-IpNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
 
 # RFC 5321 section 3.8 (421 closes the channel); RFC 3463 section 3.8, X.7.0 "Other or
 # undefined security status": a policy refusal, as for a client over its connection share.
@@ -39,25 +38,12 @@ NO_FIRST_COMMAND = Reply(421, "4.4.2", "No command received in time, closing con
 UNKNOWN_CLIENT = "unknown"  # a peer without an IP address counts as one outside client
 
 
-def _address(host: str | None) -> ipaddress.IPv4Address | ipaddress.IPv6Address | None:
-    """The peer's IP address (an IPv4-mapped IPv6 address as IPv4), or None."""
-    if not host:
-        return None
-    try:
-        address = ipaddress.ip_address(host.split("%", 1)[0])  # without an IPv6 zone index
-    except ValueError:
-        return None
-    if isinstance(address, ipaddress.IPv6Address) and address.ipv4_mapped is not None:
-        return address.ipv4_mapped
-    return address
-
-
 def client_key(host: str | None) -> str:
     """The identity the per-client cap counts: the address, or an IPv6 address's /64."""
-    return _key(_address(host))
+    return _key(client_address(host))
 
 
-def _key(address: ipaddress.IPv4Address | ipaddress.IPv6Address | None) -> str:
+def _key(address: IpAddress | None) -> str:
     if address is None:
         return UNKNOWN_CLIENT
     if isinstance(address, ipaddress.IPv6Address):
@@ -78,9 +64,7 @@ class Admission:
     ) -> None:
         self.limit = limit
         self.per_client = per_client  # None: no cap per client
-        self.reserved_networks: tuple[IpNetwork, ...] = tuple(
-            ipaddress.ip_network(network) for network in reserved_networks
-        )
+        self.reserved_networks = Networks("smtp.reserved_networks", reserved_networks)
         self.outside_limit = max(limit - reserved_connections, 0)
         self.by_client: Counter[str] = Counter()  # open connections per outside client
         self.refused: Counter[str] = Counter()  # refusals by enhanced code, since start
@@ -134,7 +118,7 @@ class Admission:
 
     def _outside_key(self, host: str | None) -> str | None:
         """None for a client in the reserved networks, else its :func:`client_key`."""
-        address = _address(host)
-        if address is not None and any(address in net for net in self.reserved_networks):
+        address = client_address(host)
+        if self.reserved_networks.find(address) is not None:
             return None
         return _key(address)
