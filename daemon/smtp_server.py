@@ -115,6 +115,7 @@ class FilterSMTP(SMTP):
         smtp: SmtpSettings,
         hostname: str,
         connections: Connections,
+        xforward_networks: site_policy.Networks,
         tls_context: ssl.SSLContext | None = None,
         loop: asyncio.AbstractEventLoop | None = None,
     ) -> None:
@@ -134,9 +135,7 @@ class FilterSMTP(SMTP):
             loop=loop,
         )
         self._connections = connections
-        self._xforward_networks = site_policy.Networks(
-            "smtp.xforward_networks", smtp.xforward_networks
-        )
+        self._xforward_networks = xforward_networks
         self._counted = False
         self._refused = False
         self._peer_host: str | None = None
@@ -331,6 +330,8 @@ async def create_smtp_server(
     hostname = smtp.hostname or await asyncio.to_thread(socket.getfqdn)
     connections = connections or Connections.from_settings(smtp)
     context = tls_context(smtp)
+    # Parsed once for the server, not once per connection.
+    xforward_networks = site_policy.Networks("smtp.xforward_networks", smtp.xforward_networks)
 
     def protocol() -> FilterSMTP:
         return FilterSMTP(
@@ -338,6 +339,7 @@ async def create_smtp_server(
             smtp=smtp,
             hostname=hostname,
             connections=connections,
+            xforward_networks=xforward_networks,
             tls_context=context,
             loop=loop,
         )
