@@ -54,10 +54,6 @@ LISTED_VERDICT = {"allow": "sender-allowed", "block": "sender-blocked"}
 SCORE_BANDS = ("ham", "suspect", "spam")
 STOPPING: tuple[Outcome, ...] = ("reroute", "reject")  # gentler first
 
-# RFC 5321 section 4.2.3 (550 "rejected for policy reasons"); RFC 3463 section 3.8, X.7.1
-# "Delivery not authorized, message refused": the site's block list, not the content.
-SENDER_REFUSED = Reply(550, "5.7.1", "Message refused by site policy for this sender")
-
 
 @dataclass(frozen=True)
 class Decision:
@@ -137,7 +133,7 @@ def decide_listed(hit: ListHit, policy: PolicySettings, exempt: bool) -> Decisio
 
 def refusal(decision: Decision) -> Reply:
     """The 5xx for a ``reject`` decision."""
-    return SENDER_REFUSED if decision.listed else replies.REJECTED_AS_SPAM
+    return replies.SENDER_REFUSED if decision.listed else replies.REJECTED_AS_SPAM
 
 
 def _for_recipient(band: str, score: float, view: RecipientView) -> Decision:

@@ -28,13 +28,6 @@ from mailweir.daemon.site_policy import IpAddress, Networks, client_address
 
 log = logging.getLogger("mailweir.smtp")
 
-# RFC 5321 section 3.8 (421 closes the channel); RFC 3463 section 3.8, X.7.0 "Other or
-# undefined security status": a policy refusal, as for a client over its connection share.
-TOO_MANY_FROM_CLIENT = Reply(421, "4.7.0", "Too many connections from your address, try later")
-# RFC 5321 sections 3.8 and 4.5.3.2 (a server may close on timeout, with 421); RFC 3463
-# section 3.5, X.4.2 "Bad connection" names the time-out case.
-NO_FIRST_COMMAND = Reply(421, "4.4.2", "No command received in time, closing connection")
-
 UNKNOWN_CLIENT = "unknown"  # a peer without an IP address counts as one outside client
 
 
@@ -94,7 +87,7 @@ class Admission:
         if key is None:
             return None
         if self.per_client is not None and self.by_client[key] >= self.per_client:
-            return self._refuse(host, TOO_MANY_FROM_CLIENT)
+            return self._refuse(host, replies.TOO_MANY_FROM_CLIENT)
         if self.outside >= self.outside_limit:
             return self._refuse(host, replies.TOO_MANY_CONNECTIONS)
         self.by_client[key] += 1

@@ -27,6 +27,7 @@ from typing import Final
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
+from mailweir.daemon import replies
 from mailweir.daemon.errors import RelayError
 from mailweir.daemon.relay import MailParameters, NextHopSession, RelayTimeouts
 from mailweir.daemon.replies import Reply
@@ -42,10 +43,6 @@ from mailweir.store.held_mail import (
 
 log = logging.getLogger("mailweir.quarantine")
 
-# 451 "local error in processing" (RFC 5321 section 4.2.3), X.3.0 "Other or undefined mail
-# system status" (RFC 3463 section 3.4): the held copy could not be written, so the message
-# is not rerouted; the upstream retries later.
-HOLD_FAILED: Final = Reply(451, "4.3.0", "Quarantine copy not stored, try again later")
 FOLDER: Final = "quarantine"
 
 
@@ -95,7 +92,7 @@ class Quarantine:
         except (OSError, HeldMailError) as exc:
             self.hold_failures += 1
             log.error("%s: held copy not written (%s); answering 451", tracking_id, exc)
-            return HOLD_FAILED
+            return replies.HOLD_FAILED
         log.info("%s: held for %s", tracking_id, ", ".join(recipients))
         return None
 

@@ -90,6 +90,16 @@ TOO_MANY_RECIPIENTS = Reply(452, "4.5.3", "Too many recipients")
 # RFC 5321 section 3.8 and 4.2.3 (421 closes the channel); RFC 3463 section 3.4,
 # X.3.2 "System not accepting network messages".
 TOO_MANY_CONNECTIONS = Reply(421, "4.3.2", "Too many connections, try again later")
+# RFC 5321 section 3.8 (421 closes the channel); RFC 3463 section 3.8, X.7.0 "Other or
+# undefined security status": a policy refusal, as for a client over its connection share.
+TOO_MANY_FROM_CLIENT = Reply(421, "4.7.0", "Too many connections from your address, try later")
+# RFC 5321 sections 3.8 and 4.5.3.2 (a server may close on timeout, with 421); RFC 3463
+# section 3.5, X.4.2 "Bad connection" names the time-out case.
+NO_FIRST_COMMAND = Reply(421, "4.4.2", "No command received in time, closing connection")
+# 451 "local error in processing" (RFC 5321 section 4.2.3), X.3.0 "Other or undefined mail
+# system status" (RFC 3463 section 3.4): the held copy could not be written, so the message
+# is not rerouted; the upstream retries later.
+HOLD_FAILED = Reply(451, "4.3.0", "Quarantine copy not stored, try again later")
 
 # -- permanent --------------------------------------------------------------------------------
 # RFC 5321 section 4.2.3 (552 "exceeded storage allocation"); RFC 3463 section 3.4,
@@ -103,3 +113,17 @@ BAD_SENDER_SYNTAX = Reply(553, "5.1.7", "Sender address contains control charact
 # RFC 5321 section 4.2.3 (550 "mailbox unavailable ... or rejected for policy reasons");
 # RFC 3463 section 3.8, X.7.1 "Delivery not authorized, message refused".
 REJECTED_AS_SPAM = Reply(550, "5.7.1", "Message refused as spam")
+# RFC 5321 section 4.2.3 (550 "rejected for policy reasons"); RFC 3463 section 3.8, X.7.1
+# "Delivery not authorized, message refused": the site's block list, not the content.
+SENDER_REFUSED = Reply(550, "5.7.1", "Message refused by site policy for this sender")
+
+# -- XFORWARD (daemon/xforward.py) ------------------------------------------------------------
+# RFC 5321 section 4.2.2 (250); RFC 3463 section 3.1, X.0.0.
+XFORWARD_OK = Reply(250, "2.0.0", "Ok")
+# RFC 5321 section 4.2.3 (550 "rejected for policy reasons"); RFC 3463 section 3.8, X.7.0
+# "Other or undefined security status": a client outside smtp.xforward_networks.
+XFORWARD_NOT_PERMITTED = Reply(550, "5.7.0", "XFORWARD not permitted from this client")
+# RFC 5321 section 4.2.3 (503 "Bad sequence of commands"); RFC 3463 section 3.6, X.5.1
+# "Invalid command" (out of sequence).
+XFORWARD_NEEDS_EHLO = Reply(503, "5.5.1", "Send EHLO first")
+XFORWARD_IN_TRANSACTION = Reply(503, "5.5.1", "XFORWARD not allowed within a mail transaction")

@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING, Any, AnyStr
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
 from mailweir.daemon import replies, site_policy, smtp_paths, xforward
-from mailweir.daemon.admission import NO_FIRST_COMMAND, Admission
+from mailweir.daemon.admission import Admission
 from mailweir.daemon.relay import NextHopSession
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import Settings, SmtpSettings
@@ -241,7 +241,7 @@ class FilterSMTP(SMTP):
             return
         log.debug("%s: no first command in %ss", self._peer_host, self._first_command_timeout)
         self._connections.admission.first_command_timeouts += 1
-        _close_with(self.transport, NO_FIRST_COMMAND)
+        _close_with(self.transport, replies.NO_FIRST_COMMAND)
 
     @property
     def xforward_allowed(self) -> bool:
@@ -252,11 +252,11 @@ class FilterSMTP(SMTP):
     async def smtp_XFORWARD(self, arg: str | None) -> None:
         """XFORWARD NAME= ADDR= PROTO= HELO= SOURCE= (see daemon/xforward.py)."""
         if not self.xforward_allowed:
-            await self.push(str(xforward.NOT_PERMITTED))
+            await self.push(str(replies.XFORWARD_NOT_PERMITTED))
         elif not self.session.host_name:
-            await self.push(str(xforward.NEEDS_EHLO))
+            await self.push(str(replies.XFORWARD_NEEDS_EHLO))
         elif self.envelope.mail_from is not None:
-            await self.push(str(xforward.IN_TRANSACTION))
+            await self.push(str(replies.XFORWARD_IN_TRANSACTION))
         else:
             envelope: Any = self.envelope
             try:
@@ -264,7 +264,7 @@ class FilterSMTP(SMTP):
             except xforward.XforwardError as exc:
                 await self.push(str(exc.reply))
                 return
-            await self.push(str(xforward.OK))
+            await self.push(str(replies.XFORWARD_OK))
 
     def _getaddr(self, arg: str) -> tuple[str | None, str | None]:
         plain = smtp_paths.plain_path(arg)

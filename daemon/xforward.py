@@ -28,11 +28,6 @@ _NOT_KNOWN = {"[UNAVAILABLE]", "[TEMPUNAVAIL]"}
 _MAX_VALUE = 255  # a host name's limit (RFC 1035), ample for an address or a protocol name
 _XTEXT_HEX = re.compile(r"\+([0-9A-Fa-f]{2})")
 
-OK = Reply(250, "2.0.0", "Ok")
-NOT_PERMITTED = Reply(550, "5.7.0", "XFORWARD not permitted from this client")
-NEEDS_EHLO = Reply(503, "5.5.1", "Send EHLO first")
-IN_TRANSACTION = Reply(503, "5.5.1", "XFORWARD not allowed within a mail transaction")
-
 
 @dataclass(frozen=True)
 class Forwarded:

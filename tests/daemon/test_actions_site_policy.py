@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from mailweir.daemon import actions
+from mailweir.daemon import actions, replies
 from mailweir.daemon.settings import PolicySettings, RecipientPolicy
 from mailweir.daemon.site_policy import ListHit, SitePolicy
 
@@ -63,7 +63,7 @@ def test_decide_for_recipients_unscored_bands_use_the_plain_decision() -> None:
 def test_decide_listed_block_actions_and_exemption() -> None:
     reject = actions.decide_listed(BLOCKED, replace(BASE, block_action="reject"), False)
     assert (reject.action, reject.band, reject.verdict) == ("reject", "listed", "sender-blocked")
-    assert actions.refusal(reject) is actions.SENDER_REFUSED
+    assert actions.refusal(reject) is replies.SENDER_REFUSED
     spared = actions.decide_listed(BLOCKED, replace(BASE, block_action="reject"), True)
     assert (spared.action, spared.note) == ("tag", "exempt recipient")
 

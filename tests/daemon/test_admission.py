@@ -19,13 +19,7 @@ import pytest
 from smtp_helpers import LOCAL, FakeJudge, FakeVerdictLog, daemon_settings
 
 from mailweir.daemon import replies
-from mailweir.daemon.admission import (
-    NO_FIRST_COMMAND,
-    TOO_MANY_FROM_CLIENT,
-    UNKNOWN_CLIENT,
-    Admission,
-    client_key,
-)
+from mailweir.daemon.admission import UNKNOWN_CLIENT, Admission, client_key
 from mailweir.daemon.config import load_settings
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.settings import Settings, SmtpSettings
@@ -58,11 +52,11 @@ def test_admission_per_client_cap_answers_4_7_0() -> None:
     admission = Admission(10, per_client=2)
     assert admission.admit("192.0.2.7", 0) is None
     assert admission.admit("192.0.2.7", 1) is None
-    assert admission.admit("192.0.2.7", 2) == TOO_MANY_FROM_CLIENT
+    assert admission.admit("192.0.2.7", 2) == replies.TOO_MANY_FROM_CLIENT
     assert admission.admit("192.0.2.8", 2) is None  # another client is not held back
     admission.release("192.0.2.7")
     assert admission.admit("192.0.2.7", 2) is None  # a slot given back can be taken again
-    assert str(TOO_MANY_FROM_CLIENT).startswith("421 4.7.0 ")
+    assert str(replies.TOO_MANY_FROM_CLIENT).startswith("421 4.7.0 ")
     assert admission.refused == {"4.7.0": 1}  # counted (and logged: the first, every 1,000th)
 
 
@@ -167,7 +161,7 @@ async def test_smtp_silent_client_gets_421_4_4_2_after_first_command_timeout(nex
         assert (await reader.readline()).startswith(b"220 ")
         rest = await asyncio.wait_for(reader.read(), timeout=20)  # until the daemon closes
         writer.close()
-        assert rest == str(NO_FIRST_COMMAND).encode() + b"\r\n"
+        assert rest == str(replies.NO_FIRST_COMMAND).encode() + b"\r\n"
         assert rest.startswith(b"421 4.4.2 ")
         for _ in range(100):  # the slot is given back once the close is processed
             if connections.active == 0:
@@ -221,7 +215,7 @@ async def test_smtp_per_client_cap_answers_421_4_7_0_at_greeting(next_hop):
         for _, writer in [*opened, (other_reader, other_writer)]:
             writer.close()
     assert sum(g.startswith(b"220 ") for g in greetings) == 3
-    assert greetings[3:] == [str(TOO_MANY_FROM_CLIENT).encode() + b"\r\n"] * 2
+    assert greetings[3:] == [str(replies.TOO_MANY_FROM_CLIENT).encode() + b"\r\n"] * 2
     assert other.startswith(b"220 ")  # the cap is per client
 
 

@@ -24,13 +24,13 @@ from pathlib import Path
 import aiohttp
 from smtp_helpers import LOCAL, FakeJudge, FakeVerdictLog, Judged, NextHop, daemon_settings, send
 
-from mailweir.daemon import cli
+from mailweir.daemon import cli, replies
 from mailweir.daemon.digest import DigestSchedule, next_run
 from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.judge import new_tracking_id
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import feedback_closed
-from mailweir.daemon.quarantine import HOLD_FAILED, Quarantine, QuarantineCollector
+from mailweir.daemon.quarantine import Quarantine, QuarantineCollector
 from mailweir.daemon.settings import HostPort, HttpSettings, Settings
 from mailweir.daemon.smtp import FilterHandler
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
@@ -195,7 +195,7 @@ async def test_quarantine_hold_failure_answers_451_and_relays_nothing(
     blocker.write_text("a file where the state folder should be")
     async with holding_daemon(blocker, next_hop) as daemon:
         sent = await send(daemon.port, JUNK, [PRIYA], SENDER)
-        assert sent.data is not None and sent.data[0] == HOLD_FAILED.code
+        assert sent.data is not None and sent.data[0] == replies.HOLD_FAILED.code
         assert next_hop.deliveries == []
         assert daemon.quarantine.hold_failures == 1
 

@@ -26,7 +26,7 @@ from smtp_helpers import (
     send,
 )
 
-from mailweir.daemon import actions
+from mailweir.daemon import replies
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.settings import HostPort, RecipientPolicy
 
@@ -149,7 +149,7 @@ async def test_block_reject_before_queue_answers_550_5_7_1(next_hop: NextHop) ->
         position="before-queue",
     )
     # RFC 3463 section 3.8: X.7.1 "Delivery not authorized, message refused".
-    assert sent.data == (550, b"5.7.1 " + actions.SENDER_REFUSED.text.encode())
+    assert sent.data == (550, b"5.7.1 " + replies.SENDER_REFUSED.text.encode())
     assert next_hop.deliveries == [] and judge.seen == []  # never scored, even as ham
     assert (log.records[0].band, log.records[0].action) == ("listed", "reject")
     assert log.records[0].sender_list == "block"
