@@ -368,6 +368,7 @@ def _ranges(s: Settings) -> list[tuple[str, float, float, float, str]]:
         ("log.verdict_batch_seconds", s.log.verdict_batch_seconds, 1e-3, 3600, "0 < s <= 3600"),
         ("feedback.rate_limit_per_hour", s.feedback.rate_limit_per_hour, 0, inf, "0 or more"),
         ("feedback.max_message_bytes", s.feedback.max_message_bytes, 1, inf, "at least 1"),
+        ("quarantine.retention_days", s.quarantine.retention_days, 1, inf, "1 or more"),
         ("upkeep.prune_every_hours", s.upkeep.prune_every_hours, 0, inf, "hours, 0: off"),
         ("upkeep.prune_max_count", s.upkeep.prune_max_count, 1, inf, "1 or more messages"),
         ("upkeep.prune_unseen_days", s.upkeep.prune_unseen_days, 1, inf, "1 or more days"),
@@ -398,7 +399,7 @@ def _check_policy(policy: PolicySettings) -> None:
                 '"before-queue" (behind the queue a refusal bounces mail already accepted)',
             )
     mailbox = policy.quarantine_mailbox
-    if mailbox and (mailbox.count("@") != 1 or mailbox.startswith("@") or mailbox.endswith("@")):
+    if mailbox and not _is_address(mailbox):
         raise ConfigError(
             "policy.quarantine_mailbox", f"got {mailbox!r}; expected an address local@domain"
         )
@@ -454,14 +455,15 @@ def _check_feedback(feedback: FeedbackSettings) -> None:
     _check_networks("feedback.trusted_networks", feedback.trusted_networks)
 
 
+def _is_address(text: str) -> bool:
+    """Whether ``text`` has the local@domain shape (one "@", something either side)."""
+    return text.count("@") == 1 and not text.startswith("@") and not text.endswith("@")
+
+
 def _check_quarantine(quarantine: QuarantineSettings) -> None:
-    if quarantine.retention_days < 1:
-        raise ConfigError(
-            "quarantine.retention_days", f"got {quarantine.retention_days!r}; expected 1 or more"
-        )
     for name in ("digest_admin", "digest_from"):
         address = getattr(quarantine, name)
-        if address and (address.count("@") != 1 or address[0] == "@" or address[-1] == "@"):
+        if address and not _is_address(address):
             raise ConfigError(f"quarantine.{name}", f"got {address!r}; expected local@domain")
     if not quarantine.digest_time:
         return
