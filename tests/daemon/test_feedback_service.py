@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import re
 from pathlib import Path
+from typing import Any
 
 import aiohttp
 from prometheus_client.parser import text_string_to_metric_families
@@ -19,10 +20,16 @@ from test_forwarded import as_attachment
 from mailweir.daemon import scenario
 from mailweir.daemon.feedback import hashes_of
 from mailweir.daemon.service import Service
-from mailweir.daemon.settings import FeedbackSettings, HostPort, HttpSettings, ModelSettings
+from mailweir.daemon.settings import (
+    FeedbackSettings,
+    HostPort,
+    HttpSettings,
+    ModelSettings,
+    Settings,
+)
 from mailweir.model.hashing import message_digest
 from mailweir.model.tokenize import DEFAULT_OPTIONS
-from mailweir.model.types import SPAM
+from mailweir.model.types import SPAM, TokenHashes
 from mailweir.store import ModelStore
 
 TOKEN = "aGFyYm91cmxhbmUtc2VydmljZQ"
@@ -36,9 +43,11 @@ def _sample(text: str, name: str, **labels: str) -> float:
     raise AssertionError(f"no sample {name}{labels}")
 
 
-async def test_feedback_service_mail_and_http_share_one_intake(
-    tmp_path: Path, next_hop: NextHop
-) -> None:
+def reminder_taken_for_spam(
+    tmp_path: Path, next_hop: NextHop, token: str, **policy: Any
+) -> tuple[Settings, bytes, TokenHashes]:
+    """Settings of a whole daemon with feedback and HTTP on, whose model (in ``tmp_path``)
+    takes the overdue reminder, wanted mail, for spam; with the reminder and its hashes."""
     database = tmp_path / "model.sqlite3"
     reminder = scenario.overdue_reminder().raw
     hashes = hashes_of(reminder, DEFAULT_OPTIONS)
@@ -46,16 +55,23 @@ async def test_feedback_service_mail_and_http_share_one_intake(
     _train(store)
     store.train(hashes, SPAM, digest=message_digest(hashes), source="import")
     store.close()
-    base = daemon_settings(next_hop.address, min_trained=5, spam_threshold=0.9)
+    base = daemon_settings(next_hop.address, min_trained=5, spam_threshold=0.9, **policy)
     settings = dataclasses.replace(
         base,
         state_dir=tmp_path,
         model=ModelSettings(database=str(database), scoring_workers=1),
-        http=HttpSettings(listen=HostPort(LOCAL, 0), token=TOKEN),
+        http=HttpSettings(listen=HostPort(LOCAL, 0), token=token),
         feedback=FeedbackSettings(
             spam_address=scenario.FEEDBACK_SPAM, ham_address=scenario.FEEDBACK_HAM
         ),
     )
+    return settings, reminder, hashes
+
+
+async def test_feedback_service_mail_and_http_share_one_intake(
+    tmp_path: Path, next_hop: NextHop
+) -> None:
+    settings, reminder, hashes = reminder_taken_for_spam(tmp_path, next_hop, TOKEN)
     service = Service(settings)
     await service.startup()
     try:

@@ -6,23 +6,16 @@ The metrics text is read with prometheus_client's own parser.
 
 from __future__ import annotations
 
-import dataclasses
 from pathlib import Path
 
 import aiohttp
-from smtp_helpers import LOCAL, NextHop, daemon_settings, send
-from test_feedback_service import _sample
-from test_feedback_smtp import SUPPLIER, TOBIAS, _train
+from smtp_helpers import NextHop, send
+from test_feedback_service import _sample, reminder_taken_for_spam
+from test_feedback_smtp import SUPPLIER, TOBIAS
 from test_forwarded import as_attachment
 
 from mailweir.daemon import scenario
-from mailweir.daemon.feedback import hashes_of
 from mailweir.daemon.service import Service
-from mailweir.daemon.settings import FeedbackSettings, HostPort, HttpSettings, ModelSettings
-from mailweir.model.hashing import message_digest
-from mailweir.model.tokenize import DEFAULT_OPTIONS
-from mailweir.model.types import SPAM
-from mailweir.store import ModelStore
 
 TOKEN = "aGFyYm91cmxhbmUtaGVsZC1tYWls"
 QUARANTINE = "quarantine@harbourlane.example"
@@ -31,28 +24,9 @@ QUARANTINE = "quarantine@harbourlane.example"
 async def test_quarantine_service_feedback_retrains_and_releases_once(
     tmp_path: Path, next_hop: NextHop
 ) -> None:
-    database = tmp_path / "model.sqlite3"
-    reminder = scenario.overdue_reminder().raw  # wanted mail that the model takes for spam
-    hashes = hashes_of(reminder, DEFAULT_OPTIONS)
-    store = ModelStore.open(str(database))
-    _train(store)
-    store.train(hashes, SPAM, digest=message_digest(hashes), source="import")
-    store.close()
-    base = daemon_settings(
-        next_hop.address,
-        min_trained=5,
-        spam_threshold=0.9,
-        spam_action="reroute",
-        quarantine_mailbox=QUARANTINE,
-    )
-    settings = dataclasses.replace(
-        base,
-        state_dir=tmp_path,
-        model=ModelSettings(database=str(database), scoring_workers=1),
-        http=HttpSettings(listen=HostPort(LOCAL, 0), token=TOKEN),
-        feedback=FeedbackSettings(
-            spam_address=scenario.FEEDBACK_SPAM, ham_address=scenario.FEEDBACK_HAM
-        ),
+    # The reminder is wanted mail that the model takes for spam.
+    settings, reminder, _ = reminder_taken_for_spam(
+        tmp_path, next_hop, TOKEN, spam_action="reroute", quarantine_mailbox=QUARANTINE
     )
     service = Service(settings)
     await service.startup()
