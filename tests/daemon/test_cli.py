@@ -30,6 +30,17 @@ def _run(capsys: pytest.CaptureFixture[str], *argv: str) -> dict[str, object]:
     return json.loads(capsys.readouterr().out)
 
 
+def _train_both(
+    tmp_path: Path, sorted_mail: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
+) -> str:
+    """A model in ``tmp_path`` trained on the ham folder, then the spam one; its path."""
+    db = str(tmp_path / "model.sqlite3")
+    ham, spam = sorted_mail
+    _run(capsys, "train", "--ham", str(ham), "--db", db)
+    _run(capsys, "train", "--spam", str(spam), "--db", db)
+    return db
+
+
 def test_train_reports_trained_then_already_known(
     tmp_path: Path, sorted_mail: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -57,10 +68,8 @@ def test_train_the_other_way_moves_messages(
 def test_untrain_restores_an_empty_model(
     tmp_path: Path, sorted_mail: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
 ) -> None:
-    db = str(tmp_path / "model.sqlite3")
     ham, spam = sorted_mail
-    _run(capsys, "train", "--ham", str(ham), "--db", db)
-    _run(capsys, "train", "--spam", str(spam), "--db", db)
+    db = _train_both(tmp_path, sorted_mail, capsys)
     _run(capsys, "untrain", str(ham), str(spam), "--db", db)
     stats = _run(capsys, "stats", "--db", db)
     assert (stats["tokens"], stats["ham_messages"], stats["spam_messages"]) == (0, 0, 0)
@@ -69,10 +78,7 @@ def test_untrain_restores_an_empty_model(
 def test_score_explains_with_token_text(
     tmp_path: Path, sorted_mail: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
 ) -> None:
-    db = str(tmp_path / "model.sqlite3")
-    ham, spam = sorted_mail
-    _run(capsys, "train", "--ham", str(ham), "--db", db)
-    _run(capsys, "train", "--spam", str(spam), "--db", db)
+    db = _train_both(tmp_path, sorted_mail, capsys)
     junk = tmp_path / "junk.eml"
     junk.write_bytes(scenario.generate(1, "spam", 99)[0].raw)
     report = _run(capsys, "score", str(junk), "--db", db)
@@ -86,10 +92,7 @@ def test_score_explains_with_token_text(
 def test_score_plain_output_names_band_and_cutoffs(
     tmp_path: Path, sorted_mail: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
 ) -> None:
-    db = str(tmp_path / "model.sqlite3")
-    ham, spam = sorted_mail
-    _run(capsys, "train", "--ham", str(ham), "--db", db)
-    _run(capsys, "train", "--spam", str(spam), "--db", db)
+    db = _train_both(tmp_path, sorted_mail, capsys)
     note = tmp_path / "note.eml"
     note.write_bytes(scenario.generate(1, "ham", 99)[0].raw)
     assert cli.main(["score", str(note), "--db", db]) == 0
