@@ -32,7 +32,7 @@ from mailweir.daemon.settings import (
     Settings,
     SmtpSettings,
 )
-from mailweir.daemon.site_policy import Networks, SitePolicy
+from mailweir.daemon.site_policy import Networks, SitePolicy, action_problem
 
 ENV_PREFIX = "MAILWEIR_"
 CONFIG_PATH_ENV = "MAILWEIR_CONFIG"  # the file to read when --config is not given
@@ -388,16 +388,9 @@ def _check_policy(policy: PolicySettings) -> None:
     if policy.ham_action in ("reroute", "reject"):
         raise ConfigError("policy.ham_action", f"got {policy.ham_action!r}; expected pass or tag")
     for name in ("suspect_action", "spam_action", "block_action"):
-        action = getattr(policy, name)
-        key = f"policy.{name}"
-        if action == "reroute" and not policy.quarantine_mailbox:
-            raise ConfigError(key, 'is "reroute"; expected policy.quarantine_mailbox to be set')
-        if action == "reject" and policy.position != "before-queue":
-            raise ConfigError(
-                key,
-                f'is "reject" with policy.position = {policy.position!r}; expected '
-                '"before-queue" (behind the queue a refusal bounces mail already accepted)',
-            )
+        problem = action_problem(getattr(policy, name), policy)
+        if problem is not None:
+            raise ConfigError(f"policy.{name}", problem)
     mailbox = policy.quarantine_mailbox
     if mailbox and not _is_address(mailbox):
         raise ConfigError(

@@ -252,15 +252,23 @@ def _merged(policy: PolicySettings, rule: RecipientPolicy, where: str) -> Policy
             f"for {rule.match!r}; expected at most the spam threshold",
         )
     for name in ("suspect_action", "spam_action"):
-        action = getattr(merged, name)
-        if action == "reroute" and not policy.quarantine_mailbox:
-            raise ConfigError(f"{where}.{name}", 'is "reroute"; expected policy.quarantine_mailbox')
-        if action == "reject" and policy.position != "before-queue":
-            raise ConfigError(
-                f"{where}.{name}",
-                f'is "reject" with policy.position = {policy.position!r}; expected "before-queue"',
-            )
+        problem = action_problem(getattr(merged, name), policy)
+        if problem is not None:
+            raise ConfigError(f"{where}.{name}", problem)
     return merged
+
+
+def action_problem(action: str, policy: PolicySettings) -> str | None:
+    """Why ``action`` cannot be configured beside ``policy``'s mailbox and position, or None
+    (for ``[policy]``'s actions and each ``[[policy.recipient]]`` rule's alike)."""
+    if action == "reroute" and not policy.quarantine_mailbox:
+        return 'is "reroute"; expected policy.quarantine_mailbox to be set'
+    if action == "reject" and policy.position != "before-queue":
+        return (
+            f'is "reject" with policy.position = {policy.position!r}; expected '
+            '"before-queue" (behind the queue a refusal bounces mail already accepted)'
+        )
+    return None
 
 
 _last: tuple[PolicySettings, SitePolicy] | None = None
