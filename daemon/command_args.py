@@ -24,6 +24,12 @@ def db_argument(parser: argparse.ArgumentParser) -> None:
 def config_arguments(parser: argparse.ArgumentParser) -> None:
     """``--config`` (the daemon's TOML file) and ``--db`` overriding its database, for the
     commands that act as the daemon would (``check``, ``upkeep``)."""
+    config_file_argument(parser)
+    parser.add_argument("--db", metavar="URL_OR_PATH", help="database (default: the config's)")
+
+
+def config_file_argument(parser: argparse.ArgumentParser) -> None:
+    """``--config``: the daemon's TOML file, by default the one ``$MAILWEIR_CONFIG`` names."""
     from mailweir.daemon.config import CONFIG_PATH_ENV  # late: keeps this module light
 
     parser.add_argument(
@@ -32,7 +38,6 @@ def config_arguments(parser: argparse.ArgumentParser) -> None:
         default=os.environ.get(CONFIG_PATH_ENV) or None,
         help=f"TOML configuration file (default: ${CONFIG_PATH_ENV}; none: built-in defaults)",
     )
-    parser.add_argument("--db", metavar="URL_OR_PATH", help="database (default: the config's)")
 
 
 def json_argument(parser: argparse.ArgumentParser) -> None:

@@ -15,11 +15,10 @@ import os
 import sys
 import time
 from collections.abc import Callable
-from pathlib import Path
 
 from mailweir.daemon import digest
-from mailweir.daemon.command_args import json_argument, print_report
-from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource
+from mailweir.daemon.command_args import config_file_argument, json_argument, print_report
+from mailweir.daemon.config import ConfigSource
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.quarantine import Quarantine
 from mailweir.daemon.settings import Settings
@@ -69,12 +68,7 @@ def add_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> No
 
 
 def _config_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument(
-        "--config",
-        type=Path,
-        default=os.environ.get(CONFIG_PATH_ENV) or None,
-        help=f"the daemon's TOML configuration (default: ${CONFIG_PATH_ENV})",
-    )
+    config_file_argument(parser)
     parser.add_argument("--state-dir", metavar="PATH", help="the daemon's state directory")
     parser.add_argument("--next-hop", metavar="HOST:PORT", help="SMTP server to release to")
 
