@@ -21,7 +21,7 @@ from mailweir.daemon import (
     upkeep,
 )
 from mailweir.daemon.command_args import db_argument, json_argument, print_report
-from mailweir.daemon.settings import PolicySettings
+from mailweir.daemon.settings import PolicySettings, UpkeepSettings
 from mailweir.daemon.sources import SourceError, read_corpus
 from mailweir.model.hashing import token_hash
 from mailweir.model.types import HAM, SPAM
@@ -357,8 +357,15 @@ def _add_model_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
         description="Delete tokens seen in few messages and not seen recently; they carry "
         "little evidence and most of the rows.",
     )
-    prune.add_argument("--max-count", type=int, default=1, help="messages containing the token")
-    prune.add_argument("--unseen-days", type=int, default=60)
+    # The daemon's scheduled prune (upkeep.prune_*) and this command share their defaults.
+    upkeep = UpkeepSettings()
+    prune.add_argument(
+        "--max-count",
+        type=int,
+        default=upkeep.prune_max_count,
+        help="messages containing the token",
+    )
+    prune.add_argument("--unseen-days", type=int, default=upkeep.prune_unseen_days)
     db_argument(prune)
     json_argument(prune)
     prune.set_defaults(handler=cmd_prune)
