@@ -20,6 +20,7 @@ from typing import Final
 import numpy as np
 import numpy.typing as npt
 
+from mailweir.daemon.settings import PolicySettings
 from mailweir.model.nb import NaiveBayes
 from mailweir.model.types import SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
 from mailweir.store import ModelStore
@@ -62,12 +63,12 @@ def signed_log_odds(probability: float, label: int) -> float:
     return logit if label == SPAM else -logit
 
 
-MARGIN_WARMUP: Final = 50
+MARGIN_WARMUP: Final = PolicySettings.min_trained  # the guard's default, 50
 """Messages of a class trained whatever the margin says, before the margin applies to it.
 
 A small first import of clearly separate mail would otherwise stop training after a dozen
-messages of a class, and the daemon's cold-start guard (``policy.min_trained``, also 50 by
-default) would hold for good: the guard counts trained messages."""
+messages of a class, and the daemon's cold-start guard (``policy.min_trained``, whose default
+this is) would hold for good: the guard counts trained messages."""
 
 
 def should_train(
