@@ -62,6 +62,16 @@ class KeyedStore:
         return self.rows.get(tracking_id)
 
 
+async def journaled_log(store: Any, folder: Path, count: int) -> VerdictLog:
+    """A started verdict log that writes only when flushed or closed, its journal in
+    ``folder``, with ``record(0)`` to ``record(count - 1)`` added."""
+    log = VerdictLog(store, batch_seconds=3600, batch_size=1000, journal_dir=folder)
+    await log.start()
+    for n in range(count):
+        log.add(record(n))
+    return log
+
+
 def segments(folder: Path) -> list[str]:
     return sorted(p.name for p in folder.glob("segment-*.journal"))
 
@@ -142,10 +152,7 @@ def test_journal_one_owner_at_a_time(tmp_path: Path) -> None:
 
 async def test_verdict_log_kill_then_restart_writes_every_queued_row(tmp_path: Path) -> None:
     store = KeyedStore()
-    log = VerdictLog(store, batch_seconds=3600, batch_size=1000, journal_dir=tmp_path)
-    await log.start()
-    for n in range(12):
-        log.add(record(n))
+    log = await journaled_log(store, tmp_path, 12)
     assert store.rows == {} and log.pending == 12  # nothing reached the database yet
     await abandon(log)
 
@@ -161,10 +168,7 @@ async def test_verdict_log_kill_then_restart_writes_every_queued_row(tmp_path: P
 async def test_verdict_log_replay_skips_rows_already_written(tmp_path: Path) -> None:
     # Killed after the database took a batch but before the segment was deleted: no row twice.
     store = KeyedStore()
-    log = VerdictLog(store, batch_seconds=3600, batch_size=1000, journal_dir=tmp_path)
-    await log.start()
-    for n in range(6):
-        log.add(record(n))
+    log = await journaled_log(store, tmp_path, 6)
     store.record_verdicts([record(n) for n in range(4)])  # as if that batch had just landed
     await abandon(log)
     restarted = VerdictLog(store, batch_seconds=3600, journal_dir=tmp_path)
@@ -176,10 +180,7 @@ async def test_verdict_log_replay_skips_rows_already_written(tmp_path: Path) -> 
 
 async def test_verdict_log_deletes_segments_once_written(tmp_path: Path) -> None:
     store = KeyedStore()
-    log = VerdictLog(store, batch_seconds=3600, batch_size=1000, journal_dir=tmp_path)
-    await log.start()
-    for n in range(5):
-        log.add(record(n))
+    log = await journaled_log(store, tmp_path, 5)
     assert len(segments(tmp_path)) == 1
     await log.flush()
     assert len(store.rows) == 5 and segments(tmp_path) == []
@@ -189,10 +190,7 @@ async def test_verdict_log_deletes_segments_once_written(tmp_path: Path) -> None
 async def test_verdict_log_close_with_database_down_keeps_the_journal(tmp_path: Path) -> None:
     store = KeyedStore()
     store.fail = True
-    log = VerdictLog(store, batch_seconds=3600, batch_size=1000, journal_dir=tmp_path)
-    await log.start()
-    for n in range(3):
-        log.add(record(n))
+    log = await journaled_log(store, tmp_path, 3)
     await log.close()  # one last try fails: the rows stay in the journal
     assert log.dropped == 3 and len(segments(tmp_path)) == 1
     store.fail = False
