@@ -132,6 +132,18 @@ class FilterHandler:
             raise
         self._record(judgement, decision, action, envelope, received_at)
         self._count(judgement, decision, action)
+        # One line per message, as a mail server logs each delivery: what an admin greps for.
+        log.info(
+            "%s: from=<%s> recipients=%d size=%d band=%s score=%s action=%s reply=%d",
+            judgement.tracking_id,
+            envelope.mail_from or "",
+            len(envelope.rcpt_tos),
+            len(envelope.original_content or b""),
+            decision.band or judgement.band,
+            "-" if judgement.score is None else f"{judgement.score:.4f}",
+            action,
+            reply.code,
+        )
         return str(reply)
 
     async def handle_EHLO(

@@ -132,6 +132,12 @@ async def test_log_setup_transaction_lines_carry_id_and_never_text(
     ids = {line["tracking_id"] for line in tagged}
     assert first.group(1).decode() in ids and len(ids) == 2  # both messages have lines
     assert any(line["level"] == "warning" and "next hop" in line["message"] for line in tagged)
+    # One summary line per message, whatever happened to it (as a mail server logs each).
+    summaries = [
+        line for line in tagged if " from=<priya.raman@harbourlane.example> " in line["message"]
+    ]
+    assert [line["message"].rsplit("reply=", 1)[1] for line in summaries] == ["250", "451"]
+    assert {line["tracking_id"] for line in summaries} == ids
     for line in lines:
         assert {"time", "level", "logger", "message"} <= set(line)
         named = [i for i in ids if i in line["message"]]
