@@ -196,9 +196,10 @@ async def run_demo(run_dir: Path, http_port: int, keep_running: bool) -> int:
         print_table(rows, ("from", "subject", "verdict", "score", "delivered to"))
         print()
         await correction(service, maildirs)
+        print_held(service, run_dir)
         status = service.http_address
         if status is not None:
-            print(f"\n5. Status page: http://{status}/   (metrics at http://{status}/metrics)")
+            print(f"\n6. Status page: http://{status}/   (metrics at http://{status}/metrics)")
         if keep_running and sys.stdin.isatty():
             print("   mailweir keeps running; press Ctrl-C to stop.")
             with contextlib.suppress(asyncio.CancelledError):
@@ -208,6 +209,18 @@ async def run_demo(run_dir: Path, http_port: int, keep_running: bool) -> int:
         sink.close()
     print(f"\nEverything the demo made is under {run_dir}.")
     return 0
+
+
+def print_held(service: Service, run_dir: Path) -> None:
+    """The junk rerouted to quarantine was also kept as it arrived, ready for a release."""
+    if service.quarantine is None:
+        return
+    held = service.quarantine.store.figures(service.settings.quarantine.retention_days).held
+    print(
+        f"\n5. {held} rerouted messages are held as they arrived, each releasable to its "
+        f"recipients:\n   mailweir held --state-dir {run_dir}    "
+        f"(then: mailweir release ID --state-dir {run_dir} --next-hop HOST:PORT)"
+    )
 
 
 def forward_as_attachment(landed: Message, sender: str, to: str) -> bytes:

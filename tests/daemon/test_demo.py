@@ -39,3 +39,4 @@ async def test_demo_delivers_ham_quarantines_spam_and_learns_a_correction(
     after, before = map(float, found.groups())
     assert after < before
     assert re.search(r"Status page: http://127\.0\.0\.1:\d+/", out)
+    assert re.search(r"5\. 5 rerouted messages are held as they arrived", out)
