@@ -40,7 +40,7 @@ def cmd_train(args: argparse.Namespace) -> int:
     try:
         progress = learning.Progress("trained", None if not args.json else False)
         summary = learning.train_from(
-            model, args.sources, label, source=args.source, progress=progress
+            model, args.sources, label, source=args.source, progress=progress, workers=args.workers
         )
         seconds = progress.done()
     finally:
@@ -96,6 +96,14 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
         help="orthogonal sparse bigrams; fixed when a model is created",
     )
     train.add_argument("--method", help="scoring method to stamp on a new model")
+    train.add_argument(
+        "--workers",
+        type=_worker_count,
+        default=None,
+        metavar="N",
+        help="processes that tokenize ahead of training (default: one per core, at most "
+        f"{learning.MAX_WORKERS}; 1 on a machine busy with other work)",
+    )
     _margin_arguments(train, learning.STAMPED, "the model's own, stamped when it was made")
     db_argument(train)
     json_argument(train)
@@ -110,6 +118,16 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
     db_argument(untrain)
     json_argument(untrain)
     untrain.set_defaults(handler=cmd_untrain)
+
+
+def _worker_count(text: str) -> int:
+    try:
+        count = int(text)
+    except ValueError:
+        count = 0
+    if count < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number of processes >= 1, got {text!r}")
+    return count
 
 
 def _margin_value(text: str) -> float | None:

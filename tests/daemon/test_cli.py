@@ -206,3 +206,29 @@ def test_replay_ignore_header_drops_a_leaking_field(
     clean = _run(capsys, "replay", str(root), "--warmup", "4", "--ignore-header", "upstream-")
     assert leaked["methods"][0]["one_minus_auc_percent"] < 1.0  # type: ignore[index]
     assert clean["methods"][0]["one_minus_auc_percent"] > 30.0  # type: ignore[index]
+
+
+def test_train_workers_flag_reaches_training_and_refuses_nonsense(
+    tmp_path: Path,
+    sorted_mail: tuple[Path, Path],
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    seen: list[object] = []
+    real = cli.learning.train_from
+
+    def recording(*args: object, **kwargs: object) -> object:
+        seen.append(kwargs.get("workers"))
+        return real(*args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(cli.learning, "train_from", recording)
+    db = str(tmp_path / "model.sqlite3")
+    ham, spam = sorted_mail
+    _run(capsys, "train", "--ham", str(ham), "--db", db, "--workers", "1")
+    _run(capsys, "train", "--spam", str(spam), "--db", db)
+    assert seen == [1, None]  # None: one per core (learning.default_workers)
+    for bad in ("0", "-2", "many"):
+        with pytest.raises(SystemExit) as exited:
+            cli.main(["train", "--ham", str(ham), "--db", db, "--workers", bad])
+        assert exited.value.code == 2
+    assert "expected a whole number of processes >= 1" in capsys.readouterr().err
