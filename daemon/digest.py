@@ -15,7 +15,6 @@ through the next hop from ``quarantine.digest_from``.  :class:`DigestSchedule` s
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import datetime
 import email.policy
 import email.utils
@@ -28,6 +27,7 @@ from email.message import EmailMessage
 from email.parser import BytesHeaderParser
 from typing import Final
 
+from mailweir.daemon.background import stop_task
 from mailweir.daemon.config import digest_clock
 from mailweir.daemon.errors import RelayError
 from mailweir.daemon.quarantine import Quarantine
@@ -213,11 +213,8 @@ class DigestSchedule:
             self._task = asyncio.create_task(self._run(), name="mailweir-digest")
 
     async def stop(self) -> None:
-        if self._task is not None:
-            self._task.cancel()
-            with contextlib.suppress(asyncio.CancelledError):
-                await self._task
-            self._task = None
+        await stop_task(self._task)
+        self._task = None
 
     async def _run(self) -> None:
         due = next_run(self.quarantine.settings.quarantine.digest_time, self._clock())

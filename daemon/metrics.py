@@ -20,7 +20,6 @@ worker thread.  The verdict log's own counters are read at scrape time from the
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import logging
 import platform
 from collections.abc import Callable, Iterator
@@ -40,6 +39,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metri
 from prometheus_client.registry import Collector
 
 from mailweir.daemon import replies
+from mailweir.daemon.background import stop_task
 from mailweir.daemon.errors import NextHopRejected, RelayError
 from mailweir.daemon.upkeep import UpkeepMetrics
 from mailweir.store.reports import MisfilingRates, ModelSummary
@@ -425,11 +425,8 @@ class ReportRefresher:
             self._task = asyncio.create_task(self._run(), name="mailweir-report-refresh")
 
     async def stop(self) -> None:
-        if self._task is not None:
-            self._task.cancel()
-            with contextlib.suppress(asyncio.CancelledError):
-                await self._task
-            self._task = None
+        await stop_task(self._task)
+        self._task = None
 
     async def _run(self) -> None:
         while True:

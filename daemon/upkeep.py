@@ -27,6 +27,7 @@ from typing import Any, Final
 
 from prometheus_client import CollectorRegistry, Counter, Gauge
 
+from mailweir.daemon.background import stop_task
 from mailweir.daemon.command_args import config_arguments, json_argument, print_report
 from mailweir.daemon.config import load_settings
 from mailweir.daemon.errors import ConfigError
@@ -171,11 +172,8 @@ class Upkeep:
 
     async def stop(self) -> None:
         """Stop the schedule; a task already running in its thread is let finish."""
-        if self._task is not None:
-            self._task.cancel()
-            with contextlib.suppress(asyncio.CancelledError):
-                await self._task
-            self._task = None
+        await stop_task(self._task)
+        self._task = None
         if self._working is not None:
             with contextlib.suppress(Exception):
                 await self._working
