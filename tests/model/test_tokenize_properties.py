@@ -15,6 +15,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from mailweir.model.hashing import hash_tokens
+from mailweir.model.normalize import _SPACED, _SPACED_HINT, spaced_words
 from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens
 
 SMALL = TokenizerOptions(max_tokens=50, max_parts=6, max_depth=3, max_part_bytes=2000)
@@ -129,3 +130,14 @@ def test_tokens_plain_text_words_found(text: str) -> None:
     message.set_content(text)
     found = set(tokens(message.as_bytes()))
     assert {word for word in text.split() if 3 <= len(word) <= 20} <= found
+
+
+@settings(max_examples=500, deadline=None)
+@given(st.text(alphabet="fre1@$ .-_*+~·•\tab'x,", max_size=80))
+def test_spaced_run_hint_never_misses_a_run(text: str) -> None:
+    # spaced_words skips its full search when the cheap hint finds nothing; that is only
+    # safe if every run the full pattern finds also satisfies the hint.
+    if _SPACED.search(text):
+        assert _SPACED_HINT.search(text)
+    else:
+        assert spaced_words(text) == []
