@@ -10,7 +10,9 @@ relays the message unchanged, skipping the header rewrite).
 For each message size and client count it prints throughput, p50/p99 latency (MAIL FROM to the
 250 after DATA), the server's CPU time per message (the server process and its pool workers,
 from /proc) and the CPU other processes of the machine used meanwhile (busy time from
-/proc/stat minus this benchmark's own process tree).  The machine is shared: compare only
+/proc/stat minus this benchmark's own process tree), and the server tree's memory after each
+run: RSS summed over its processes, and PSS, where a page the processes share (the libraries
+the scoring pool's forkserver preloaded) counts once.  The machine is shared: compare only
 within one run.  Each message size starts with one unmeasured pass of its messages through
 the daemon (the count cache then holds their tokens), and each run with a short warm-up.
 
@@ -58,7 +60,8 @@ class Figures:
     p99_ms: float
     cpu_ms: float  # server CPU per message
     others_cpu: float  # CPU seconds of other processes during the run
-    rss_mb: float
+    rss_mb: float  # summed over the server's process tree
+    pss_mb: float  # the same, shared pages counted once
 
     @property
     def rate(self) -> float:
@@ -135,7 +138,9 @@ def _measure(
     sent = len(results.latencies)
     if results.failures:
         print(f"  {name}: {len(results.failures)} failures, first: {results.failures[0]}")
-    rss = sum(proc_cpu.rss_bytes(p) for p in proc_cpu.tree_pids(pid)) / 2**20
+    tree = proc_cpu.tree_pids(pid)
+    rss = sum(proc_cpu.rss_bytes(p) for p in tree) / 2**20
+    pss = sum(proc_cpu.pss_bytes(p) for p in tree) / 2**20
     return Figures(
         name,
         size,
@@ -148,6 +153,7 @@ def _measure(
         server / max(sent, 1) * 1e3,
         max(0.0, busy - ours),
         rss,
+        pss,
     )
 
 
@@ -155,7 +161,7 @@ def _print(bare: Figures, mine: Figures) -> None:
     for f in (bare, mine):
         print(
             f"{f.size:>6} {f.clients:>3} {f.server:<8} {f.rate:8.0f} {f.p50_ms:8.1f} "
-            f"{f.p99_ms:8.1f} {f.cpu_ms:8.2f} {f.others_cpu:7.1f}s {f.rss_mb:6.0f}"
+            f"{f.p99_ms:8.1f} {f.cpu_ms:8.2f} {f.others_cpu:7.1f}s {f.rss_mb:6.0f} {f.pss_mb:6.0f}"
         )
     print(
         f"{'':>6} {'':>3} {'ratio':<8} {mine.rate / bare.rate:8.2f} "
@@ -202,7 +208,7 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
     print(f"cores {os.cpu_count()}, load average {os.getloadavg()[0]:.2f} at start")
     print(
         f"{'size':>6} {'cli':>3} {'server':<8} {'msg/s':>8} {'p50 ms':>8} {'p99 ms':>8} "
-        f"{'cpu ms':>8} {'others':>8} {'RSS MB':>6}"
+        f"{'cpu ms':>8} {'others':>8} {'RSS MB':>6} {'PSS MB':>6}"
     )
     for size, count in ((4096, args.messages), (100 * 1024, args.large_messages)):
         label = f"{size // 1024}KB"

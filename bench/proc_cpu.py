@@ -75,3 +75,17 @@ def rss_bytes(pid: int) -> int:
     except OSError:
         pass
     return 0
+
+
+def pss_bytes(pid: int) -> int:
+    """Proportional set size of one process (Pss in smaps_rollup), 0 when it is gone.
+
+    Pages shared between processes count in shares, so summing over a process tree counts
+    each page once; summed RSS counts a page the forkserver preloaded once per worker."""
+    try:
+        for line in Path(f"/proc/{pid}/smaps_rollup").read_text().splitlines():
+            if line.startswith("Pss:"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0
