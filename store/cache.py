@@ -1,46 +1,55 @@
 """A read-through cache of token counts kept in numpy arrays.
 
-Entries live in two sorted runs: a large ``main`` run and a small ``recent`` run that takes
-new entries (``np.insert`` into a short array is cheap) and is merged into ``main`` when it
-grows past an eighth of it.  A lookup is a ``searchsorted`` in each run.  An entry costs
-16 bytes (int64 key, two int32 counts), about 16 MB per million tokens against ~150 MB for a
-dict of tuples.  Unknown tokens are cached as zeros, so a repeated lookup costs no query.
+Entries live in an open-addressing hash table of buckets, one int64 array of shape
+(buckets, 16): a row holds ``_BUCKET`` (8) keys, then their counts, each (ham, spam) pair
+stored as the two int32 halves of one int64.  A key's home bucket comes from the top bits of
+``key * 0x9E3779B97F4A7C15`` (Fibonacci hashing), so small or patterned keys spread as well
+as the random 64-bit token hashes do.  A key whose home bucket is full goes to the next one
+(linear probing by buckets) and marks the bucket it passed as spilled.  Entries are never
+removed one by one, so a miss in a bucket that never spilled is final.
 
-There is no per-entry eviction: when the cache would exceed its token limit it is emptied
-and refills from the lookups that follow.  A small organisation's vocabulary usually fits;
-the limit only bounds memory.
+``get`` gathers the home row of every hash at once (one random 128-byte read per hash where
+a binary search makes about twenty), matches keys and picks counts with whole-array
+operations, and looks further, one hash at a time, only for the two or three hashes of a
+message that miss in a spilled bucket.  Every int64 is a possible token hash, so no key value
+can mean "empty": the empty slots of bucket ``b`` hold a key whose home is bucket ``b + 1``,
+which no search that reads bucket ``b`` can be looking for (such a search starts past ``b``
+and ends long before it could wrap round the table).
+
+A slot costs 16 bytes.  The table is rehashed into about 1.3 times the buckets when its load
+would pass 0.55, back to 0.42, so a held token costs 30-39 bytes including the empty slots
+(16 for the two sorted runs this replaced, ~150 for a dict of tuples).  Measured on the
+shared 2-core development machine with 500,000 random entries, ``get`` of 206 sorted hashes
+(80% cached) takes about 0.04 ms of CPU against 0.11 ms for a binary search in two sorted
+runs; a rehash of 700,000 entries takes about 0.16 s.  Unknown tokens are cached as zeros,
+so a repeated lookup costs no query.
+
+There is no per-entry eviction: when a put would take the cache past its token limit it is
+emptied and keeps the lowest keys of that put, up to the limit, then refills from the lookups
+that follow.  A small organisation's vocabulary usually fits; the limit only bounds memory.
 """
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 import numpy.typing as npt
 
 from mailweir.model.types import TokenCounts, TokenHashes
 
-_MIN_RECENT = 4096
+_BUCKET = 8  # keys per bucket: 64 bytes, one cache line, and its counts in the next
+_MAX_LOAD = 0.55  # past this, spilled buckets (misses looked for further on) multiply
+_GROWN_LOAD = 0.42  # load just after a rehash: 16.25 B per slot / 0.42 = 39 B per token
+_MIN_BUCKETS = 64
+# 2**64 divided by the golden ratio, rounded to odd (Knuth, TAOCP vol. 3, section 6.4):
+# multiplying by it mixes every bit of the key into the top bits that pick the bucket.
+_MIX = np.uint64(0x9E3779B97F4A7C15)
+_UNMIX = np.uint64(pow(0x9E3779B97F4A7C15, -1, 2**64))  # its inverse modulo 2**64
 
+_HALF = np.uint64(32)
 
-class _Run:
-    """Sorted unique keys with their counts."""
-
-    def __init__(self) -> None:
-        self.keys = np.empty(0, dtype=np.int64)
-        self.counts = np.empty((0, 2), dtype=np.int32)
-
-    def find(self, hashes: npt.NDArray[np.int64]) -> npt.NDArray[np.int64]:
-        """Index of each hash in this run, or -1."""
-        if not len(self.keys):
-            return np.full(len(hashes), -1, dtype=np.int64)
-        pos = np.searchsorted(self.keys, hashes)
-        pos[pos == len(self.keys)] = 0
-        return np.where(self.keys[pos] == hashes, pos, -1)
-
-    def insert(self, hashes: npt.NDArray[np.int64], counts: npt.NDArray[np.int64]) -> None:
-        """Add sorted unique hashes that are not in the run yet."""
-        pos = np.searchsorted(self.keys, hashes)
-        self.keys = np.insert(self.keys, pos, hashes)
-        self.counts = np.insert(self.counts, pos, counts.astype(np.int32), axis=0)
+_Index = npt.NDArray[np.int64]
 
 
 class CountCache:
@@ -51,26 +60,25 @@ class CountCache:
         self.clear()
 
     def __len__(self) -> int:
-        return len(self._main.keys) + len(self._recent.keys)
+        return self._size
 
     def clear(self) -> None:
         """Forget every entry."""
-        self._main = _Run()
-        self._recent = _Run()
+        self._allocate(_MIN_BUCKETS)
 
     def get(self, hashes: TokenHashes) -> tuple[TokenCounts, npt.NDArray[np.bool_]]:
         """Counts for *hashes* (zeros where not cached) and a mask of which were cached."""
         hashes = np.asarray(hashes, dtype=np.int64)
-        counts = np.zeros((len(hashes), 2), dtype=np.int64)
-        found = np.zeros(len(hashes), dtype=np.bool_)
-        for run in (self._main, self._recent):
-            if not len(run.keys):
-                continue  # the recent run is often empty: skip its mask work
-            idx = run.find(hashes)
-            hit = idx >= 0
-            counts[hit] = run.counts[idx[hit]]
-            found |= hit
-        return counts, found
+        bucket = self._home(hashes)
+        found, packed = self._scan(hashes, bucket)
+        # A miss in a bucket that something passed over may sit further on.  That is rare
+        # (two or three hashes of a message at the highest load), so they go one at a time:
+        # a whole-array round costs more than a few scalar ones.
+        onward = (self._spilled[bucket] > found).nonzero()[0]
+        keys, homes = hashes[onward].tolist(), bucket[onward].tolist()
+        for i, key, home in zip(onward.tolist(), keys, homes, strict=True):
+            packed[i], found[i] = self._follow(key, home)
+        return packed.view(np.int32).reshape(-1, 2).astype(np.int64), found
 
     def put(self, hashes: TokenHashes, counts: TokenCounts) -> None:
         """Insert or overwrite entries."""
@@ -78,23 +86,15 @@ class CountCache:
             return
         hashes, first = np.unique(np.asarray(hashes, dtype=np.int64), return_index=True)
         counts = np.asarray(counts, dtype=np.int64)[first]
-        if len(self) + len(hashes) > self.max_tokens:
-            fresh = np.ones(len(hashes), dtype=np.bool_)
-            for run in (self._main, self._recent):
-                fresh &= run.find(hashes) < 0
-            if len(self) + int(fresh.sum()) > self.max_tokens:
-                self.clear()
-                self._recent.insert(hashes[: self.max_tokens], counts[: self.max_tokens])
-                return
+        where, slots = self._find(hashes)
+        if self._size + len(hashes) - len(where) > self.max_tokens:
+            self.clear()
+            self._insert(hashes[: self.max_tokens], counts[: self.max_tokens])
+            return
+        self._pairs[slots + _BUCKET] = counts[where]
         fresh = np.ones(len(hashes), dtype=np.bool_)
-        for run in (self._main, self._recent):
-            idx = run.find(hashes)
-            hit = idx >= 0
-            run.counts[idx[hit]] = counts[hit]
-            fresh &= ~hit
-        self._recent.insert(hashes[fresh], counts[fresh])
-        if len(self._recent.keys) > max(_MIN_RECENT, len(self._main.keys) // 8):
-            self._merge()
+        fresh[where] = False
+        self._insert(hashes[fresh], counts[fresh])
 
     def add(self, hashes: TokenHashes, delta: TokenCounts) -> None:
         """Add *delta* to cached entries (others stay uncached), clamping at zero.
@@ -103,13 +103,106 @@ class CountCache:
         """
         hashes = np.asarray(hashes, dtype=np.int64)
         delta = np.asarray(delta, dtype=np.int64)
-        for run in (self._main, self._recent):
-            idx = run.find(hashes)
-            hit = idx >= 0
-            updated = run.counts[idx[hit]] + delta[hit]
-            run.counts[idx[hit]] = np.maximum(updated, 0)
+        where, slots = self._find(hashes)
+        updated = self._pairs[slots + _BUCKET] + delta[where]
+        self._pairs[slots + _BUCKET] = np.maximum(updated, 0)
 
-    def _merge(self) -> None:
-        main, recent = self._main, self._recent
-        main.insert(recent.keys, recent.counts.astype(np.int64))
-        self._recent = _Run()
+    # -- the table -----------------------------------------------------------------------------
+
+    def _allocate(self, buckets: int) -> None:
+        """Start an empty table of *buckets* buckets."""
+        self._buckets = np.uint64(buckets)
+        self._size = 0
+        # The empty marker of bucket b: a key whose mixed top half h is the least with
+        # h * buckets >> 32 == b + 1, so _home maps it to the next bucket.
+        nxt = np.arange(1, buckets + 1, dtype=np.uint64) % self._buckets
+        top = ((nxt << _HALF) + self._buckets - np.uint64(1)) // self._buckets
+        self._table = np.zeros((buckets, 2 * _BUCKET), dtype=np.int64)
+        self._table[:, :_BUCKET] = ((top << _HALF) * _UNMIX).view(np.int64)[:, None]
+        flat = self._table.reshape(-1)  # slot s: key at flat[s], counts at flat[s + _BUCKET]
+        self._flat = flat
+        self._pairs = flat.view(np.int32).reshape(-1, 2)  # the same memory as (ham, spam)
+        self._fill = np.zeros(buckets, dtype=np.uint8)
+        self._spilled = np.zeros(buckets, dtype=np.bool_)
+
+    def _home(self, hashes: npt.NDArray[np.int64]) -> _Index:
+        # Scaling the top 32 mixed bits by the bucket count (Lemire's multiply-shift range
+        # reduction) lets the table grow by less than doubling, which bounds its slack.
+        top = (hashes.view(np.uint64) * _MIX) >> _HALF
+        return ((top * self._buckets) >> _HALF).view(np.int64)  # below 2**32: the view is exact
+
+    def _scan(
+        self, hashes: npt.NDArray[np.int64], bucket: _Index
+    ) -> tuple[npt.NDArray[np.bool_], npt.NDArray[np.int64]]:
+        """Which *hashes* sit in their *bucket*, and their packed counts (0 where not).
+
+        The rows are turned to shape (16, n) so each comparison and sum below runs along n
+        values at a time; along a row's 8 keys numpy pays its per-row overhead n times.
+        """
+        rows = self._table.take(bucket, axis=0).T.copy()
+        match = rows[:_BUCKET] == hashes
+        packed = rows[_BUCKET:].sum(axis=0, where=match)  # at most one match per column
+        return match.any(axis=0), packed
+
+    def _follow(self, key: int, bucket: int) -> tuple[int, bool]:
+        """Packed counts of *key*, searched for past its spilled home *bucket*, and whether
+        it was found; the search ends at a bucket nothing passed over."""
+        while True:
+            bucket = (bucket + 1) % len(self._fill)
+            keys = self._table[bucket, :_BUCKET].tolist()
+            if key in keys:
+                return int(self._table[bucket, _BUCKET + keys.index(key)]), True
+            if not self._spilled[bucket]:
+                return 0, False
+
+    def _find(self, hashes: npt.NDArray[np.int64]) -> tuple[_Index, _Index]:
+        """Positions in *hashes* of the cached ones, and the slots that hold them."""
+        bucket = self._home(hashes)
+        probing = np.arange(len(hashes))
+        where: list[_Index] = [probing[:0]]
+        slots: list[_Index] = [probing[:0]]
+        while len(probing):
+            keys = self._table.take(bucket, axis=0)[:, :_BUCKET]
+            row, col = np.nonzero(keys == hashes[probing, None])
+            where.append(probing[row])
+            slots.append(bucket[row] * (2 * _BUCKET) + col)
+            onward = self._spilled.take(bucket)
+            onward[row] = False
+            probing, bucket = probing[onward], (bucket[onward] + 1) % len(self._fill)
+        return np.concatenate(where), np.concatenate(slots)
+
+    def _insert(self, hashes: npt.NDArray[np.int64], counts: npt.NDArray[np.int64]) -> None:
+        """Add unique hashes that are not in the table yet."""
+        if self._size + len(hashes) > _MAX_LOAD * _BUCKET * len(self._fill):
+            self._grow(self._size + len(hashes))
+        self._size += len(hashes)
+        bucket = self._home(hashes)
+        while len(hashes):
+            order = np.argsort(bucket, kind="stable")
+            bucket, hashes, counts = bucket[order], hashes[order], counts[order]
+            starts = np.flatnonzero(np.r_[True, bucket[1:] != bucket[:-1]])
+            runs = np.diff(np.r_[starts, len(bucket)])
+            heads = bucket[starts]
+            # Each hash's place in its bucket: the bucket's fill plus its rank in the run.
+            place = np.arange(len(bucket)) - np.repeat(starts - self._fill[heads], runs)
+            fits = place < _BUCKET
+            slot = bucket[fits] * (2 * _BUCKET) + place[fits]
+            self._flat[slot] = hashes[fits]
+            self._pairs[slot + _BUCKET] = counts[fits]
+            filled = self._fill[heads] + runs
+            self._spilled[heads[filled > _BUCKET]] = True
+            self._fill[heads] = np.minimum(filled, _BUCKET)
+            over = ~fits
+            hashes, counts, bucket = (
+                hashes[over],
+                counts[over],
+                (bucket[over] + 1) % len(self._fill),
+            )
+
+    def _grow(self, size: int) -> None:
+        """Rehash into enough buckets to hold *size* entries at ``_GROWN_LOAD``."""
+        held = np.arange(_BUCKET) < self._fill[:, None]
+        keys = self._table[:, :_BUCKET][held]
+        counts = self._table[:, _BUCKET:][held].view(np.int32).reshape(-1, 2)
+        self._allocate(max(_MIN_BUCKETS, math.ceil(size / (_GROWN_LOAD * _BUCKET))))
+        self._insert(keys, counts.astype(np.int64))

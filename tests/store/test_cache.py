@@ -8,17 +8,30 @@ from hypothesis import strategies as st
 
 from mailweir.store.cache import CountCache
 
+
+def _homed_in_last_buckets(count: int, buckets: int) -> list[int]:
+    """Keys that a new (smallest) cache puts in its last *buckets* buckets: enough of them
+    overflow those buckets and spill round the end of the table to its start."""
+    empty = CountCache(1)
+    keys = np.random.default_rng(11).integers(-(2**63), 2**63 - 1, 200 * count, dtype=np.int64)
+    home = empty._home(keys)
+    chosen = keys[home >= home.max() - (buckets - 1)][:count].tolist()
+    assert len(chosen) == count
+    return chosen
+
+
 key = st.integers(min_value=-(2**63), max_value=2**63 - 1)
 small_key = st.integers(min_value=-50, max_value=50)
+crowded_key = st.sampled_from(_homed_in_last_buckets(60, 2))
 operation = st.tuples(
     st.sampled_from(["put", "add", "get"]),
-    st.lists(st.one_of(small_key, key), max_size=40),
+    st.lists(st.one_of(small_key, key, crowded_key), max_size=40),
     st.integers(min_value=-3, max_value=3),
 )
 
 
-@settings(max_examples=100, deadline=None)
-@given(ops=st.lists(operation, max_size=30), limit=st.integers(min_value=0, max_value=80))
+@settings(max_examples=150, deadline=None)
+@given(ops=st.lists(operation, max_size=30), limit=st.integers(min_value=0, max_value=400))
 def test_cache_matches_dict_oracle(ops: list[tuple[str, list[int], int]], limit: int) -> None:
     cache = CountCache(limit)
     oracle: dict[int, tuple[int, int]] = {}
@@ -47,7 +60,7 @@ def test_cache_matches_dict_oracle(ops: list[tuple[str, list[int], int]], limit:
         assert len(cache) <= max(limit, 0)
 
 
-def test_cache_many_puts_merge_runs_and_stay_exact() -> None:
+def test_cache_many_puts_grow_the_table_and_stay_exact() -> None:
     rng = np.random.default_rng(7)
     keys = np.unique(rng.integers(-(2**63), 2**63 - 1, 30_000, dtype=np.int64))
     rng.shuffle(keys)
@@ -72,3 +85,40 @@ def test_cache_overflow_empties_then_refills() -> None:
     cache.put(np.array([4, 5], dtype=np.int64), np.zeros((2, 2), dtype=np.int64))
     assert len(cache) == 2
     assert cache.get(np.array([1, 4, 5], dtype=np.int64))[1].tolist() == [False, True, True]
+
+
+def test_cache_spill_round_the_end_of_the_table_is_found() -> None:
+    crowded = np.array(_homed_in_last_buckets(40, 1), dtype=np.int64)  # 40 keys, 8 slots
+    cache = CountCache(1000)
+    cache.put(crowded[:30], np.column_stack([np.arange(30), np.arange(30) + 1]))
+    counts, found = cache.get(crowded)
+    assert found.tolist() == [True] * 30 + [False] * 10
+    assert counts[:30].tolist() == np.column_stack([np.arange(30), np.arange(30) + 1]).tolist()
+    cache.add(crowded[25:35], np.full((10, 2), -27))
+    counts, found = cache.get(crowded[24:36])
+    assert counts.tolist() == [[24, 25], [0, 0], [0, 0], [0, 1], [1, 2], [2, 3]] + [[0, 0]] * 6
+    assert found.tolist() == [True] * 6 + [False] * 6
+
+
+def test_cache_empty_slot_markers_are_ordinary_keys() -> None:
+    # The values that fill empty slots must read as absent until they are put (every int64
+    # is a possible token hash), and then read back like any other key.
+    cache = CountCache(1000)
+    markers = np.unique(cache._table[:, 0])
+    assert not cache.get(markers)[1].any()
+    cache.put(markers[::2], np.ones((len(markers[::2]), 2), dtype=np.int64))
+    counts, found = cache.get(markers)
+    assert found.tolist() == [i % 2 == 0 for i in range(len(markers))]
+    assert counts[:, 0].tolist() == [int(i % 2 == 0) for i in range(len(markers))]
+
+
+def test_cache_small_keys_spread_over_buckets() -> None:
+    # Consecutive small keys (the adversarial case for slot = key mod size) must spread like
+    # random ones: a quarter of a table's buckets holding them all would mean long probes.
+    cache = CountCache(100_000)
+    keys = np.arange(-5000, 5000, dtype=np.int64)
+    cache.put(keys, np.column_stack([keys % 7, keys % 5]))
+    counts, found = cache.get(keys)
+    assert found.all()
+    assert counts.tolist() == np.column_stack([keys % 7, keys % 5]).tolist()
+    assert np.count_nonzero(cache._fill) > 0.9 * len(cache._fill)
