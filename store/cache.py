@@ -42,6 +42,7 @@ _BUCKET = 8  # keys per bucket: 64 bytes, one cache line, and its counts in the 
 _MAX_LOAD = 0.55  # past this, spilled buckets (misses looked for further on) multiply
 _GROWN_LOAD = 0.42  # load just after a rehash: 16.25 B per slot / 0.42 = 39 B per token
 _MIN_BUCKETS = 64
+_REHASH_ROWS = 8192  # buckets moved at a time when the table grows
 # 2**64 divided by the golden ratio, rounded to odd (Knuth, TAOCP vol. 3, section 6.4):
 # multiplying by it mixes every bit of the key into the top bits that pick the bucket.
 _MIX = np.uint64(0x9E3779B97F4A7C15)
@@ -200,9 +201,15 @@ class CountCache:
             )
 
     def _grow(self, size: int) -> None:
-        """Rehash into enough buckets to hold *size* entries at ``_GROWN_LOAD``."""
-        held = np.arange(_BUCKET) < self._fill[:, None]
-        keys = self._table[:, :_BUCKET][held]
-        counts = self._table[:, _BUCKET:][held].view(np.int32).reshape(-1, 2)
+        """Rehash into enough buckets to hold *size* entries at ``_GROWN_LOAD``.
+
+        The old rows move over a slice at a time: moving them all at once would need some
+        hundred bytes of temporary arrays per entry, which the allocator tends to keep.
+        """
+        rows, fill = self._table, self._fill
         self._allocate(max(_MIN_BUCKETS, math.ceil(size / (_GROWN_LOAD * _BUCKET))))
-        self._insert(keys, counts.astype(np.int64))
+        for start in range(0, len(fill), _REHASH_ROWS):
+            part = rows[start : start + _REHASH_ROWS]
+            held = np.arange(_BUCKET) < fill[start : start + _REHASH_ROWS, None]
+            counts = part[:, _BUCKET:][held].view(np.int32).reshape(-1, 2)
+            self._insert(part[:, :_BUCKET][held], counts.astype(np.int64))
