@@ -12,15 +12,26 @@ import numpy.typing as npt
 
 from mailweir.model.nb_base import (
     UNTRAINED_PROBABILITY,
+    Evidence,
     FloatArray,
     NaiveBayes,
+    Score,
     check_counts,
     check_frequency,
+    check_score_inputs,
+    count_arrays,
     is_trained,
-    posterior_spam,
     require_trained,
+    strongest_evidence,
 )
-from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, Vocabulary
+from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
+
+# The least positive double: stands in for a zero denominator (see _probability).
+_LEAST_DOUBLE = 5e-324
+# Counts below this convert to float exactly, and so does the sum of two (below 2**53).
+_EXACT_COUNTS = 2**52
+# From this many tokens a partial sort finds the capped selection faster than a full one.
+_PARTIAL_SORT_FROM = 256
 
 
 @lru_cache(maxsize=8)
@@ -31,9 +42,14 @@ def _log_factorial_table(size: int) -> FloatArray:
     return table
 
 
-def _log_factorials(count: int) -> FloatArray:
-    """Shape (count,): log(i!) for i < count, from a cached table sized to a power of two."""
-    return _log_factorial_table(max(64, 1 << (count - 1).bit_length()))[:count]
+@lru_cache(maxsize=64)
+def _term_tables(terms: int) -> tuple[FloatArray, FloatArray]:
+    """Shape (terms,) each: i as float (its products match the integer's exactly) and log(i!),
+    sliced from tables sized to a power of two."""
+    size = max(64, 1 << (terms - 1).bit_length())
+    indices = np.arange(size, dtype=np.float64)
+    indices.flags.writeable = False
+    return indices[:terms], _log_factorial_table(size)[:terms]
 
 
 def chi2_log_survival_even(statistic: float, dof: int) -> float:
@@ -62,14 +78,29 @@ def chi2_log_survival_even(statistic: float, dof: int) -> float:
         raise ValueError(f"dof must be an even integer >= 2, got {dof}")
     if not statistic >= 0 or math.isinf(statistic):
         raise ValueError(f"statistic must be finite and >= 0, got {statistic}")
-    half = statistic / 2.0
-    if half == 0.0:
-        return 0.0
-    i = np.arange(dof // 2)
-    log_terms = i * math.log(half) - _log_factorials(dof // 2)
-    top = float(log_terms.max())
-    log_sum = top + math.log(float(np.exp(log_terms - top).sum()))
-    return min(0.0, log_sum - half)
+    return _log_survivals_even([statistic], dof)[0]
+
+
+def _log_survivals_even(statistics: list[float], dof: int) -> list[float]:
+    """`chi2_log_survival_even` of several checked statistics with one ``dof``, one row each.
+
+    The rows share every array operation (Robinson's H and S cost one pass); each row's
+    operations and summation order are those of a single statistic, so results do not
+    depend on the batching.
+    """
+    halves = [statistic / 2.0 for statistic in statistics]
+    indices, log_factorials = _term_tables(dof // 2)
+    # ln m of a zero statistic is never used (Q = 1 there); 0.0 keeps the row finite.
+    log_half = np.array([math.log(half) if half > 0 else 0.0 for half in halves])[:, None]
+    # Row r: log(m_r^i / i!) = i ln m_r - ln i!, i < n.  (ufunc.reduce is the array methods'
+    # reduction without their Python layer.)
+    log_terms = log_half * indices - log_factorials
+    top = np.maximum.reduce(log_terms, axis=1, keepdims=True)
+    sums = np.add.reduce(np.exp(log_terms - top), axis=1)
+    return [
+        0.0 if half == 0.0 else min(0.0, peak + math.log(total) - half)
+        for half, peak, total in zip(halves, top.ravel().tolist(), sums.tolist(), strict=True)
+    ]
 
 
 def chi2_survival_even(statistic: float, dof: int) -> float:
@@ -157,39 +188,74 @@ class RobinsonFisher(NaiveBayes):
         self, counts: npt.NDArray[np.int64], classes: npt.NDArray[np.int64]
     ) -> FloatArray:
         """`token_probability` of counts already checked (``check_counts``, trained)."""
-        if (counts > classes).any():
+        top = _largest_count(counts, classes.tolist())
+        if top is None:
             raise ValueError(
                 "fisher: a token is counted in more messages than were trained "
                 f"(class_count={classes.tolist()})"
             )
-        rate = counts / classes
-        # Two columns added directly: the same sums as .sum(axis=1), without a reduction.
-        rate_total = rate[:, HAM] + rate[:, SPAM]
-        # p(w) is undefined for unknown tokens, whose n = 0 makes f = x regardless.
-        p = np.divide(rate[:, SPAM], rate_total, out=np.zeros(len(counts)), where=rate_total > 0)
-        n = counts[:, HAM] + counts[:, SPAM]
-        f: FloatArray = (self.strength * self.assumed + n * p) / (self.strength + n)
+        return self._from_counts(counts, classes.tolist(), top)
+
+    def _from_counts(
+        self, counts: npt.NDArray[np.int64], totals: list[int], top: int
+    ) -> FloatArray:
+        """Shape (n,): f of checked counts, shape (n, 2), whose largest is ``top``."""
+        # The counts as two contiguous rows (cheaper than the columns of (n, 2)); as floats
+        # when every count is below 2**52, so each and the sum of two convert exactly and
+        # every result below is the one the integers give.
+        if top < _EXACT_COUNTS:
+            columns = counts.T.astype(np.float64, order="C")
+        else:
+            columns = np.ascontiguousarray(counts.T)
+        ham, spam = columns[HAM], columns[SPAM]
+        p = spam / totals[SPAM]
+        rate_total = ham / totals[HAM]
+        rate_total += p
+        # p(w) is undefined for unknown tokens, whose n = 0 makes f = x regardless.  A nonzero
+        # total is at least 1 / N > 1e-19, so raising zeros to the least double changes no
+        # other quotient and gives p = 0 there, as a masked division would, more cheaply.
+        p /= np.maximum(rate_total, _LEAST_DOUBLE, out=rate_total)
+        n = ham + spam
+        # f = (s x + n p) / (s + n), in place (sums and products commute exactly).
+        f: FloatArray = n * p
+        f += self.strength * self.assumed
+        f /= self.strength + n
         return f
 
     def _selected(
         self, f: FloatArray, present: npt.NDArray[np.bool_] | None = None
     ) -> npt.NDArray[np.intp]:
-        """Indices of the tokens used, most extreme first (``present`` None: every token)."""
+        """Indices of the tokens used, most extreme first (``present`` None: every token);
+        ties in ``|f - 0.5|`` keep index order."""
         deviation = np.abs(f - 0.5)
-        keep = deviation > 0
-        if self.min_deviation > 0:
-            keep &= deviation >= self.min_deviation
         if present is not None:
-            keep &= present
-        chosen = np.flatnonzero(keep)
-        chosen = chosen[np.argsort(-deviation[chosen], kind="stable")]
-        return chosen if self.max_tokens is None else chosen[: self.max_tokens]
+            deviation = np.where(present, deviation, 0.0)
+        # NaN never compares true, so it is never usable.
+        usable = deviation >= self.min_deviation if self.min_deviation > 0 else deviation > 0
+        candidates = usable.nonzero()[0]
+        key = -deviation[candidates]
+        cap = self.max_tokens
+        if cap is not None and len(candidates) > max(cap, _PARTIAL_SORT_FROM):
+            # The cap-th smallest key bounds the tokens kept; those at the bound keep index
+            # order, so sorting the ones within it gives the full sort's first cap.
+            within = (key <= np.partition(key, cap - 1)[cap - 1]).nonzero()[0]
+            return candidates[within[key[within].argsort(kind="stable")[:cap]]]
+        return candidates[key.argsort(kind="stable")[:cap]]
+
+    def _used(self, f: FloatArray) -> tuple[npt.NDArray[np.intp], FloatArray, FloatArray]:
+        """The tokens used, most extreme first, with ln f and ln(1 - f) of each."""
+        chosen = self._selected(f)
+        used = f[chosen]
+        # Only a token at |f - 0.5| >= 0.5 can lie outside (0, 1), and the first is the most
+        # extreme: one comparison usually clears them all.
+        if len(used) and not abs(used[0] - 0.5) < 0.5:
+            _check_open_interval(used)
+        return chosen, np.log(used), np.log1p(-used)
 
     def indicator(self, f: FloatArray) -> float:
         """Robinson's I = (1 + H - S) / 2 for token probabilities f in (0, 1), shape (n,)."""
         f = np.asarray(f, dtype=np.float64)
-        if not ((f > 0) & (f < 1)).all():
-            raise ValueError("fisher: token probabilities must lie strictly between 0 and 1")
+        _check_open_interval(f)
         return _combined(np.log(f), np.log1p(-f))
 
     def joint_log_likelihood(
@@ -217,25 +283,20 @@ class RobinsonFisher(NaiveBayes):
         counts, classes = check_counts(token_count, class_count)
         if not is_trained(classes):
             return UNTRAINED_PROBABILITY
-        f = self._probability(counts, classes)
-        return posterior_spam(_as_jll(self.indicator(f[self._selected(f)])))
+        _, log_f, log_rest = self._used(self._probability(counts, classes))
+        return _posterior(_combined(log_f, log_rest))
 
     def probability_and_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
     ) -> tuple[float, FloatArray]:
         """As the two kernels give them, with f, the selection and the logarithms of the
-        tokens used worked out once (hot path)."""
+        tokens used worked out once."""
         counts, classes = check_counts(token_count, class_count)
         require_trained(classes, self.name)
-        f = self._probability(counts, classes)
-        chosen = self._selected(f)
-        used = f[chosen]
-        if not ((used > 0) & (used < 1)).all():
-            raise ValueError("fisher: token probabilities must lie strictly between 0 and 1")
-        log_f, log_rest = np.log(used), np.log1p(-used)
-        weights = np.zeros(len(f))
+        chosen, log_f, log_rest = self._used(self._probability(counts, classes))
+        weights = np.zeros(len(counts))
         weights[chosen] = log_f - log_rest
-        return posterior_spam(_as_jll(_combined(log_f, log_rest))), weights
+        return _posterior(_combined(log_f, log_rest)), weights
 
     def token_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
@@ -247,14 +308,77 @@ class RobinsonFisher(NaiveBayes):
         weights[chosen] = np.log(f[chosen]) - np.log1p(-f[chosen])
         return weights
 
+    def score(
+        self,
+        token_hashes: TokenHashes,
+        token_count: TokenCounts,
+        class_count: ClassCounts,
+        vocabulary: Vocabulary,
+        n_evidence: int = 8,
+    ) -> Score:
+        """As the base class scores (the daemon's hot path), checking 0 <= count <= class
+        count in one scan and ranking evidence among the tokens used alone."""
+        counts, classes = count_arrays(token_count, class_count)
+        totals = classes.tolist()
+        top = None
+        if counts.dtype == np.int64 and classes.dtype == np.int64 and min(totals) > 0:
+            top = _largest_count(counts, totals)
+        if top is None:
+            # Untrained, another integer type or a bound broken: the base class answers, or
+            # names the error, in its own order of checks.
+            return super().score(token_hashes, token_count, class_count, vocabulary, n_evidence)
+        hashes = check_score_inputs(token_hashes, len(counts), n_evidence)
+        return self._scored(hashes, self._from_counts(counts, totals, top), n_evidence)
+
+    def _score_checked(
+        self,
+        token_hashes: TokenHashes,
+        token_count: npt.NDArray[np.int64],
+        class_count: npt.NDArray[np.int64],
+        vocabulary: Vocabulary,
+        n_evidence: int,
+    ) -> Score:
+        """`score` once the base class has checked the inputs."""
+        f = self._probability(token_count, class_count)
+        return self._scored(token_hashes, f, n_evidence)
+
+    def _scored(self, token_hashes: TokenHashes, f: FloatArray, n_evidence: int) -> Score:
+        """Every other token's weight is 0 and never listed, so evidence is ranked among the
+        tokens used alone."""
+        chosen, log_f, log_rest = self._used(f)
+        evidence: tuple[Evidence, ...] = ()
+        if n_evidence and len(chosen):
+            evidence = strongest_evidence(token_hashes[chosen], log_f - log_rest, n_evidence)
+        return Score(_posterior(_combined(log_f, log_rest)), evidence)
+
+
+def _largest_count(counts: npt.NDArray[np.int64], totals: list[int]) -> int | None:
+    """The largest of int64 counts, shape (n, 2), when 0 <= count <= its class count
+    everywhere; None when not."""
+    if not len(counts):
+        return 0
+    # Read as unsigned, a negative count exceeds every class count: one scan, both bounds.
+    unsigned = counts.view(np.uint64)
+    top = int(unsigned.max())
+    if top > min(totals):
+        ham_top, spam_top = unsigned.max(axis=0).tolist()
+        if ham_top > totals[HAM] or spam_top > totals[SPAM]:
+            return None
+    return top
+
+
+def _check_open_interval(f: FloatArray) -> None:
+    if not ((f > 0) & (f < 1)).all():
+        raise ValueError("fisher: token probabilities must lie strictly between 0 and 1")
+
 
 def _combined(log_f: FloatArray, log_rest: FloatArray) -> float:
     """Robinson's I from ln f and ln(1 - f) of the tokens used, shape (n,)."""
     if len(log_f) == 0:
         return 0.5
-    dof = 2 * len(log_f)
-    h = chi2_survival_even(-2.0 * float(log_f.sum()), dof)
-    s = chi2_survival_even(-2.0 * float(log_rest.sum()), dof)
+    statistics = [-2.0 * float(np.add.reduce(log_f)), -2.0 * float(np.add.reduce(log_rest))]
+    log_h, log_s = _log_survivals_even(statistics, 2 * len(log_f))
+    h, s = math.exp(log_h), math.exp(log_s)
     return min(1.0, max(0.0, (1.0 + h - s) / 2.0))
 
 
@@ -265,3 +389,11 @@ def _as_jll(spam: float) -> FloatArray:
         result[HAM] = np.log(1.0 - spam)
         result[SPAM] = np.log(spam)
     return result
+
+
+def _posterior(spam: float) -> float:
+    """``posterior_spam(_as_jll(I))``: the same operations on scalars, without the array."""
+    if not 0.0 < spam < 1.0:
+        return spam  # exactly what the log-space round trip gives at 0 and 1
+    log_ham, log_spam = np.log(1.0 - spam), np.log(spam)
+    return float(np.exp(log_spam - np.logaddexp(log_ham, log_spam)))

@@ -29,6 +29,9 @@ FloatArray = npt.NDArray[np.float64]
 
 UNTRAINED_PROBABILITY = 0.5
 
+# Up to this many weights, evidence is ranked in plain Python (cheaper than numpy's calls).
+_FEW_WEIGHTS = 64
+
 
 @dataclass(frozen=True)
 class Evidence:
@@ -65,13 +68,18 @@ class Score:
 
 def is_trained(class_count: ClassCounts) -> bool:
     """True when both classes have at least one trained message."""
-    return bool((np.asarray(class_count) > 0).all())
+    # Compared as Python numbers: an array reduction costs more than the two comparisons.
+    return all(count > 0 for count in np.asarray(class_count).ravel().tolist())
 
 
-def check_counts(
+def count_arrays(
     token_count: TokenCounts, class_count: ClassCounts
-) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64]]:
-    """Validate one message's counts; return them as int64 arrays of shape (n, 2) and (2,)."""
+) -> tuple[npt.NDArray[np.integer], npt.NDArray[np.integer]]:
+    """One message's counts as arrays, their dtypes and shapes checked (not yet their values).
+
+    `check_counts` goes on to check the values; a method that scans the counts anyway may
+    check them in its own scan and fall back to `check_counts` for the error.
+    """
     counts = np.asarray(token_count)
     classes = np.asarray(class_count)
     for label, array in (("token_count", counts), ("class_count", classes)):
@@ -81,11 +89,33 @@ def check_counts(
         raise ValueError(f"token_count must have shape (n, 2), got {counts.shape}")
     if classes.shape != (2,):
         raise ValueError(f"class_count must have shape (2,), got {classes.shape}")
+    return counts, classes
+
+
+def check_counts(
+    token_count: TokenCounts, class_count: ClassCounts
+) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64]]:
+    """Validate one message's counts; return them as int64 arrays of shape (n, 2) and (2,)."""
+    counts, classes = count_arrays(token_count, class_count)
     if counts.size and counts.min() < 0:
         raise ValueError(f"token_count must be non-negative, got minimum {counts.min()}")
-    if classes.min() < 0:
+    if min(classes.tolist()) < 0:
         raise ValueError(f"class_count must be non-negative, got {classes.tolist()}")
     return counts.astype(np.int64, copy=False), classes.astype(np.int64, copy=False)
+
+
+def check_score_inputs(
+    token_hashes: TokenHashes, n_tokens: int, n_evidence: int
+) -> npt.NDArray[np.integer]:
+    """The hashes of ``score``, checked against the number of tokens, and ``n_evidence``."""
+    hashes = np.asarray(token_hashes)
+    if hashes.shape != (n_tokens,):
+        raise ValueError(
+            f"token_hashes must have shape ({n_tokens},) to match token_count, got {hashes.shape}"
+        )
+    if n_evidence < 0:
+        raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
+    return hashes
 
 
 def check_alpha(method: str, alpha: float) -> None:
@@ -140,6 +170,8 @@ def strongest_evidence(
     if n_evidence < 0:
         raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
     hashes = np.asarray(token_hashes, dtype=np.int64)
+    if len(weights) <= _FEW_WEIGHTS:
+        return _few_strongest(hashes, weights, n_evidence)
     # Zero weights are never listed, so only the others are ranked (often a few of hundreds).
     # lexsort keys run last-primary: strongest first, ties broken by hash for a stable list.
     signed = np.flatnonzero(weights)
@@ -148,6 +180,21 @@ def strongest_evidence(
     chosen = np.concatenate([order[ranked > 0][:n_evidence], order[ranked < 0][:n_evidence]])
     return tuple(
         map(Evidence, hashes[chosen].tolist(), weights[chosen].astype(np.float64).tolist())
+    )
+
+
+def _few_strongest(
+    hashes: npt.NDArray[np.int64], weights: FloatArray, n_evidence: int
+) -> tuple[Evidence, ...]:
+    """`strongest_evidence` of a few weights: Python tuples (-|w|, hash) sort in the same
+    order as the numpy ranking, without its per-call cost."""
+    as_float = weights.astype(np.float64, copy=False)
+    pairs = list(zip(hashes.tolist(), as_float.tolist(), strict=True))
+    spam = sorted([(-weight, token_hash) for token_hash, weight in pairs if weight > 0])
+    ham = sorted([(weight, token_hash) for token_hash, weight in pairs if weight < 0])
+    return tuple(
+        [Evidence(token_hash, -key) for key, token_hash in spam[:n_evidence]]
+        + [Evidence(token_hash, key) for key, token_hash in ham[:n_evidence]]
     )
 
 
@@ -238,18 +285,22 @@ class NaiveBayes(ABC):
             Probability 0.5 and no evidence when the model is untrained.
         """
         counts, classes = check_counts(token_count, class_count)
-        hashes = np.asarray(token_hashes)
-        if hashes.shape != (len(counts),):
-            raise ValueError(
-                f"token_hashes must have shape ({len(counts)},) to match token_count, "
-                f"got {hashes.shape}"
-            )
-        if n_evidence < 0:
-            raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
+        hashes = check_score_inputs(token_hashes, len(counts), n_evidence)
         if not is_trained(classes):
             return Score(UNTRAINED_PROBABILITY, ())
-        probability, weights = self.probability_and_weights(counts, classes, vocabulary)
-        return Score(probability, strongest_evidence(hashes, weights, n_evidence))
+        return self._score_checked(hashes, counts, classes, vocabulary, n_evidence)
+
+    def _score_checked(
+        self,
+        token_hashes: TokenHashes,
+        token_count: npt.NDArray[np.int64],
+        class_count: npt.NDArray[np.int64],
+        vocabulary: Vocabulary,
+        n_evidence: int,
+    ) -> Score:
+        """`score` of inputs already checked, on a trained model; a method may share work."""
+        probability, weights = self.probability_and_weights(token_count, class_count, vocabulary)
+        return Score(probability, strongest_evidence(token_hashes, weights, n_evidence))
 
     def probability_and_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
