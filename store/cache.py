@@ -2,11 +2,12 @@
 
 Entries live in an open-addressing hash table of buckets, one int64 array of shape
 (buckets, 16): a row holds ``_BUCKET`` (8) keys, then their counts, each (ham, spam) pair
-stored as the two int32 halves of one int64.  A key's home bucket comes from the top bits of
-``key * 0x9E3779B97F4A7C15`` (Fibonacci hashing), so small or patterned keys spread as well
-as the random 64-bit token hashes do.  A key whose home bucket is full goes to the next one
-(linear probing by buckets) and marks the bucket it passed as spilled.  Entries are never
-removed one by one, so a miss in a bucket that never spilled is final.
+stored as the two int32 halves of one int64.  A key's home bucket comes from the top 32 bits
+of ``key * 0x9E3779B97F4A7C15`` (Fibonacci hashing) scaled to the bucket count, so small or
+patterned keys spread as well as the random 64-bit token hashes do.  A key whose home bucket
+is full goes to the next one (linear probing by buckets) and marks the bucket it passed as
+spilled.  Entries are never removed one by one, so a miss in a bucket that never spilled is
+final.
 
 ``get`` gathers the home row of every hash at once (one random 128-byte read per hash where
 a binary search makes about twenty), matches keys and picks counts with whole-array
@@ -20,9 +21,10 @@ A slot costs 16 bytes.  The table is rehashed into about 1.3 times the buckets w
 would pass 0.55, back to 0.42, so a held token costs 30-39 bytes including the empty slots
 (16 for the two sorted runs this replaced, ~150 for a dict of tuples).  Measured on the
 shared 2-core development machine with 500,000 random entries, ``get`` of 206 sorted hashes
-(80% cached) takes about 0.04 ms of CPU against 0.11 ms for a binary search in two sorted
-runs; a rehash of 700,000 entries takes about 0.16 s.  Unknown tokens are cached as zeros,
-so a repeated lookup costs no query.
+(80% cached) takes about 0.04 ms of CPU against 0.11 ms for a binary search in each of two
+sorted runs (whole-array steps cost 1-3 microseconds each there, so fewer steps beat less
+arithmetic); a rehash of 700,000 entries takes about 0.13 s.  Unknown tokens are cached as
+zeros, so a repeated lookup costs no query.
 
 There is no per-entry eviction: when a put would take the cache past its token limit it is
 emptied and keeps the lowest keys of that put, up to the limit, then refills from the lookups
@@ -43,8 +45,9 @@ _MAX_LOAD = 0.55  # past this, spilled buckets (misses looked for further on) mu
 _GROWN_LOAD = 0.42  # load just after a rehash: 16.25 B per slot / 0.42 = 39 B per token
 _MIN_BUCKETS = 64
 _REHASH_ROWS = 8192  # buckets moved at a time when the table grows
-# 2**64 divided by the golden ratio, rounded to odd (Knuth, TAOCP vol. 3, section 6.4):
-# multiplying by it mixes every bit of the key into the top bits that pick the bucket.
+# 2**64 divided by the golden ratio, rounded down to odd (checked with decimal arithmetic);
+# the method is Knuth's multiplicative hashing (TAOCP vol. 3, section 6.4, from memory).
+# Multiplying by it mixes every bit of the key into the top bits that pick the bucket.
 _MIX = np.uint64(0x9E3779B97F4A7C15)
 _UNMIX = np.uint64(pow(0x9E3779B97F4A7C15, -1, 2**64))  # its inverse modulo 2**64
 
@@ -127,8 +130,9 @@ class CountCache:
         self._spilled = np.zeros(buckets, dtype=np.bool_)
 
     def _home(self, hashes: npt.NDArray[np.int64]) -> _Index:
-        # Scaling the top 32 mixed bits by the bucket count (Lemire's multiply-shift range
-        # reduction) lets the table grow by less than doubling, which bounds its slack.
+        # Scaling the top 32 mixed bits by the bucket count (multiply-shift range reduction,
+        # D. Lemire 2016, from memory) lets the table grow by less than doubling, which
+        # bounds its slack.
         top = (hashes.view(np.uint64) * _MIX) >> _HALF
         return ((top * self._buckets) >> _HALF).view(np.int64)  # below 2**32: the view is exact
 
