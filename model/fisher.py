@@ -30,6 +30,8 @@ from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashe
 _LEAST_DOUBLE = 5e-324
 # Counts below this convert to float exactly, and so does the sum of two (below 2**53).
 _EXACT_COUNTS = 2**52
+# Up to this many Poisson terms a row's maximum is found in Python (cheaper than numpy's call).
+_FEW_TERMS = 64
 # From this many tokens a partial sort finds the capped selection faster than a full one.
 _PARTIAL_SORT_FROM = 256
 
@@ -93,14 +95,30 @@ def _log_survivals_even(statistics: list[float], dof: int) -> list[float]:
     # ln m of a zero statistic is never used (Q = 1 there); 0.0 keeps the row finite.
     log_half = np.array([math.log(half) if half > 0 else 0.0 for half in halves])[:, None]
     # Row r: log(m_r^i / i!) = i ln m_r - ln i!, i < n.  (ufunc.reduce is the array methods'
-    # reduction without their Python layer.)
+    # reduction without their Python layer; rows sum in the order of a 1-D sum.)
     log_terms = log_half * indices - log_factorials
-    top = np.maximum.reduce(log_terms, axis=1, keepdims=True)
-    sums = np.add.reduce(np.exp(log_terms - top), axis=1)
+    if len(indices) <= _FEW_TERMS:
+        tops = [
+            _near_mode_max(row, half) for row, half in zip(log_terms.tolist(), halves, strict=True)
+        ]
+    else:
+        tops = np.maximum.reduce(log_terms, axis=1).tolist()
+    sums = np.add.reduce(np.exp(log_terms - np.array(tops)[:, None]), axis=1)
     return [
         0.0 if half == 0.0 else min(0.0, peak + math.log(total) - half)
-        for half, peak, total in zip(halves, top.ravel().tolist(), sums.tolist(), strict=True)
+        for half, peak, total in zip(halves, tops, sums.tolist(), strict=True)
     ]
+
+
+def _near_mode_max(row: list[float], half: float) -> float:
+    """max(row) for a row of `_log_survivals_even` with at most _FEW_TERMS terms.
+
+    i ln m - ln i! is concave in i with its peak at i = floor(m); two steps from the peak it
+    is at least about 1 / (m + 1) lower, far more than the rounding of the terms (about
+    4e-16 m ln m, m < 64 * 745 here), so the largest computed term is within one of it.
+    """
+    peak = min(int(half), len(row) - 1)
+    return max(row[max(0, peak - 2) : peak + 3])
 
 
 def chi2_survival_even(statistic: float, dof: int) -> float:
@@ -188,34 +206,43 @@ class RobinsonFisher(NaiveBayes):
         self, counts: npt.NDArray[np.int64], classes: npt.NDArray[np.int64]
     ) -> FloatArray:
         """`token_probability` of counts already checked (``check_counts``, trained)."""
-        top = _largest_count(counts, classes.tolist())
-        if top is None:
+        f = self._checked_f(counts, classes.tolist())
+        if f is None:
             raise ValueError(
                 "fisher: a token is counted in more messages than were trained "
                 f"(class_count={classes.tolist()})"
             )
-        return self._from_counts(counts, classes.tolist(), top)
+        return f
 
-    def _from_counts(
-        self, counts: npt.NDArray[np.int64], totals: list[int], top: int
-    ) -> FloatArray:
-        """Shape (n,): f of checked counts, shape (n, 2), whose largest is ``top``."""
-        # The counts as two contiguous rows (cheaper than the columns of (n, 2)); as floats
-        # when every count is below 2**52, so each and the sum of two convert exactly and
-        # every result below is the one the integers give.
-        if top < _EXACT_COUNTS:
-            columns = counts.T.astype(np.float64, order="C")
+    def _checked_f(self, counts: npt.NDArray[np.int64], totals: list[int]) -> FloatArray | None:
+        """Shape (n,): f of int64 counts, shape (n, 2), and positive class counts; None when
+        a count is negative or above its class count."""
+        limits = np.array(totals, dtype=np.float64)[:, None]  # shape (2, 1)
+        if max(totals) < _EXACT_COUNTS:
+            # Valid counts are then below 2**52, exact as floats and so is the sum of two: f
+            # is the one the integers give.  Read as unsigned, a negative count is above 2**63;
+            # so it, like a count above its class count, gives a rate above 1.
+            rows = counts.view(np.uint64).T.astype(np.float64, order="C")
+            rates = rows / limits
+            if np.count_nonzero(rates > 1.0):
+                return None
         else:
-            columns = np.ascontiguousarray(counts.T)
-        ham, spam = columns[HAM], columns[SPAM]
-        p = spam / totals[SPAM]
-        rate_total = ham / totals[HAM]
-        rate_total += p
+            unsigned = (
+                np.maximum.reduce(counts.view(np.uint64), axis=0).tolist()
+                if len(counts)
+                else [0, 0]
+            )
+            if unsigned[HAM] > totals[HAM] or unsigned[SPAM] > totals[SPAM]:
+                return None
+            rows = np.ascontiguousarray(counts.T)
+            rates = rows / limits
+        # Rows, not the columns of (n, 2): contiguous operands are cheaper.
+        rate_total = rates[HAM] + rates[SPAM]
         # p(w) is undefined for unknown tokens, whose n = 0 makes f = x regardless.  A nonzero
         # total is at least 1 / N > 1e-19, so raising zeros to the least double changes no
         # other quotient and gives p = 0 there, as a masked division would, more cheaply.
-        p /= np.maximum(rate_total, _LEAST_DOUBLE, out=rate_total)
-        n = ham + spam
+        p = rates[SPAM] / np.maximum(rate_total, _LEAST_DOUBLE, out=rate_total)
+        n = rows[HAM] + rows[SPAM]
         # f = (s x + n p) / (s + n), in place (sums and products commute exactly).
         f: FloatArray = n * p
         f += self.strength * self.assumed
@@ -242,21 +269,21 @@ class RobinsonFisher(NaiveBayes):
             return candidates[within[key[within].argsort(kind="stable")[:cap]]]
         return candidates[key.argsort(kind="stable")[:cap]]
 
-    def _used(self, f: FloatArray) -> tuple[npt.NDArray[np.intp], FloatArray, FloatArray]:
-        """The tokens used, most extreme first, with ln f and ln(1 - f) of each."""
+    def _used(self, f: FloatArray) -> tuple[npt.NDArray[np.intp], FloatArray]:
+        """The tokens used, most extreme first, and `_logs` of their f."""
         chosen = self._selected(f)
         used = f[chosen]
         # Only a token at |f - 0.5| >= 0.5 can lie outside (0, 1), and the first is the most
         # extreme: one comparison usually clears them all.
         if len(used) and not abs(used[0] - 0.5) < 0.5:
             _check_open_interval(used)
-        return chosen, np.log(used), np.log1p(-used)
+        return chosen, _logs(used)
 
     def indicator(self, f: FloatArray) -> float:
         """Robinson's I = (1 + H - S) / 2 for token probabilities f in (0, 1), shape (n,)."""
         f = np.asarray(f, dtype=np.float64)
         _check_open_interval(f)
-        return _combined(np.log(f), np.log1p(-f))
+        return _combined(_logs(f))
 
     def joint_log_likelihood(
         self,
@@ -283,8 +310,8 @@ class RobinsonFisher(NaiveBayes):
         counts, classes = check_counts(token_count, class_count)
         if not is_trained(classes):
             return UNTRAINED_PROBABILITY
-        _, log_f, log_rest = self._used(self._probability(counts, classes))
-        return _posterior(_combined(log_f, log_rest))
+        _, logs = self._used(self._probability(counts, classes))
+        return _posterior(_combined(logs))
 
     def probability_and_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
@@ -293,10 +320,10 @@ class RobinsonFisher(NaiveBayes):
         tokens used worked out once."""
         counts, classes = check_counts(token_count, class_count)
         require_trained(classes, self.name)
-        chosen, log_f, log_rest = self._used(self._probability(counts, classes))
+        chosen, logs = self._used(self._probability(counts, classes))
         weights = np.zeros(len(counts))
-        weights[chosen] = log_f - log_rest
-        return _posterior(_combined(log_f, log_rest)), weights
+        weights[chosen] = logs[0] - logs[1]
+        return _posterior(_combined(logs)), weights
 
     def token_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
@@ -320,15 +347,15 @@ class RobinsonFisher(NaiveBayes):
         count in one scan and ranking evidence among the tokens used alone."""
         counts, classes = count_arrays(token_count, class_count)
         totals = classes.tolist()
-        top = None
+        f = None
         if counts.dtype == np.int64 and classes.dtype == np.int64 and min(totals) > 0:
-            top = _largest_count(counts, totals)
-        if top is None:
+            f = self._checked_f(counts, totals)
+        if f is None:
             # Untrained, another integer type or a bound broken: the base class answers, or
             # names the error, in its own order of checks.
             return super().score(token_hashes, token_count, class_count, vocabulary, n_evidence)
         hashes = check_score_inputs(token_hashes, len(counts), n_evidence)
-        return self._scored(hashes, self._from_counts(counts, totals, top), n_evidence)
+        return self._scored(hashes, f, n_evidence)
 
     def _score_checked(
         self,
@@ -345,26 +372,11 @@ class RobinsonFisher(NaiveBayes):
     def _scored(self, token_hashes: TokenHashes, f: FloatArray, n_evidence: int) -> Score:
         """Every other token's weight is 0 and never listed, so evidence is ranked among the
         tokens used alone."""
-        chosen, log_f, log_rest = self._used(f)
+        chosen, logs = self._used(f)
         evidence: tuple[Evidence, ...] = ()
         if n_evidence and len(chosen):
-            evidence = strongest_evidence(token_hashes[chosen], log_f - log_rest, n_evidence)
-        return Score(_posterior(_combined(log_f, log_rest)), evidence)
-
-
-def _largest_count(counts: npt.NDArray[np.int64], totals: list[int]) -> int | None:
-    """The largest of int64 counts, shape (n, 2), when 0 <= count <= its class count
-    everywhere; None when not."""
-    if not len(counts):
-        return 0
-    # Read as unsigned, a negative count exceeds every class count: one scan, both bounds.
-    unsigned = counts.view(np.uint64)
-    top = int(unsigned.max())
-    if top > min(totals):
-        ham_top, spam_top = unsigned.max(axis=0).tolist()
-        if ham_top > totals[HAM] or spam_top > totals[SPAM]:
-            return None
-    return top
+            evidence = strongest_evidence(token_hashes[chosen], logs[0] - logs[1], n_evidence)
+        return Score(_posterior(_combined(logs)), evidence)
 
 
 def _check_open_interval(f: FloatArray) -> None:
@@ -372,12 +384,21 @@ def _check_open_interval(f: FloatArray) -> None:
         raise ValueError("fisher: token probabilities must lie strictly between 0 and 1")
 
 
-def _combined(log_f: FloatArray, log_rest: FloatArray) -> float:
-    """Robinson's I from ln f and ln(1 - f) of the tokens used, shape (n,)."""
-    if len(log_f) == 0:
+def _logs(f: FloatArray) -> FloatArray:
+    """Shape (2, n): ln f and ln(1 - f) as rows, so one reduction sums both."""
+    logs = np.empty((2, len(f)))
+    np.log(f, logs[0])
+    np.log1p(-f, logs[1])
+    return logs
+
+
+def _combined(logs: FloatArray) -> float:
+    """Robinson's I from `_logs` of the tokens used, shape (2, n)."""
+    count = logs.shape[1]
+    if count == 0:
         return 0.5
-    statistics = [-2.0 * float(np.add.reduce(log_f)), -2.0 * float(np.add.reduce(log_rest))]
-    log_h, log_s = _log_survivals_even(statistics, 2 * len(log_f))
+    sum_f, sum_rest = np.add.reduce(logs, axis=1).tolist()
+    log_h, log_s = _log_survivals_even([-2.0 * sum_f, -2.0 * sum_rest], 2 * count)
     h, s = math.exp(log_h), math.exp(log_s)
     return min(1.0, max(0.0, (1.0 + h - s) / 2.0))
 

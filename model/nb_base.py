@@ -188,10 +188,10 @@ def _few_strongest(
 ) -> tuple[Evidence, ...]:
     """`strongest_evidence` of a few weights: Python tuples (-|w|, hash) sort in the same
     order as the numpy ranking, without its per-call cost."""
-    as_float = weights.astype(np.float64, copy=False)
-    pairs = list(zip(hashes.tolist(), as_float.tolist(), strict=True))
-    spam = sorted([(-weight, token_hash) for token_hash, weight in pairs if weight > 0])
-    ham = sorted([(weight, token_hash) for token_hash, weight in pairs if weight < 0])
+    weight_list = weights.astype(np.float64, copy=False).tolist()
+    hash_list = hashes.tolist()
+    spam = sorted([(-w, h) for w, h in zip(weight_list, hash_list, strict=True) if w > 0])
+    ham = sorted([(w, h) for w, h in zip(weight_list, hash_list, strict=True) if w < 0])
     return tuple(
         [Evidence(token_hash, -key) for key, token_hash in spam[:n_evidence]]
         + [Evidence(token_hash, key) for key, token_hash in ham[:n_evidence]]

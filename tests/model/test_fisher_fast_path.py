@@ -311,3 +311,16 @@ def test_chi2_reference_matches_scipy() -> None:
         assert _reference_log_survival(statistic, dof) == pytest.approx(
             chi2.logsf(statistic, dof), rel=1e-9
         )
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    half=st.one_of(st.integers(0, 50_000).map(float), st.floats(0.0, 50_000.0)),
+    terms=st.integers(1, 64),
+)
+def test_chi2_log_survival_few_terms_equals_reference(half: float, terms: int) -> None:
+    # Up to 64 terms a row's largest term is looked for near the Poisson mode only; whole
+    # numbers m put two equal terms at the peak (m^m / m! = m^(m-1) / (m-1)!).
+    assert chi2_log_survival_even(2.0 * half, 2 * terms) == _reference_log_survival(
+        2.0 * half, 2 * terms
+    )
