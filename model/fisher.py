@@ -26,12 +26,10 @@ from mailweir.model.nb_base import (
 )
 from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
 
-# The least positive double: stands in for a zero denominator (see _probability).
+# The least positive double: stands in for a zero denominator (see _checked_f).
 _LEAST_DOUBLE = 5e-324
 # Counts below this convert to float exactly, and so does the sum of two (below 2**53).
 _EXACT_COUNTS = 2**52
-# Up to this many Poisson terms a row's maximum is found in Python (cheaper than numpy's call).
-_FEW_TERMS = 64
 # From this many tokens a partial sort finds the capped selection faster than a full one.
 _PARTIAL_SORT_FROM = 256
 
@@ -93,32 +91,16 @@ def _log_survivals_even(statistics: list[float], dof: int) -> list[float]:
     halves = [statistic / 2.0 for statistic in statistics]
     indices, log_factorials = _term_tables(dof // 2)
     # ln m of a zero statistic is never used (Q = 1 there); 0.0 keeps the row finite.
-    log_half = np.array([math.log(half) if half > 0 else 0.0 for half in halves])[:, None]
+    log_half = np.array([[math.log(half) if half > 0 else 0.0] for half in halves])
     # Row r: log(m_r^i / i!) = i ln m_r - ln i!, i < n.  (ufunc.reduce is the array methods'
     # reduction without their Python layer; rows sum in the order of a 1-D sum.)
     log_terms = log_half * indices - log_factorials
-    if len(indices) <= _FEW_TERMS:
-        tops = [
-            _near_mode_max(row, half) for row, half in zip(log_terms.tolist(), halves, strict=True)
-        ]
-    else:
-        tops = np.maximum.reduce(log_terms, axis=1).tolist()
-    sums = np.add.reduce(np.exp(log_terms - np.array(tops)[:, None]), axis=1)
+    top = np.maximum.reduce(log_terms, axis=1, keepdims=True)
+    sums = np.add.reduce(np.exp(log_terms - top), axis=1)
     return [
         0.0 if half == 0.0 else min(0.0, peak + math.log(total) - half)
-        for half, peak, total in zip(halves, tops, sums.tolist(), strict=True)
+        for half, peak, total in zip(halves, top.ravel().tolist(), sums.tolist(), strict=True)
     ]
-
-
-def _near_mode_max(row: list[float], half: float) -> float:
-    """max(row) for a row of `_log_survivals_even` with at most _FEW_TERMS terms.
-
-    i ln m - ln i! is concave in i with its peak at i = floor(m); two steps from the peak it
-    is at least about 1 / (m + 1) lower, far more than the rounding of the terms (about
-    4e-16 m ln m, m < 64 * 745 here), so the largest computed term is within one of it.
-    """
-    peak = min(int(half), len(row) - 1)
-    return max(row[max(0, peak - 2) : peak + 3])
 
 
 def chi2_survival_even(statistic: float, dof: int) -> float:
@@ -344,7 +326,7 @@ class RobinsonFisher(NaiveBayes):
         n_evidence: int = 8,
     ) -> Score:
         """As the base class scores (the daemon's hot path), checking 0 <= count <= class
-        count in one scan and ranking evidence among the tokens used alone."""
+        count on the rates it needs anyway and ranking evidence among the tokens used alone."""
         counts, classes = count_arrays(token_count, class_count)
         totals = classes.tolist()
         f = None

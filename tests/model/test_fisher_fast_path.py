@@ -319,8 +319,8 @@ def test_chi2_reference_matches_scipy() -> None:
     terms=st.integers(1, 64),
 )
 def test_chi2_log_survival_few_terms_equals_reference(half: float, terms: int) -> None:
-    # Up to 64 terms a row's largest term is looked for near the Poisson mode only; whole
-    # numbers m put two equal terms at the peak (m^m / m! = m^(m-1) / (m-1)!).
+    # The capped path's sizes; whole numbers m put two equal terms at the peak of the row
+    # (m^m / m! = m^(m-1) / (m-1)!), where the largest term must still be the same one.
     assert chi2_log_survival_even(2.0 * half, 2 * terms) == _reference_log_survival(
         2.0 * half, 2 * terms
     )
