@@ -339,18 +339,6 @@ class RobinsonFisher(NaiveBayes):
         hashes = check_score_inputs(token_hashes, len(counts), n_evidence)
         return self._scored(hashes, f, n_evidence)
 
-    def _score_checked(
-        self,
-        token_hashes: TokenHashes,
-        token_count: npt.NDArray[np.int64],
-        class_count: npt.NDArray[np.int64],
-        vocabulary: Vocabulary,
-        n_evidence: int,
-    ) -> Score:
-        """`score` once the base class has checked the inputs."""
-        f = self._probability(token_count, class_count)
-        return self._scored(token_hashes, f, n_evidence)
-
     def _scored(self, token_hashes: TokenHashes, f: FloatArray, n_evidence: int) -> Score:
         """Every other token's weight is 0 and never listed, so evidence is ranked among the
         tokens used alone."""

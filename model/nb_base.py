@@ -288,19 +288,8 @@ class NaiveBayes(ABC):
         hashes = check_score_inputs(token_hashes, len(counts), n_evidence)
         if not is_trained(classes):
             return Score(UNTRAINED_PROBABILITY, ())
-        return self._score_checked(hashes, counts, classes, vocabulary, n_evidence)
-
-    def _score_checked(
-        self,
-        token_hashes: TokenHashes,
-        token_count: npt.NDArray[np.int64],
-        class_count: npt.NDArray[np.int64],
-        vocabulary: Vocabulary,
-        n_evidence: int,
-    ) -> Score:
-        """`score` of inputs already checked, on a trained model; a method may share work."""
-        probability, weights = self.probability_and_weights(token_count, class_count, vocabulary)
-        return Score(probability, strongest_evidence(token_hashes, weights, n_evidence))
+        probability, weights = self.probability_and_weights(counts, classes, vocabulary)
+        return Score(probability, strongest_evidence(hashes, weights, n_evidence))
 
     def probability_and_weights(
         self, token_count: TokenCounts, class_count: ClassCounts, vocabulary: Vocabulary
