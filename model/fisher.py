@@ -30,8 +30,9 @@ from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashe
 _LEAST_DOUBLE = 5e-324
 # Counts below this convert to float exactly, and so does the sum of two (below 2**53).
 _EXACT_COUNTS = 2**52
-# From this many tokens a partial sort finds the capped selection faster than a full one.
-_PARTIAL_SORT_FROM = 256
+# From this many usable tokens a partial sort finds the capped selection faster than a full
+# one (measured: equal near 400, 10x faster at 5,000).
+_PARTIAL_SORT_FROM = 400
 
 
 @lru_cache(maxsize=8)
