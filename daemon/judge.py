@@ -307,13 +307,24 @@ def _evidence_text(
     score: Score, hashes: TokenHashes, texts: list[str]
 ) -> tuple[tuple[str, float], ...]:
     """Name each evidence hash by its token text, strongest first across both directions."""
-    named = []
-    for item in sorted(score.evidence, key=lambda e: (-abs(e.weight), e.token_hash)):
-        index = int(np.searchsorted(hashes, item.token_hash))
-        found = index < len(hashes) and int(hashes[index]) == item.token_hash
-        text = texts[index] if found else f"#{item.token_hash & 0xFFFFFFFFFFFFFFFF:016x}"
-        named.append((text, float(item.weight)))
-    return tuple(named)
+    ranked = sorted(score.evidence, key=lambda e: (-abs(e.weight), e.token_hash))
+    if not ranked or not len(hashes):
+        return tuple((_unnamed(item.token_hash), float(item.weight)) for item in ranked)
+    wanted = np.array([item.token_hash for item in ranked], dtype=np.int64)
+    # One search for all of them: a call per item cost more than the rest of this step.
+    at = np.minimum(np.searchsorted(hashes, wanted), len(hashes) - 1).tolist()
+    held = hashes[at].tolist()
+    return tuple(
+        (
+            texts[index] if value == item.token_hash else _unnamed(item.token_hash),
+            float(item.weight),
+        )
+        for item, index, value in zip(ranked, at, held, strict=True)
+    )
+
+
+def _unnamed(token_hash: int) -> str:
+    return f"#{token_hash & 0xFFFFFFFFFFFFFFFF:016x}"
 
 
 def _model_identity(store: Any, settings: Settings) -> tuple[TokenizerOptions, NaiveBayes]:

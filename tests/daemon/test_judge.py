@@ -401,3 +401,24 @@ def test_fisher_score_is_the_same_without_the_vocabulary_summary() -> None:
     without = fisher.score(hashes, counts, classes, empty, 4)
     assert with_summary.spam_probability == without.spam_probability
     assert with_summary.evidence == without.evidence
+
+
+def test_evidence_named_by_token_text_strongest_first() -> None:
+    from mailweir.model.nb_base import Evidence, Score
+
+    hashes = np.array([-9, -2, 5, 40], dtype=np.int64)  # sorted, as tokenize_step gives them
+    texts = ["kennel", "booster", "wallet", "lottery"]
+    evidence = (Evidence(40, 2.5), Evidence(5, 1.0), Evidence(-9, -2.5), Evidence(77, -0.5))
+    named = judge_module._evidence_text(Score(0.9, evidence), hashes, texts)
+    # Strongest first across both directions; a tie in strength goes to the lower hash; a
+    # hash the message does not hold (never from the scorer) is shown by its value.
+    assert named == (
+        ("kennel", -2.5),
+        ("lottery", 2.5),
+        ("wallet", 1.0),
+        ("#000000000000004d", -0.5),
+    )
+    assert judge_module._evidence_text(Score(0.5, ()), hashes, texts) == ()
+    assert judge_module._evidence_text(Score(0.5, evidence[:1]), hashes[:0], []) == (
+        ("#0000000000000028", 2.5),
+    )
