@@ -38,7 +38,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import bench_mail
 import proc_cpu
 
-from mailweir.daemon.judge import N_EVIDENCE, _evidence_text, tokenize_step
+from mailweir.daemon.judge import _NO_VOCABULARY, N_EVIDENCE, _evidence_text, tokenize_step
 from mailweir.daemon.sources import read_corpus
 from mailweir.model.hashing import message_digest
 from mailweir.model.nb import NaiveBayes, make_scorer
@@ -66,7 +66,9 @@ def _whole_path(store: ModelStore, scorer: NaiveBayes, raw: bytes) -> None:
     hashes, texts = tokenize_step(raw, DEFAULT_OPTIONS)
     counts = store.lookup(hashes)
     totals = np.asarray(store.class_count(), dtype=np.int64)
-    score = scorer.score(hashes, counts, totals, store.vocabulary(), N_EVIDENCE)
+    # The judge makes no vocabulary summary for a method that never reads it (Fisher).
+    vocabulary = store.vocabulary() if scorer.uses_vocabulary else _NO_VOCABULARY
+    score = scorer.score(hashes, counts, totals, vocabulary, N_EVIDENCE)
     _evidence_text(score, hashes, texts)
 
 
