@@ -122,3 +122,18 @@ def test_cache_small_keys_spread_over_buckets() -> None:
     assert found.all()
     assert counts.tolist() == np.column_stack([keys % 7, keys % 5]).tolist()
     assert np.count_nonzero(cache._fill) > 0.9 * len(cache._fill)
+
+
+def test_cache_put_first_of_repeated_hashes_wins_small_and_large() -> None:
+    # A put of a few goes one at a time, a larger one as whole arrays; both keep the first.
+    for extra in (0, 40):
+        cache = CountCache(1000)
+        keys = np.array([5, 9, 5, *range(100, 100 + extra)], dtype=np.int64)
+        counts = np.array([[1, 1], [2, 2], [3, 3], *([[0, 0]] * extra)], dtype=np.int64)
+        cache.put(keys, counts)
+        got, found = cache.get(np.array([5, 9], dtype=np.int64))
+        assert found.all()
+        assert got.tolist() == [[1, 1], [2, 2]]
+        cache.put(np.array([9], dtype=np.int64), np.array([[7, 8]], dtype=np.int64))
+        assert cache.get(np.array([9], dtype=np.int64))[0].tolist() == [[7, 8]]
+        assert len(cache) == 2 + extra
