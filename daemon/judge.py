@@ -1,10 +1,14 @@
 """Judging one message: tokenize, look up counts, score, and place the score in a band.
 
-The pipeline is tokenize (CPU) -> ``store.lookup`` (database) -> ``scorer.score`` (CPU).  None of
-it runs on the event loop, and an ``asyncio.Semaphore`` caps how many messages are in the
-pipeline at once (``model.max_concurrent_scoring``) so a burst queues instead of piling up
-memory.  A message goes through in as few hops off the loop as it can, since each hop costs
-more than scoring a small message (see "Hops" below).
+The pipeline is tokenize (CPU) -> ``store.lookup`` (database) -> ``scorer.score`` (CPU).  No
+database work runs on the event loop, and an ``asyncio.Semaphore`` caps how many messages are in
+the pipeline at once (``model.max_concurrent_scoring``) so a burst queues instead of piling up
+memory.  Where each step runs depends on the message's size (see "Hops" and "On the loop"):
+
+    below ON_LOOP_BELOW (16 KiB)   tokenize and score on the loop; a worker thread looks up
+                                   the counts only when memory lacks some of them
+    below INLINE_BELOW (64 KiB)    everything in one worker thread
+    larger                         tokenize in the process pool, look up and score in a thread
 
 Pool choice: a process pool (``POOL_KIND``), measured with ``bench/bench_pool.py`` on the
 2-core development machine (Python 3.11, 2 workers, 8 messages in flight, a 10 ms ticker on the
@@ -33,6 +37,16 @@ costs 5.0 ms.  So a message shorter than ``INLINE_BELOW`` is judged in one hop o
 own threads (tokenize, look up, score, name the evidence), holding the GIL for about a
 millisecond; a longer one is tokenized in the process pool, where its parse time stays off
 the loop's GIL, and then looked up and scored in one thread hop.
+
+On the loop: a thread does not keep the loop free while it computes.  It needs the GIL the loop
+holds, and under load the two trade it at the interpreter's switch interval (5 ms), so the
+other connections waited about as long as if the work ran on the loop, and the hand-over
+itself cost more CPU than judging a small message.  ``bench/bench_relay.py`` (4 KB, 8 clients,
+every count in memory, two pairs of runs): 3.1-3.5 ms of daemon CPU per message judged on the
+loop against 4.2-4.4 ms in a thread, 30 % more throughput, 19-26 ms at p99 against 29-36 ms.
+So a message below ``ON_LOOP_BELOW`` (at most a millisecond or two of tokenizing) is tokenized
+and, when ``store.cached_counts`` finds every count in memory, scored on the loop.  Only the
+database lookup, which waits on I/O (and releases the GIL while it does), goes to a thread.
 
 ``Judge.judge`` never raises.  Any exception, a locked database included, becomes band
 ``"failed"``; the traceback is logged with the tracking id and the failure counted, and the SMTP
@@ -67,6 +81,7 @@ log = logging.getLogger("mailweir.judge")
 JudgedBand = Literal["ham", "suspect", "spam", "unjudged", "failed"]
 POOL_KIND: Literal["thread", "process"] = "process"  # see the module docstring
 INLINE_BELOW = 64 * 1024  # bytes; smaller messages skip the process pool (module docstring)
+ON_LOOP_BELOW = 16 * 1024  # bytes; smaller messages are judged on the loop unless I/O is needed
 N_EVIDENCE = 4  # tokens listed each way, for the header and the log
 META_TOKENIZER = "tokenizer"
 META_METHOD = "method"
@@ -176,13 +191,17 @@ class Judge:
         executor_factory: Callable[[], concurrent.futures.Executor] | None = None,
         metrics: Any = None,
         inline_below: int = 0,
+        on_loop_below: int = 0,
     ) -> None:
         """``executor`` runs the CPU steps (None: the loop's default thread pool).  With
         ``executor_factory`` the judge makes its own and replaces it when it breaks (a process
         pool whose worker died fails every later call otherwise).  Messages shorter than
-        ``inline_below`` bytes skip a process pool (see ``INLINE_BELOW``)."""
+        ``inline_below`` bytes skip a process pool (see ``INLINE_BELOW``); those shorter than
+        ``on_loop_below`` are judged on the event loop unless their counts need the database
+        (see ``ON_LOOP_BELOW``; the store must then offer ``cached_counts``)."""
         self._store = store
         self._inline_below = inline_below
+        self._on_loop_below = on_loop_below
         self._metrics = metrics  # daemon.metrics.Metrics: parsing and scoring time
         if executor is None and executor_factory is not None:
             executor = executor_factory()
@@ -250,6 +269,9 @@ class Judge:
         executor: concurrent.futures.Executor | None,
     ) -> Judgement:
         loop = asyncio.get_running_loop()
+        if len(raw) < self._on_loop_below:
+            steps = await self._judge_on_loop(raw, policy.min_trained, executor)
+            return self._judgement(tracking_id, steps, policy)
         work = functools.partial(self._judge_here, raw, policy.min_trained)
         if isinstance(executor, concurrent.futures.ProcessPoolExecutor):
             if len(raw) >= self._inline_below:
@@ -263,6 +285,26 @@ class Judge:
                 )
             executor = self._threads  # looking up and scoring stay in this process
         steps = await loop.run_in_executor(executor, work)
+        return self._judgement(tracking_id, steps, policy)
+
+    async def _judge_on_loop(
+        self, raw: bytes, min_trained: int, executor: concurrent.futures.Executor | None
+    ) -> _Steps:
+        """Tokenize here; score here too when memory holds every count, else look up and score
+        in a worker thread (the one step that may wait on the database)."""
+        started = time.perf_counter()
+        hashes, texts = tokenize_step(raw, self.options)
+        parse_seconds = time.perf_counter() - started
+        # A method that reads the vocabulary summary may need the database for it.
+        cached = None if self.scorer.uses_vocabulary else self._store.cached_counts(hashes)
+        if cached is not None:
+            return self._scored(hashes, texts, self._guarded(*cached, min_trained), parse_seconds)
+        if isinstance(executor, concurrent.futures.ProcessPoolExecutor):
+            executor = self._threads
+        work = functools.partial(self._score_here, hashes, texts, min_trained, parse_seconds)
+        return await asyncio.get_running_loop().run_in_executor(executor, work)
+
+    def _judgement(self, tracking_id: str, steps: _Steps, policy: PolicySettings) -> Judgement:
         if steps.score is None:
             return Judgement(tracking_id, "unjudged", None, (), steps.hashes)
         if self._metrics is not None:
@@ -282,25 +324,38 @@ class Judge:
         self, hashes: TokenHashes, texts: list[str], min_trained: int, parse_seconds: float
     ) -> _Steps:
         """Look up and score in the calling worker thread (None score: the guard holds)."""
-        started = time.perf_counter()
-        view = self._read_model(hashes, min_trained)
+        return self._scored(hashes, texts, self._read_model(hashes, min_trained), parse_seconds)
+
+    def _scored(
+        self, hashes: TokenHashes, texts: list[str], view: _ModelView, parse_seconds: float
+    ) -> _Steps:
+        """Score what was read (CPU only; None score: the guard holds)."""
         if view.counts is None or view.vocabulary is None:
             return _Steps(hashes, None, (), parse_seconds, 0.0)
+        started = time.perf_counter()
         score = score_step(self.scorer, hashes, view.counts, view.class_count, view.vocabulary)
         seconds = time.perf_counter() - started
         evidence = _evidence_text(score, hashes, texts)
         return _Steps(hashes, score, evidence, parse_seconds, seconds)
 
-    def _read_model(self, hashes: TokenHashes, min_trained: int) -> _ModelView:
-        """Database step (worker thread): class totals, and counts unless the guard holds."""
-        class_count = np.asarray(self._store.class_count(), dtype=np.int64)
+    def _guarded(
+        self, class_count: ClassCounts, counts: TokenCounts, min_trained: int
+    ) -> _ModelView:
+        """The model view of counts already read, or none while the cold-start guard holds."""
         # An empty class leaves no posterior at all, so the guard holds even with min_trained 0.
-        if class_count.min() < max(min_trained, 1):
+        if np.min(class_count) < max(min_trained, 1):
             return _ModelView(class_count, None, None)
         # Fisher reads only token and class counts: no vocabulary summary (its snapshot costs
         # time per message and, made once in a thread, memory the allocator keeps).
         vocabulary = self._store.vocabulary() if self.scorer.uses_vocabulary else _NO_VOCABULARY
-        return _ModelView(class_count, self._store.lookup(hashes), vocabulary)
+        return _ModelView(class_count, counts, vocabulary)
+
+    def _read_model(self, hashes: TokenHashes, min_trained: int) -> _ModelView:
+        """Database step (worker thread): class totals, and counts unless the guard holds."""
+        class_count = np.asarray(self._store.class_count(), dtype=np.int64)
+        if class_count.min() < max(min_trained, 1):
+            return _ModelView(class_count, None, None)
+        return self._guarded(class_count, self._store.lookup(hashes), min_trained)
 
 
 def _evidence_text(

@@ -33,7 +33,7 @@ from mailweir.daemon.digest import DigestSchedule
 from mailweir.daemon.errors import ConfigError
 from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
 from mailweir.daemon.http_side import FeedbackHandler
-from mailweir.daemon.judge import INLINE_BELOW, Judge, make_executor
+from mailweir.daemon.judge import INLINE_BELOW, ON_LOOP_BELOW, Judge, make_executor
 from mailweir.daemon.log_setup import configure_logging
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import Observing
@@ -249,6 +249,7 @@ class Service:
             executor_factory=functools.partial(make_executor, model.scoring_workers),
             metrics=self.metrics,
             inline_below=INLINE_BELOW,
+            on_loop_below=ON_LOOP_BELOW,
         )
         self.verdict_log = VerdictLog(
             self.store,

@@ -271,6 +271,19 @@ class ModelStore:
         counts[~found] = fetched[np.searchsorted(unique, missing)]
         return counts
 
+    def cached_counts(self, hashes: TokenHashes) -> tuple[ClassCounts, TokenCounts] | None:
+        """Class totals and counts for *hashes* from memory alone, or None when answering
+        would need the database: a hash not cached, or memory due for its freshness check.
+
+        Never does I/O, so the event loop may call it; ``lookup`` and ``class_count`` (in a
+        worker thread) answer whatever this declines."""
+        if time.monotonic() - self._checked >= self._staleness:
+            return None
+        with self._lock:
+            counts, found = self._cache.get(np.asarray(hashes, dtype=np.int64))
+            totals = self._totals.copy()
+        return (totals, counts) if found.all() else None
+
     def _fetch(self, unique: TokenHashes) -> TokenCounts:
         # Each thread keeps one autocommit connection for lookups: checking a connection out
         # of the pool and back costs more than the query itself.  A failed connection is

@@ -145,6 +145,13 @@ class FakeStore:
             raise self.fail
         return np.tile(np.array([[1, 0]], dtype=np.int64), (len(hashes), 1))
 
+    in_memory = False  # whether cached_counts answers (as ModelStore's does once cached)
+
+    def cached_counts(self, hashes: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+        if not self.in_memory:
+            return None
+        return self._class_count, np.tile(np.array([[1, 0]], dtype=np.int64), (len(hashes), 1))
+
     def vocabulary(self) -> Vocabulary:
         self.vocabulary_reads = getattr(self, "vocabulary_reads", 0) + 1
         return Vocabulary.from_token_counts(np.array([[1, 0], [0, 1]], dtype=np.int64))
@@ -249,9 +256,61 @@ async def test_judge_scores_with_fake_counts() -> None:
     assert judgement.score is not None and judgement.score < 0.5
 
 
+def tokenizer_threads(monkeypatch: pytest.MonkeyPatch) -> set[int]:
+    """The threads the judge tokenizes in, from now on."""
+    seen: set[int] = set()
+    real_tokens = judge_module.tokens_and_hashes
+
+    def watched(raw: bytes, options: Any) -> Any:
+        seen.add(threading.get_ident())
+        return real_tokens(raw, options)
+
+    monkeypatch.setattr(judge_module, "tokens_and_hashes", watched)
+    return seen
+
+
+async def test_judge_small_message_with_counts_in_memory_stays_on_the_loop(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Handing a few hundred microseconds of work to a thread cost more than the work (the
+    # thread still needs the GIL the loop holds): with nothing to wait for, it runs here.
+    seen = tokenizer_threads(monkeypatch)
+    store = FakeStore()
+    store.in_memory = True
+    judge = Judge(store, settings(), on_loop_below=judge_module.ON_LOOP_BELOW)
+    judgement = await judge.judge(NEW_HAM)
+    assert seen == {threading.get_ident()}
+    assert not store.lookup_threads  # memory answered; the database was never asked
+    assert judgement.band == "ham"
+
+
+async def test_judge_database_lookup_never_on_the_loop(monkeypatch: pytest.MonkeyPatch) -> None:
+    seen = tokenizer_threads(monkeypatch)
+    store = FakeStore()  # cached_counts declines: the counts need the database
+    judge = Judge(store, settings(), on_loop_below=judge_module.ON_LOOP_BELOW)
+    judgement = await judge.judge(NEW_HAM)
+    assert seen == {threading.get_ident()}  # small: tokenized on the loop
+    assert store.lookup_threads and threading.get_ident() not in store.lookup_threads
+    assert judgement.band == "ham"
+
+
+async def test_judge_large_message_tokenized_off_the_loop(monkeypatch: pytest.MonkeyPatch) -> None:
+    seen = tokenizer_threads(monkeypatch)
+    store = FakeStore()
+    store.in_memory = True
+    judge = Judge(store, settings(), on_loop_below=judge_module.ON_LOOP_BELOW)
+    padding = b"Pepper is doing well after the dental check.\r\n" * 400
+    large = NEW_HAM + padding
+    assert len(large) >= judge_module.ON_LOOP_BELOW
+    assert (await judge.judge(large)).band == "ham"
+    assert seen and threading.get_ident() not in seen
+
+
 async def test_judge_cpu_and_database_work_leave_the_loop_free(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
+    # Without on_loop_below (as for messages of ON_LOOP_BELOW bytes and more) nothing runs
+    # on the loop.
     # The tokenizer is held until the event loop itself releases it: if tokenizing ran on the
     # loop, the loop could never reach release.set() and the wait would time out.
     release = threading.Event()

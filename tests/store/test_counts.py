@@ -303,3 +303,24 @@ def test_move_after_prune_counts_only_the_new_class(store: ModelStore) -> None:
     result = store.train(hashes_of(1, 2), HAM, digest=digest_of("a"), source="t")
     assert result is TrainResult.MOVED
     assert token_rows(store) == {1: (1, 0), 2: (1, 1)}
+
+
+def test_cached_counts_answer_from_memory_only(open_store: Callable[..., ModelStore]) -> None:
+    store = open_store(staleness_seconds=3600.0)
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    assert store.cached_counts(hashes_of(1, 3)) is None  # never looked up: the database knows
+    store.lookup(hashes_of(1, 3))
+    totals, counts = store.cached_counts(hashes_of(1, 3)) or (None, None)
+    assert totals is not None and counts is not None
+    assert totals.tolist() == [0, 1]
+    assert counts.tolist() == [[0, 1], [0, 0]]  # 3 is cached as unknown
+
+
+def test_cached_counts_decline_when_memory_is_due_a_check(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    # With no staleness window every answer needs the database's revision first, which
+    # cached_counts never reads: it leaves that to lookup.
+    store = open_store(staleness_seconds=0.0)
+    store.lookup(hashes_of(1))
+    assert store.cached_counts(hashes_of(1)) is None
