@@ -147,7 +147,9 @@ class FakeStore:
 
     in_memory = False  # whether cached_counts answers (as ModelStore's does once cached)
 
-    def cached_counts(self, hashes: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    def cached_counts(
+        self, hashes: np.ndarray, *, local_read: bool = False
+    ) -> tuple[np.ndarray, np.ndarray] | None:
         if not self.in_memory:
             return None
         return self._class_count, np.tile(np.array([[1, 0]], dtype=np.int64), (len(hashes), 1))
@@ -284,9 +286,11 @@ async def test_judge_small_message_with_counts_in_memory_stays_on_the_loop(
     assert judgement.band == "ham"
 
 
-async def test_judge_database_lookup_never_on_the_loop(monkeypatch: pytest.MonkeyPatch) -> None:
+async def test_judge_lookup_the_store_declines_goes_to_a_thread(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     seen = tokenizer_threads(monkeypatch)
-    store = FakeStore()  # cached_counts declines: the counts need the database
+    store = FakeStore()  # cached_counts declines: the counts need a lookup that may wait
     judge = Judge(store, settings(), on_loop_below=judge_module.ON_LOOP_BELOW)
     judgement = await judge.judge(NEW_HAM)
     assert seen == {threading.get_ident()}  # small: tokenized on the loop

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 from collections import Counter
 from collections.abc import Callable
 from pathlib import Path
@@ -13,6 +14,7 @@ from store_helpers import digest_of, dump_model, hashes_of, vocabulary_parts
 
 from mailweir.model.types import HAM, SPAM, Vocabulary
 from mailweir.store import ModelStore, StoreUnavailable, TrainResult
+from mailweir.store.engine import NO_BEGIN
 
 
 def token_rows(store: ModelStore) -> dict[int, tuple[int, int]]:
@@ -324,3 +326,56 @@ def test_cached_counts_decline_when_memory_is_due_a_check(
     store = open_store(staleness_seconds=0.0)
     store.lookup(hashes_of(1))
     assert store.cached_counts(hashes_of(1)) is None
+
+
+def test_cached_counts_local_read_fetches_what_memory_lacks(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    store = open_store(staleness_seconds=3600.0)
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    answer = store.cached_counts(hashes_of(1, 3), local_read=True)
+    if store.engine.dialect.name == "postgresql":
+        assert answer is None  # a network round trip: left to lookup in a thread
+        return
+    assert answer is not None
+    assert answer[1].tolist() == [[0, 1], [0, 0]]
+    # What it read is now in memory, so the plain memory answer has it too.
+    memory = store.cached_counts(hashes_of(1, 3))
+    assert memory is not None and memory[1].tolist() == [[0, 1], [0, 0]]
+
+
+def test_cached_counts_local_read_gives_way_to_a_busy_database(
+    store: ModelStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import sqlite3
+
+    if store.engine.dialect.name == "postgresql":
+        pytest.skip("local reads are SQLite only")
+    store.lookup(hashes_of(1))  # memory fresh
+
+    def busy(conn: object, hashes: object) -> object:
+        raise sqlite3.OperationalError("database is locked")
+
+    monkeypatch.setattr(store._reader, "fetch", busy)
+    assert store.cached_counts(hashes_of(1, 2), local_read=True) is None
+    monkeypatch.undo()
+    assert store.lookup(hashes_of(1, 2)).tolist() == [[0, 0], [0, 0]]
+
+
+def test_cached_counts_local_read_keeps_its_zero_busy_timeout_to_itself(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    store = open_store(staleness_seconds=3600.0)
+    if store.engine.dialect.name == "postgresql":
+        pytest.skip("local reads are SQLite only")
+    store.lookup(hashes_of(1))
+    assert store.cached_counts(hashes_of(2), local_read=True) is not None
+    store._drop_nowait_connection()  # as after an error: its connection is closed
+    # Every pooled connection, the one a writer gets included, still waits for locks.
+    with contextlib.ExitStack() as held:
+        conns = [
+            held.enter_context(store.engine.connect()).execution_options(**{NO_BEGIN: True})
+            for _ in range(5)
+        ]
+        assert {c.exec_driver_sql("PRAGMA busy_timeout").scalar() for c in conns} == {10000}
+    store.train(hashes_of(2), HAM, digest=digest_of("b"), source="t")
