@@ -298,7 +298,8 @@ class ModelStore:
         missing = hashes[~found]
         unique = np.unique(missing)
         try:
-            fetched = self._reader.fetch(self._nowait_connection(), unique)
+            dbapi = self._nowait_connection().connection.dbapi_connection
+            fetched = self._reader.fetch_sqlite(dbapi, unique)
         except (sa_exc.SQLAlchemyError, sqlite3.Error):
             self._drop_nowait_connection()
             return None

@@ -9,6 +9,7 @@ and stay in the driver's prepared-statement cache.  PostgreSQL gets one array pa
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -41,6 +42,19 @@ class CountReader:
 
     def fetch(self, conn: Connection, hashes: TokenHashes) -> TokenCounts:
         """Counts aligned with *hashes* (unique), zeros for hashes with no row."""
+        return self._fetch(hashes, lambda statement, params: _plain_rows(conn, statement, params))
+
+    def fetch_sqlite(self, dbapi_connection: Any, hashes: TokenHashes) -> TokenCounts:
+        """``fetch`` straight through a sqlite3 connection, past SQLAlchemy's execution
+        context, which costs several times SQLite's own work for the few hashes of one
+        message (and so past the engine's cursor events)."""
+        return self._fetch(
+            hashes, lambda statement, params: dbapi_connection.execute(statement, params).fetchall()
+        )
+
+    def _fetch(
+        self, hashes: TokenHashes, rows_of: Callable[[str, tuple[Any, ...]], list[Any]]
+    ) -> TokenCounts:
         values = np.asarray(hashes, dtype=np.int64)
         counts = np.zeros((len(values), 2), dtype=np.int64)
         if not len(values):
@@ -48,13 +62,13 @@ class CountReader:
         # Plain tuples: numpy would probe each SQLAlchemy Row as a mapping, very slowly.
         rows: list[tuple[int, int, int]] = []
         if self.postgres:
-            rows = _plain_rows(conn, _PG_SQL, (values.tolist(),))
+            rows = rows_of(_PG_SQL, (values.tolist(),))
         else:
             for start in range(0, len(values), self.limit):
                 part = values[start : start + self.limit].tolist()
                 size = _sqlite_bucket(len(part), self.limit)
                 params = tuple(part + [part[0]] * (size - len(part)))
-                rows += _plain_rows(conn, self._sqlite_text(size), params)
+                rows += rows_of(self._sqlite_text(size), params)
         if rows:
             found = np.array(rows, dtype=np.int64)
             order = np.argsort(values)

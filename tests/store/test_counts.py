@@ -356,7 +356,7 @@ def test_cached_counts_local_read_gives_way_to_a_busy_database(
     def busy(conn: object, hashes: object) -> object:
         raise sqlite3.OperationalError("database is locked")
 
-    monkeypatch.setattr(store._reader, "fetch", busy)
+    monkeypatch.setattr(store._reader, "fetch_sqlite", busy)
     assert store.cached_counts(hashes_of(1, 2), local_read=True) is None
     monkeypatch.undo()
     assert store.lookup(hashes_of(1, 2)).tolist() == [[0, 0], [0, 0]]
@@ -379,3 +379,16 @@ def test_cached_counts_local_read_keeps_its_zero_busy_timeout_to_itself(
         ]
         assert {c.exec_driver_sql("PRAGMA busy_timeout").scalar() for c in conns} == {10000}
     store.train(hashes_of(2), HAM, digest=digest_of("b"), source="t")
+
+
+def test_fetch_straight_through_sqlite_equals_fetch(store: ModelStore) -> None:
+    if store.engine.dialect.name == "postgresql":
+        pytest.skip("the straight path is SQLite's")
+    store.train(hashes_of(*range(0, 3000, 3)), SPAM, digest=digest_of("a"), source="t")
+    store.train(hashes_of(*range(0, 3000, 5)), HAM, digest=digest_of("b"), source="t")
+    wanted = np.unique(hashes_of(*range(0, 2500), -(2**63), 2**63 - 1))  # past one statement
+    with store.engine.connect() as conn:
+        plain = store._reader.fetch(conn, wanted)
+        straight = store._reader.fetch_sqlite(conn.connection.dbapi_connection, wanted)
+    assert straight.tolist() == plain.tolist()
+    assert plain.sum() == 834 + 500  # multiples of 3 (spam) and of 5 (ham) below 2,500
