@@ -13,7 +13,7 @@ from hashlib import blake2b
 
 import numpy as np
 
-from .pairs import pair_hash_int, pair_hashes, split_pair
+from .pairs import PAIR_PREFIX, pair_hash_int, pair_hashes, split_pair
 from .types import TokenHashes
 
 _CACHE_LIMIT = 200_000
@@ -30,6 +30,10 @@ def _digest8(token: str) -> bytes:
         distance, earlier, later = pair
         mixed = pair_hash_int(_cached_hash(earlier), _cached_hash(later), distance)
         return mixed.to_bytes(8, "little", signed=True)
+    return _blake8(token)
+
+
+def _blake8(token: str) -> bytes:
     # Lone surrogates (never produced by the tokenizer) hash instead of raising.
     return blake2b(token.encode("utf-8", "surrogatepass"), digest_size=8).digest()
 
@@ -96,9 +100,10 @@ def token_hashes(tokens: Iterable[str]) -> TokenHashes:
         for index, digest in enumerate(digests):
             if digest is None:
                 token = tokens[index]
-                pair = split_pair(token)
+                # Most misses are plain words: test the prefix before parsing a pair.
+                pair = split_pair(token) if token.startswith(PAIR_PREFIX) else None
                 if pair is None:
-                    digests[index] = _digest_cache[token] = _digest8(token)
+                    digests[index] = _digest_cache[token] = _blake8(token)
                 else:
                     deferred.append((index, *pair))
         if deferred:
