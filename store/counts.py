@@ -47,6 +47,7 @@ _BATCH_TOKENS = 300_000
 PRUNE_CHUNK_ROWS = 100_000  # rows one prune transaction deletes (memory, and training's wait)
 INT64_MIN, INT64_MAX = -(2**63), 2**63 - 1  # token hashes are signed 64-bit
 _WRITE_ATTEMPTS = 3
+LOCAL_READ_MAX = 64  # most uncached hashes cached_counts reads itself (real mail: about 6)
 
 
 @dataclass(frozen=True)
@@ -282,8 +283,10 @@ class ModelStore:
         With *local_read* on SQLite, hashes missing from memory are read from the local file
         on a connection that never waits for a lock (busy timeout 0): about 0.1 ms for the
         handful a message brings, less than handing them to a thread.  A busy database,
-        PostgreSQL (a network round trip) or any error gives None.  The event loop may call
-        this; ``lookup`` and ``class_count`` (in a worker thread) answer what it declines."""
+        PostgreSQL (a network round trip), more than ``LOCAL_READ_MAX`` missing (a cold cache
+        after a start, where each may be a disk read) or any error gives None.  The event
+        loop may call this; ``lookup`` and ``class_count`` (in a worker thread) answer what it
+        declines."""
         if time.monotonic() - self._checked >= self._staleness:
             return None
         hashes = np.asarray(hashes, dtype=np.int64)
@@ -293,9 +296,9 @@ class ModelStore:
             epoch, writers = self._epoch, self._writers
         if found.all():
             return totals, counts
-        if not local_read or self._reader.postgres:
-            return None
         missing = hashes[~found]
+        if not local_read or self._reader.postgres or len(missing) > LOCAL_READ_MAX:
+            return None
         unique = np.unique(missing)
         try:
             dbapi = self._nowait_connection().connection.dbapi_connection

@@ -392,3 +392,16 @@ def test_fetch_straight_through_sqlite_equals_fetch(store: ModelStore) -> None:
         straight = store._reader.fetch_sqlite(conn.connection.dbapi_connection, wanted)
     assert straight.tolist() == plain.tolist()
     assert plain.sum() == 834 + 500  # multiples of 3 (spam) and of 5 (ham) below 2,500
+
+
+def test_cached_counts_local_read_leaves_a_cold_cache_to_lookup(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    from mailweir.store.counts import LOCAL_READ_MAX
+
+    store = open_store(staleness_seconds=3600.0)
+    store.lookup(hashes_of(0))  # memory fresh, next to nothing cached
+    many = hashes_of(*range(1, LOCAL_READ_MAX + 2))
+    assert store.cached_counts(many, local_read=True) is None  # each might be a disk read
+    if store.engine.dialect.name != "postgresql":
+        assert store.cached_counts(many[:LOCAL_READ_MAX], local_read=True) is not None
