@@ -303,10 +303,12 @@ class Judge:
         parse_seconds = time.perf_counter() - started
         # A method that reads the vocabulary summary may need the database for it.
         cached = None
+        started = time.perf_counter()
         if not self.scorer.uses_vocabulary:
             cached = self._store.cached_counts(hashes, local_read=True)
         if cached is not None:
-            return self._scored(hashes, texts, self._guarded(*cached, min_trained), parse_seconds)
+            view = self._guarded(*cached, min_trained)
+            return self._scored(hashes, texts, view, parse_seconds, started)
         if isinstance(executor, concurrent.futures.ProcessPoolExecutor):
             executor = self._threads
         work = functools.partial(self._score_here, hashes, texts, min_trained, parse_seconds)
@@ -332,15 +334,22 @@ class Judge:
         self, hashes: TokenHashes, texts: list[str], min_trained: int, parse_seconds: float
     ) -> _Steps:
         """Look up and score in the calling worker thread (None score: the guard holds)."""
-        return self._scored(hashes, texts, self._read_model(hashes, min_trained), parse_seconds)
+        started = time.perf_counter()
+        view = self._read_model(hashes, min_trained)
+        return self._scored(hashes, texts, view, parse_seconds, started)
 
     def _scored(
-        self, hashes: TokenHashes, texts: list[str], view: _ModelView, parse_seconds: float
+        self,
+        hashes: TokenHashes,
+        texts: list[str],
+        view: _ModelView,
+        parse_seconds: float,
+        started: float,
     ) -> _Steps:
-        """Score what was read (CPU only; None score: the guard holds)."""
+        """Score what was read (CPU only; None score: the guard holds).  The scoring time
+        runs from ``started``, before the counts were read (``mailweir_scoring_seconds``)."""
         if view.counts is None or view.vocabulary is None:
             return _Steps(hashes, None, (), parse_seconds, 0.0)
-        started = time.perf_counter()
         score = score_step(self.scorer, hashes, view.counts, view.class_count, view.vocabulary)
         seconds = time.perf_counter() - started
         evidence = _evidence_text(score, hashes, texts)
