@@ -68,13 +68,7 @@ def machine_busy_seconds() -> float:
 
 def rss_bytes(pid: int) -> int:
     """Resident set size of one process (VmRSS), 0 when it is gone."""
-    try:
-        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-            if line.startswith("VmRSS:"):
-                return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return 0
+    return _kib_field(f"/proc/{pid}/status", "VmRSS:")
 
 
 def pss_bytes(pid: int) -> int:
@@ -82,9 +76,14 @@ def pss_bytes(pid: int) -> int:
 
     Pages shared between processes count in shares, so summing over a process tree counts
     each page once; summed RSS counts a page the forkserver preloaded once per worker."""
+    return _kib_field(f"/proc/{pid}/smaps_rollup", "Pss:")
+
+
+def _kib_field(path: str, key: str) -> int:
+    """Bytes of the first "<key> <n> kB" line of a /proc file, 0 when it is gone."""
     try:
-        for line in Path(f"/proc/{pid}/smaps_rollup").read_text().splitlines():
-            if line.startswith("Pss:"):
+        for line in Path(path).read_text().splitlines():
+            if line.startswith(key):
                 return int(line.split()[1]) * 1024
     except OSError:
         pass
