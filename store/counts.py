@@ -9,6 +9,7 @@ writes are noticed by re-reading the revision once ``staleness_seconds`` have pa
 
 from __future__ import annotations
 
+import functools
 import sqlite3
 import threading
 import time
@@ -19,6 +20,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 from sqlalchemy import Connection, Engine, delete, select
 from sqlalchemy import exc as sa_exc
 
@@ -263,16 +265,31 @@ class ModelStore:
             epoch, writers = self._epoch, self._writers
         if found.all():
             return counts
+        with store_errors():
+            self._fill(hashes, counts, found, self._fetch, epoch, writers)
+        return counts
+
+    def _fill(
+        self,
+        hashes: TokenHashes,
+        counts: TokenCounts,
+        found: npt.NDArray[np.bool_],
+        fetch: Callable[[TokenHashes], TokenCounts],
+        epoch: int,
+        writers: int,
+    ) -> bool:
+        """Fetch the counts memory lacked into *counts* and cache them, unless a write landed
+        since memory was read (*epoch*, *writers*): then False, and nothing is cached."""
         missing = hashes[~found]
         unique = np.unique(missing)
-        with store_errors():
-            fetched = self._fetch(unique)
+        fetched = fetch(unique)
         with self._lock:
             # A write committing meanwhile may or may not be in what we read: don't cache it.
-            if writers == 0 and epoch == self._epoch:
+            settled = writers == 0 and epoch == self._epoch
+            if settled:
                 self._cache.put(unique, fetched)
         counts[~found] = fetched[np.searchsorted(unique, missing)]
-        return counts
+        return settled
 
     def cached_counts(
         self, hashes: TokenHashes, *, local_read: bool = False
@@ -296,22 +313,17 @@ class ModelStore:
             epoch, writers = self._epoch, self._writers
         if found.all():
             return totals, counts
-        missing = hashes[~found]
-        if not local_read or self._reader.postgres or len(missing) > LOCAL_READ_MAX:
+        if not local_read or self._reader.postgres or len(found) - found.sum() > LOCAL_READ_MAX:
             return None
-        unique = np.unique(missing)
         try:
             dbapi = self._nowait_connection().connection.dbapi_connection
-            fetched = self._reader.fetch_sqlite(dbapi, unique)
+            fetch = functools.partial(self._reader.fetch_sqlite, dbapi)
+            settled = self._fill(hashes, counts, found, fetch, epoch, writers)
         except (sa_exc.SQLAlchemyError, sqlite3.Error):
             self._drop_nowait_connection()
             return None
-        with self._lock:
-            if writers or epoch != self._epoch:
-                return None  # a write landed meanwhile: let lookup read it properly
-            self._cache.put(unique, fetched)
-        counts[~found] = fetched[np.searchsorted(unique, missing)]
-        return totals, counts
+        # A write landed meanwhile: lookup (in a thread) reads it properly.
+        return (totals, counts) if settled else None
 
     def _nowait_connection(self) -> Connection:
         conn = getattr(self._local, "nowait_conn", None)
