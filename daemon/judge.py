@@ -307,7 +307,8 @@ class Judge:
         if not self.scorer.uses_vocabulary:
             cached = self._store.cached_counts(hashes, local_read=True)
         if cached is not None:
-            view = self._guarded(*cached, min_trained)
+            totals, counts = cached
+            view = self._guarded(totals, lambda: counts, min_trained)
             return self._scored(hashes, texts, view, parse_seconds, started)
         if isinstance(executor, concurrent.futures.ProcessPoolExecutor):
             executor = self._threads
@@ -356,23 +357,22 @@ class Judge:
         return _Steps(hashes, score, evidence, parse_seconds, seconds)
 
     def _guarded(
-        self, class_count: ClassCounts, counts: TokenCounts, min_trained: int
+        self, class_count: ClassCounts, counts_of: Callable[[], TokenCounts], min_trained: int
     ) -> _ModelView:
-        """The model view of counts already read, or none while the cold-start guard holds."""
+        """The model view, its counts from ``counts_of``, or no counts (none read) while the
+        cold-start guard holds."""
         # An empty class leaves no posterior at all, so the guard holds even with min_trained 0.
         if np.min(class_count) < max(min_trained, 1):
             return _ModelView(class_count, None, None)
         # Fisher reads only token and class counts: no vocabulary summary (its snapshot costs
         # time per message and, made once in a thread, memory the allocator keeps).
         vocabulary = self._store.vocabulary() if self.scorer.uses_vocabulary else _NO_VOCABULARY
-        return _ModelView(class_count, counts, vocabulary)
+        return _ModelView(class_count, counts_of(), vocabulary)
 
     def _read_model(self, hashes: TokenHashes, min_trained: int) -> _ModelView:
         """Database step (worker thread): class totals, and counts unless the guard holds."""
         class_count = np.asarray(self._store.class_count(), dtype=np.int64)
-        if class_count.min() < max(min_trained, 1):
-            return _ModelView(class_count, None, None)
-        return self._guarded(class_count, self._store.lookup(hashes), min_trained)
+        return self._guarded(class_count, lambda: self._store.lookup(hashes), min_trained)
 
 
 def _evidence_text(
