@@ -90,6 +90,9 @@ TOO_MANY_RECIPIENTS = Reply(452, "4.5.3", "Too many recipients")
 # RFC 5321 section 3.8 and 4.2.3 (421 closes the channel); RFC 3463 section 3.4,
 # X.3.2 "System not accepting network messages".
 TOO_MANY_CONNECTIONS = Reply(421, "4.3.2", "Too many connections, try again later")
+# RFC 5321 section 3.8 (a server that must shut down may answer 421 to anything and close);
+# RFC 3463 section 3.4, X.3.2 names "an imminent shutdown" among its examples.
+SHUTTING_DOWN = Reply(421, "4.3.2", "Service shutting down, try again later")
 # RFC 5321 section 3.8 (421 closes the channel); RFC 3463 section 3.8, X.7.0 "Other or
 # undefined security status": a policy refusal, as for a client over its connection share.
 TOO_MANY_FROM_CLIENT = Reply(421, "4.7.0", "Too many connections from your address, try later")

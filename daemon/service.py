@@ -39,6 +39,7 @@ from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import Observing
 from mailweir.daemon.quarantine import Quarantine, QuarantineCollector
 from mailweir.daemon.settings import HostPort, Settings
+from mailweir.daemon.smtp_server import Connections, create_smtp_server
 from mailweir.daemon.upkeep import Upkeep
 from mailweir.daemon.verdict_log import VerdictLog
 
@@ -66,6 +67,7 @@ class Service:
         self.feedback: FeedbackHandler | None = None  # the intake, when configured
         self.observing: Observing | None = None
         self.smtp_server: Any = None
+        self.connections: Connections | None = None  # the SMTP side's open connections
         self._signals: list[signal.Signals] = []
         self.reload_refusal = ""  # why the last refused reload was refused
 
@@ -76,7 +78,11 @@ class Service:
         self._prepare_state_dir()
         try:
             await self._open_parts()
-            self.smtp_server = await _create_smtp_server(self.settings, self.handler, self.metrics)
+            self.connections = Connections.from_settings(self.settings.smtp)
+            self.metrics.watch_connections(self.connections)
+            self.smtp_server = await create_smtp_server(
+                self.settings, self.handler, connections=self.connections
+            )
             self.observing = Observing(
                 self.settings,
                 self.metrics,
@@ -113,8 +119,10 @@ class Service:
 
     async def shutdown(self, grace: float = 30.0) -> None:
         self.remove_signal_handlers()
-        if self.smtp_server is not None:
-            self.smtp_server.close()  # stop accepting; connections already open carry on
+        if self.smtp_server is not None and self.connections is not None:
+            # Idle clients hear 421 now rather than start a transaction the drain must await.
+            self.connections.close_idle()
+            self.smtp_server.close()  # stop accepting; transactions in flight carry on
             # No wait_closed(): from Python 3.12 on it also waits for idle clients to leave.
             cancelled = await _drain(self.handler, grace)
             if cancelled:
@@ -123,6 +131,11 @@ class Service:
                     cancelled,
                     grace,
                 )
+            self.connections.close_idle()  # those whose transaction ended during the drain
+            # A connection the kernel handed over just before the listener closed gets its
+            # protocol a loop turn later (and a 421); a turn more runs connection_lost.
+            for _ in range(3):
+                await asyncio.sleep(0)
             self.smtp_server = None
         if self.observing is not None:
             await self.observing.stop()
@@ -338,14 +351,6 @@ def _make_handler(
     return TransactionWatch(FeedbackGate(filtering, intake))
 
 
-async def _create_smtp_server(settings: Settings, handler: Any, metrics: Metrics) -> Any:
-    from mailweir.daemon.smtp_server import Connections, create_smtp_server
-
-    connections = Connections.from_settings(settings.smtp)
-    metrics.watch_connections(connections)
-    return await create_smtp_server(settings, handler, connections=connections)
-
-
 class TransactionWatch:
     """The SMTP handler, seen through: which connections are inside a transaction.
 
@@ -389,7 +394,7 @@ async def _drain(watch: Any, grace: float) -> int:
     """Wait up to ``grace`` seconds for transactions in flight, then abort what is left.
 
     Returns how many transactions were cut off; their upstream never got a 250, so it keeps
-    those messages and retries them (nothing is lost).  Idle connections are closed too.
+    those messages and retries them (nothing is lost).
     """
     if not isinstance(watch, TransactionWatch):
         return 0
@@ -397,12 +402,8 @@ async def _drain(watch: Any, grace: float) -> int:
     while watch.busy() and time.monotonic() < deadline:
         await asyncio.sleep(0.02)
     cut = watch.busy()
-    for connection in watch.open_connections():
-        if connection in cut:
-            connection.transport.abort()
-        else:
-            connection.transport.close()
-    await asyncio.sleep(0)  # let connection_lost run for what was just closed
+    for connection in cut:
+        connection.transport.abort()
     return len(cut)
 
 

@@ -69,6 +69,7 @@ class Connections:
     def __init__(self, limit: int, admission: Admission | None = None) -> None:
         self.admission = admission or Admission(limit)
         self.protocols: set[FilterSMTP] = set()
+        self.closing = False  # set at shutdown: late arrivals get SHUTTING_DOWN
 
     @classmethod
     def from_settings(cls, smtp: SmtpSettings) -> Connections:
@@ -80,6 +81,8 @@ class Connections:
 
     def admit(self, protocol: FilterSMTP, host: str | None) -> Reply | None:
         """Count ``protocol`` in, or return the refusal to send before closing it."""
+        if self.closing:
+            return replies.SHUTTING_DOWN
         refusal = self.admission.admit(host, self.active)
         if refusal is None:
             self.protocols.add(protocol)
@@ -103,6 +106,15 @@ class Connections:
         for protocol in list(self.protocols):
             if protocol.transport is not None:
                 protocol.transport.close()
+
+    def close_idle(self) -> None:
+        """At shutdown: refuse newcomers, and tell each connection left open that we close."""
+        self.closing = True
+        for protocol in list(self.protocols):
+            transport = protocol.transport
+            if transport is None or transport.is_closing() or protocol.envelope.rcpt_tos:
+                continue  # gone already, or inside a transaction the drain waits for
+            _close_with(transport, replies.SHUTTING_DOWN)
 
 
 class FilterSMTP(SMTP):

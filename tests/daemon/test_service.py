@@ -19,6 +19,7 @@ from typing import Any
 import pytest
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
+from mailweir.daemon import replies
 from mailweir.daemon import service as service_module
 from mailweir.daemon.config import ConfigSource
 from mailweir.daemon.errors import ConfigError
@@ -147,6 +148,67 @@ async def test_service_shutdown_cuts_off_after_grace_without_a_250(
     with pytest.raises(smtplib.SMTPException):
         await sending  # no 250: the upstream keeps the message and retries
     assert "1 transactions still running" in caplog.text
+
+
+def read_reply(sock: socket.socket) -> bytes:
+    """One whole SMTP reply, multiline ones included (RFC 5321 section 4.2.1)."""
+    received = b""
+    while not any(line[3:4] == b" " for line in received.split(b"\r\n")):
+        chunk = sock.recv(4096)
+        if not chunk:
+            break
+        received += chunk
+    return received
+
+
+def read_until_closed(sock: socket.socket) -> bytes:
+    """Everything the server sends until it closes (bounded by the socket's timeout)."""
+    received = b""
+    while chunk := sock.recv(4096):
+        received += chunk
+    return received
+
+
+async def test_service_shutdown_closes_idle_connections_with_a_421(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    # A client between transactions (greeted, EHLO sent, no RCPT) is told the service is
+    # closing (RFC 5321 section 3.8: 421 may answer any time the server must shut down) and
+    # its connection is closed, not left open until the process exits.
+    _, next_hop = sink
+    service = Service(make_settings(tmp_path, next_hop))
+    await service.startup()
+    address = service.smtp_address
+    idle = await asyncio.to_thread(socket.create_connection, (address.host, address.port), 10)
+    greeted = await asyncio.to_thread(socket.create_connection, (address.host, address.port), 10)
+    try:
+        assert (await asyncio.to_thread(read_reply, idle)).startswith(b"220 ")
+        await asyncio.to_thread(idle.sendall, b"EHLO client.harbourlane.example\r\n")
+        assert (await asyncio.to_thread(read_reply, idle)).startswith(b"250-")
+        await service.shutdown(grace=5)
+        after_ehlo = await asyncio.to_thread(read_until_closed, idle)
+        after_greeting = await asyncio.to_thread(read_until_closed, greeted)
+    finally:
+        idle.close()
+        greeted.close()
+    assert after_ehlo.startswith(b"421 4.3.2 ")
+    assert after_greeting.startswith(b"220 ") and b"\r\n421 4.3.2 " in after_greeting
+
+
+async def test_service_answers_421_to_a_connection_accepted_as_it_stops(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    # The kernel may hand over a connection after the listener closed; it gets its 421 at once
+    # and is closed, rather than a greeting from a server that is going away.
+    _, next_hop = sink
+    service = Service(make_settings(tmp_path, next_hop))
+    await service.startup()
+    connections = service.connections
+    assert connections is not None
+    await service.shutdown(grace=5)
+    late: Any = object()
+    assert connections.admit(late, "192.0.2.7") == replies.SHUTTING_DOWN
+    assert not connections.protocols
 
 
 async def test_service_bad_config_fails_before_binding(
