@@ -13,10 +13,12 @@ import subprocess
 import sys
 
 import numpy as np
+import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from mailweir.model.hashing import hash_tokens, message_digest, token_hash
+from mailweir.model import hashing
+from mailweir.model.hashing import hash_tokens, message_digest, token_hash, token_hashes
 
 
 def test_token_hash_pinned_values() -> None:
@@ -89,3 +91,37 @@ def test_message_digest_is_blake2b_of_sorted_bytes() -> None:
 
 def test_message_digest_differs_for_different_tokens() -> None:
     assert message_digest(hash_tokens(["ham"])) != message_digest(hash_tokens(["spam"]))
+
+
+# Cached and uncached words, pairs (mixed from their words' hashes), repeats, a malformed pair
+# text (hashed as a plain token) and the empty token.
+MIXED = [
+    "kennel",
+    "osb:0:kennel cough",
+    "booster",
+    "kennel",
+    "osb:2:annual booster",
+    "osb:x:not a pair",
+    "",
+    "osb:0:kennel cough",
+    "café",
+]
+
+
+def test_token_hashes_one_for_one_through_the_cache() -> None:
+    # Oracle: token_hash of each token, which bypasses the cache for plain words.
+    hashing._digest_cache.clear()
+    cold = token_hashes(MIXED).tolist()
+    warm = token_hashes(MIXED).tolist()
+    hashing._digest_cache.pop("booster")  # one miss among hits
+    partly = token_hashes(MIXED).tolist()
+    assert cold == warm == partly == [token_hash(token) for token in MIXED]
+
+
+def test_token_hashes_empties_a_full_cache_first(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(hashing, "_CACHE_LIMIT", 3)
+    hashing._digest_cache.clear()
+    token_hashes(["kennel", "booster", "collar", "leash"])
+    assert len(hashing._digest_cache) == 4  # over the limit only after this call
+    assert token_hashes(["harness"]).tolist() == [token_hash("harness")]
+    assert list(hashing._digest_cache) == ["harness"]
