@@ -129,12 +129,34 @@ def spaced_words(text: str) -> list[tuple[str, str]]:
     of at least two letters (dates, phone numbers, list markers) are skipped.
     """
     pairs: list[tuple[str, str]] = []
-    if not _SPACED_HINT.search(text):
-        return pairs
-    for match in _SPACED.finditer(text):
+    for match in spaced_runs(text):
         raw = " ".join(match.group(0).split())
         joined = "".join(ch for ch in raw if ch.isalnum() or ch in _LEET_CHARS)
         word = joined if joined.isalpha() else joined.translate(_LEET)
         if word.isalpha() and sum(1 for ch in joined if ch.isalpha()) >= 2:
             pairs.append((raw, word))
     return pairs
+
+
+def spaced_runs(text: str) -> list[re.Match[str]]:
+    """``list(_SPACED.finditer(text))``, found by trying ``_SPACED`` only where a run can start.
+
+    ``finditer`` tries the pattern at every character, about 35 ns each: 0.15 ms for 4 KB,
+    and in most long texts some pair of single letters passes the hint.  A run's hint match
+    begins at the last separator before its second unit, 1-3 characters after the run's
+    first unit; so a run can only start 1-3 characters before a hint match (hint matches may
+    overlap, so each is searched from one past the last).  Trying those starts in order, from
+    the end of the previous run, finds what ``finditer`` finds.
+    """
+    starts: set[int] = set()
+    at = 0
+    while (hint := _SPACED_HINT.search(text, at)) is not None:
+        at = hint.start() + 1
+        starts.update(range(max(0, at - 4), at - 1))
+    runs: list[re.Match[str]] = []
+    done = 0
+    for start in sorted(starts):
+        if start >= done and (run := _SPACED.match(text, start)) is not None:
+            runs.append(run)
+            done = run.end()
+    return runs

@@ -15,7 +15,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from mailweir.model.hashing import hash_tokens
-from mailweir.model.normalize import _SPACED, _SPACED_HINT, spaced_words
+from mailweir.model.normalize import _SPACED, _SPACED_HINT, spaced_runs, spaced_words
 from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens
 
 SMALL = TokenizerOptions(max_tokens=50, max_parts=6, max_depth=3, max_part_bytes=2000)
@@ -141,3 +141,16 @@ def test_spaced_run_hint_never_misses_a_run(text: str) -> None:
         assert _SPACED_HINT.search(text)
     else:
         assert spaced_words(text) == []
+
+
+@settings(max_examples=1000, deadline=None)
+@given(
+    st.text(alphabet="fre1@$ .-_*+~·•\tab'x,", max_size=120)
+    | st.lists(st.sampled_from(["f", "r", "e", "1", "ab", " ", "  ", ".", "-", "x y", "\t"])).map(
+        "".join
+    )
+)
+def test_spaced_runs_finds_what_finditer_finds(text: str) -> None:
+    # Oracle: the plain left-to-right scan spaced_runs replaces.
+    expected = [(m.start(), m.end()) for m in _SPACED.finditer(text)]
+    assert [(m.start(), m.end()) for m in spaced_runs(text)] == expected
