@@ -68,6 +68,11 @@ class CountCache:
     def __len__(self) -> int:
         return self._size
 
+    def roomy(self, new: int) -> bool:
+        """Whether *new* more entries fit without a rehash or emptying the table (a put that
+        does either takes 0.1 s or more for a big table)."""
+        return self._size + new <= min(self.max_tokens, _MAX_LOAD * _BUCKET * len(self._fill))
+
     def clear(self) -> None:
         """Forget every entry."""
         self._allocate(_MIN_BUCKETS)
@@ -112,7 +117,7 @@ class CountCache:
         keys = np.asarray(hashes, dtype=np.int64).tolist()
         rows = np.asarray(counts, dtype=np.int64).tolist()
         first = dict(zip(reversed(keys), reversed(rows), strict=True))  # the first of repeats
-        if self._size + len(first) > min(self.max_tokens, _MAX_LOAD * _BUCKET * len(self._fill)):
+        if not self.roomy(len(first)):
             return False  # overflow or growth: the whole-array path's rules
         mask = (1 << 64) - 1
         buckets = int(self._buckets)

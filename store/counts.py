@@ -277,18 +277,28 @@ class ModelStore:
         fetch: Callable[[TokenHashes], TokenCounts],
         epoch: int,
         writers: int,
+        wait: bool = True,
     ) -> bool:
         """Fetch the counts memory lacked into *counts* and cache them, unless a write landed
-        since memory was read (*epoch*, *writers*): then False, and nothing is cached."""
+        since memory was read (*epoch*, *writers*): then False, and nothing is cached.
+
+        Without *wait* (the event loop) it also gives False, caching nothing, rather than wait
+        for the lock or rehash the cache: a worker thread's ``lookup`` does either."""
         missing = hashes[~found]
         unique = np.unique(missing)
         fetched = fetch(unique)
-        with self._lock:
+        counts[~found] = fetched[np.searchsorted(unique, missing)]
+        if not self._lock.acquire(blocking=wait):
+            return False
+        try:
             # A write committing meanwhile may or may not be in what we read: don't cache it.
             settled = writers == 0 and epoch == self._epoch
+            if settled and not wait and not self._cache.roomy(len(unique)):
+                settled = False
             if settled:
                 self._cache.put(unique, fetched)
-        counts[~found] = fetched[np.searchsorted(unique, missing)]
+        finally:
+            self._lock.release()
         return settled
 
     def cached_counts(
@@ -301,16 +311,22 @@ class ModelStore:
         on a connection that never waits for a lock (busy timeout 0): about 0.1 ms for the
         handful a message brings, less than handing them to a thread.  A busy database,
         PostgreSQL (a network round trip), more than ``LOCAL_READ_MAX`` missing (a cold cache
-        after a start, where each may be a disk read) or any error gives None.  The event
-        loop may call this; ``lookup`` and ``class_count`` (in a worker thread) answer what it
-        declines."""
+        after a start, where each may be a disk read) or any error gives None.  So do the
+        store's lock held by a thread and a put that would rehash the cache: either could
+        stall the caller for 0.1 s or more.  The event loop may call this; ``lookup`` and
+        ``class_count`` (in a worker thread) answer what it declines."""
         if time.monotonic() - self._checked >= self._staleness:
             return None
         hashes = np.asarray(hashes, dtype=np.int64)
-        with self._lock:
+        # Never wait here: a thread may hold the lock through a rehash (0.1 s or more).
+        if not self._lock.acquire(blocking=False):
+            return None
+        try:
             counts, found = self._cache.get(hashes)
             totals = self._totals.copy()
             epoch, writers = self._epoch, self._writers
+        finally:
+            self._lock.release()
         if found.all():
             return totals, counts
         if not local_read or self._reader.postgres or len(found) - found.sum() > LOCAL_READ_MAX:
@@ -318,7 +334,7 @@ class ModelStore:
         try:
             dbapi = self._nowait_connection().connection.dbapi_connection
             fetch = functools.partial(self._reader.fetch_sqlite, dbapi)
-            settled = self._fill(hashes, counts, found, fetch, epoch, writers)
+            settled = self._fill(hashes, counts, found, fetch, epoch, writers, wait=False)
         except (sa_exc.SQLAlchemyError, sqlite3.Error):
             self._drop_nowait_connection()
             return None

@@ -87,6 +87,23 @@ def test_cache_overflow_empties_then_refills() -> None:
     assert cache.get(np.array([1, 4, 5], dtype=np.int64))[1].tolist() == [False, True, True]
 
 
+def test_cache_roomy_until_a_put_would_rehash_or_empty() -> None:
+    cache = CountCache(1_000_000)
+    room = 0
+    while cache.roomy(room + 1):
+        room += 1
+    capacity = len(cache._fill) * 8  # buckets of eight keys
+    assert 0 < room < capacity  # some room, short of a full table
+    keys = np.arange(room, dtype=np.int64)
+    cache.put(keys, np.zeros((room, 2), dtype=np.int64))
+    assert len(cache._fill) * 8 == capacity  # filled to the brim of roomy: no rehash
+    assert not cache.roomy(1)
+    cache.put(np.array([room], dtype=np.int64), np.zeros((1, 2), dtype=np.int64))
+    assert len(cache._fill) * 8 > capacity and cache.roomy(1)  # that put grew the table
+    small = CountCache(3)
+    assert small.roomy(3) and not small.roomy(4)  # past the limit a put empties the cache
+
+
 def test_cache_spill_round_the_end_of_the_table_is_found() -> None:
     crowded = np.array(_homed_in_last_buckets(40, 1), dtype=np.int64)  # 40 keys, 8 slots
     cache = CountCache(1000)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import threading
 from collections import Counter
 from collections.abc import Callable
 from pathlib import Path
@@ -379,6 +380,49 @@ def test_cached_counts_local_read_keeps_its_zero_busy_timeout_to_itself(
         ]
         assert {c.exec_driver_sql("PRAGMA busy_timeout").scalar() for c in conns} == {10000}
     store.train(hashes_of(2), HAM, digest=digest_of("b"), source="t")
+
+
+def test_cached_counts_never_wait_for_the_lock(open_store: Callable[..., ModelStore]) -> None:
+    # A worker thread may hold the store's lock through a rehash of the count cache (0.1 s
+    # or more); the event loop's call gives way at once rather than stall every connection.
+    store = open_store(staleness_seconds=3600.0)
+    store.lookup(hashes_of(1))
+    holding, release = threading.Event(), threading.Event()
+
+    def hold() -> None:
+        with store._lock:
+            holding.set()
+            release.wait(30)
+
+    holder = threading.Thread(target=hold)
+    holder.start()
+    try:
+        assert holding.wait(30)
+        assert store.cached_counts(hashes_of(1)) is None
+        assert store.cached_counts(hashes_of(1), local_read=True) is None
+    finally:
+        release.set()
+        holder.join()
+    assert store.cached_counts(hashes_of(1)) is not None
+
+
+def test_cached_counts_local_read_leaves_a_rehash_to_lookup(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    store = open_store(staleness_seconds=3600.0)
+    if store.engine.dialect.name == "postgresql":
+        pytest.skip("local reads are SQLite only")
+    store.train(hashes_of(7), SPAM, digest=digest_of("a"), source="t")
+    cache = store._cache
+    filler = 0
+    while cache.roomy(1):  # fill memory up to the point where one more entry rehashes it
+        filler += 1
+        cache.put(hashes_of(10_000 + filler), np.zeros((1, 2), dtype=np.int64))
+    held, buckets = len(cache), len(cache._fill)
+    assert store.cached_counts(hashes_of(7), local_read=True) is None
+    assert (len(cache), len(cache._fill)) == (held, buckets)  # nothing cached, no rehash
+    assert store.lookup(hashes_of(7)).tolist() == [[0, 1]]  # a worker thread's path does it
+    assert len(cache) == held + 1 and len(cache._fill) > buckets
 
 
 def test_fetch_straight_through_sqlite_equals_fetch(store: ModelStore) -> None:
