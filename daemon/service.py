@@ -132,10 +132,7 @@ class Service:
                     grace,
                 )
             self.connections.close_idle()  # those whose transaction ended during the drain
-            # A connection the kernel handed over just before the listener closed gets its
-            # protocol a loop turn later (and a 421); a turn more runs connection_lost.
-            for _ in range(3):
-                await asyncio.sleep(0)
+            await _closed(self.connections, CLOSE_WAIT)
             self.smtp_server = None
         if self.observing is not None:
             await self.observing.stop()
@@ -390,6 +387,9 @@ class TransactionWatch:
         target.settings = settings
 
 
+CLOSE_WAIT = 1.0  # seconds for closed connections to flush their 421 at shutdown
+
+
 async def _drain(watch: Any, grace: float) -> int:
     """Wait up to ``grace`` seconds for transactions in flight, then abort what is left.
 
@@ -405,6 +405,20 @@ async def _drain(watch: Any, grace: float) -> int:
     for connection in cut:
         connection.transport.abort()
     return len(cut)
+
+
+async def _closed(connections: Connections, seconds: float) -> None:
+    """Give closed connections ``seconds`` to send their 421 and go, then cut off the rest
+    (a client that reads nothing would hold its transport open past the loop's end)."""
+    # A connection the kernel handed over just before the listener closed gets its protocol
+    # a loop turn later (and a 421); a turn more runs connection_lost.
+    for _ in range(3):
+        await asyncio.sleep(0)
+    deadline = time.monotonic() + seconds
+    while connections.active and time.monotonic() < deadline:
+        await asyncio.sleep(0.01)
+    connections.abort_all()
+    await asyncio.sleep(0)
 
 
 # -- the `mailweir run` command ------------------------------------------------------------

@@ -2,7 +2,8 @@
 
 Connection admission against floods (daemon/admission.py), a short wait for the first
 command, XFORWARD from the mail server in front (daemon/xforward.py), an idle timeout that a
-slow relay does not trip, and our own wording of aiosmtpd's replies.  What happens to each
+slow relay does not trip, DATA read in a few large reads (daemon/smtp_data.py) and our own
+wording of aiosmtpd's replies.  What happens to each
 message is :class:`~mailweir.daemon.smtp.FilterHandler`'s business.
 """
 
@@ -17,13 +18,14 @@ from collections.abc import Awaitable, Callable, Coroutine, Iterator
 from contextlib import contextmanager
 from typing import TYPE_CHECKING, Any, AnyStr
 
-from aiosmtpd.smtp import SMTP, Envelope, Session
+from aiosmtpd.smtp import MISSING, SMTP, Envelope, Session, syntax
 
 from mailweir.daemon import replies, site_policy, smtp_paths, xforward
 from mailweir.daemon.admission import Admission
 from mailweir.daemon.relay import NextHopSession
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import Settings, SmtpSettings
+from mailweir.daemon.smtp_data import read_data
 
 if TYPE_CHECKING:
     from mailweir.daemon.smtp import FilterHandler
@@ -106,6 +108,12 @@ class Connections:
         for protocol in list(self.protocols):
             if protocol.transport is not None:
                 protocol.transport.close()
+
+    def abort_all(self) -> None:
+        """Cut off every connection still open, unsent replies and all."""
+        for protocol in list(self.protocols):
+            if protocol.transport is not None:
+                protocol.transport.abort()
 
     def close_idle(self) -> None:
         """At shutdown: refuse newcomers, and tell each connection left open that we close."""
@@ -254,6 +262,35 @@ class FilterSMTP(SMTP):
         log.debug("%s: no first command in %ss", self._peer_host, self._first_command_timeout)
         self._connections.admission.first_command_timeouts += 1
         _close_with(self.transport, replies.NO_FIRST_COMMAND)
+
+    @syntax("DATA")
+    async def smtp_DATA(self, arg: str | None) -> None:
+        """aiosmtpd's DATA, its checks, replies and handler call kept, with the message read
+        to the lone dot in a few reads rather than line by line (daemon/smtp_data.py)."""
+        if await self.check_helo_needed() or await self.check_auth_needed("DATA"):
+            return
+        if not self.envelope.rcpt_tos:
+            await self.push("503 Error: need RCPT command")
+            return
+        if arg:
+            await self.push("501 Syntax: DATA")
+            return
+        await self.push("354 End data with <CR><LF>.<CR><LF>")
+        try:
+            data = await read_data(self._reader, self.data_size_limit)
+        except asyncio.CancelledError:  # aiosmtpd cancels the command when the client goes
+            log.info("connection lost during DATA")
+            self._writer.close()
+            raise
+        if data.content is None:
+            # Read to the end first, then refused: RFC 5321 section 4.2.5 (aiosmtpd does too).
+            self._set_post_data_state()
+            await self.push(str(replies.MESSAGE_TOO_BIG))
+            return
+        self.envelope.content = self.envelope.original_content = data.content
+        status = await self._call_handler_hook("DATA") if "DATA" in self._handle_hooks else MISSING
+        self._set_post_data_state()
+        await self.push("250 OK" if status is MISSING else status)
 
     @property
     def xforward_allowed(self) -> bool:

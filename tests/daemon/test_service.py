@@ -186,6 +186,7 @@ async def test_service_shutdown_closes_idle_connections_with_a_421(
         await asyncio.to_thread(idle.sendall, b"EHLO client.harbourlane.example\r\n")
         assert (await asyncio.to_thread(read_reply, idle)).startswith(b"250-")
         await service.shutdown(grace=5)
+        assert service.connections is not None and service.connections.active == 0
         after_ehlo = await asyncio.to_thread(read_until_closed, idle)
         after_greeting = await asyncio.to_thread(read_until_closed, greeted)
     finally:
