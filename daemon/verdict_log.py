@@ -57,6 +57,8 @@ class VerdictLog:
         # (journal segment, record), in the order added; the segments never decrease.
         self._pending: collections.deque[tuple[int, Any]] = collections.deque()
         self._writing: list[int] = []  # the first segment of each batch being written
+        # One batch at a time, in queue order; flush() waits on it for a batch in flight.
+        self._write_lock = asyncio.Lock()
         self._journal_dir = journal_dir
         self._journal: VerdictJournal | None = None
         self._max_pending = max_pending
@@ -117,9 +119,13 @@ class VerdictLog:
             self._journal = None
 
     async def flush(self) -> None:
-        """Write what is queued now (tests, and before a planned pause)."""
-        while self._pending and await self._write_batch():
-            pass
+        """Write what is queued now, and wait for a batch the background task is writing
+        (tests, and before a planned pause).  Stops at the first failed write."""
+        while True:
+            async with self._write_lock:  # a batch in flight lands (or comes back) first
+                pass
+            if not self._pending or not await self._write_batch():
+                return
 
     async def _run(self) -> None:
         while not self._closing:
@@ -146,6 +152,10 @@ class VerdictLog:
             log.info("erased token hashes of %d verdicts past the retention window", erased)
 
     async def _write_batch(self) -> bool:
+        async with self._write_lock:
+            return await self._write_next_batch()
+
+    async def _write_next_batch(self) -> bool:
         batch = [self._pending.popleft() for _ in range(min(self._batch_size, len(self._pending)))]
         first = batch[0][0] if batch else 0
         self._writing.append(first)

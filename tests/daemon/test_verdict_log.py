@@ -109,6 +109,27 @@ async def test_verdict_log_add_never_blocks_while_store_is_stuck() -> None:
     assert store.records == list(range(500))
 
 
+async def test_verdict_log_flush_waits_for_the_batch_being_written() -> None:
+    # flush() promises that what was queued is written when it returns, also when the
+    # background task has already taken it into a write that is still running.
+    store = RecordingStore()
+    store.gate.clear()
+    log = VerdictLog(store, batch_seconds=3600, batch_size=3)
+    await log.start()
+    for i in range(3):
+        log.add(i)  # a full batch: the background task starts writing it
+    await asyncio.to_thread(store.entered.wait, 10)
+    assert log.pending == 0  # taken off the queue, not yet in the database
+    log.add(3)
+    flushing = asyncio.create_task(log.flush())
+    await asyncio.sleep(0.05)
+    assert not flushing.done()
+    store.gate.set()
+    await asyncio.wait_for(flushing, 10)
+    assert store.records == [0, 1, 2, 3]
+    await log.close()
+
+
 async def test_verdict_log_failed_write_is_retried_in_order() -> None:
     store = RecordingStore()
     store.fail_next = 1
