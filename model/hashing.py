@@ -24,6 +24,14 @@ _CACHE_LIMIT = 200_000
 _digest_cache: dict[str, bytes] = {}
 
 
+def limit_digest_cache(entries: int) -> None:
+    """Hold at most about *entries* token digests in this process (emptied when over)."""
+    global _CACHE_LIMIT
+    _CACHE_LIMIT = entries
+    if len(_digest_cache) > entries:
+        _digest_cache.clear()
+
+
 def _digest8(token: str) -> bytes:
     pair = split_pair(token)
     if pair is not None:  # the tokenizer mixes these from word hashes (pairs.osb_pair_hashes)

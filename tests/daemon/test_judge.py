@@ -381,6 +381,20 @@ async def test_judge_runs_in_a_process_pool() -> None:
     assert any(text for text, _ in judgement.evidence)
 
 
+def digest_cache_limit() -> int:
+    from mailweir.model import hashing
+
+    return hashing._CACHE_LIMIT
+
+
+@pytest.mark.slow
+def test_process_pool_workers_keep_a_small_digest_cache() -> None:
+    # The workers see only large messages; their digest caches were most of their memory.
+    with judge_module.make_executor(1, "process") as pool:
+        assert pool.submit(digest_cache_limit).result(60) == judge_module.WORKER_DIGEST_CACHE
+    assert digest_cache_limit() == 200_000  # the daemon's own process keeps its size
+
+
 def crash_worker() -> None:
     os._exit(3)  # a worker dying the hard way (out of memory, a crash in C code)
 

@@ -125,3 +125,15 @@ def test_token_hashes_empties_a_full_cache_first(monkeypatch: pytest.MonkeyPatch
     assert len(hashing._digest_cache) == 4  # over the limit only after this call
     assert token_hashes(["harness"]).tolist() == [token_hash("harness")]
     assert list(hashing._digest_cache) == ["harness"]
+
+
+def test_limit_digest_cache_empties_a_cache_over_the_new_limit(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.setattr(hashing, "_CACHE_LIMIT", hashing._CACHE_LIMIT)  # restored afterwards
+    hashing._digest_cache.clear()
+    token_hashes(["kennel", "booster", "collar"])
+    hashing.limit_digest_cache(3)
+    assert len(hashing._digest_cache) == 3  # within the limit: kept
+    hashing.limit_digest_cache(2)
+    assert hashing._digest_cache == {} and hashing._CACHE_LIMIT == 2
