@@ -32,12 +32,10 @@ if TYPE_CHECKING:
 
 log = logging.getLogger("mailweir.smtp")
 
-# aiosmtpd words these replies itself, without enhanced codes.  With the line limit lifted to
-# the message size limit, a line too long can only be a message too big.
+# aiosmtpd words these replies itself, without enhanced codes (its DATA replies no longer
+# arise: smtp_DATA below answers a message too big with our own).
 _OWN_WORDING_BYTES = {
-    b"552 Error: Too much mail data": str(replies.MESSAGE_TOO_BIG),
     b"552 Error: message size exceeds fixed maximum message size": str(replies.MESSAGE_TOO_BIG),
-    b"500 Line too long (see RFC5321 4.5.3.1.6)": str(replies.MESSAGE_TOO_BIG),
 }
 # Looked up by the reply as aiosmtpd pushes it, str or bytes (the same text either way).
 _OWN_WORDING: dict[Any, str] = {
