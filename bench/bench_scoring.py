@@ -229,24 +229,20 @@ def bench_train_command(count: int) -> None:
 
 
 def bench_memory(path: Path) -> None:
-    """Resident memory once every token of the model is held in the count cache."""
-    import sqlite3
-
-    with sqlite3.connect(path) as db:
-        every = np.array([row[0] for row in db.execute("SELECT hash FROM weir_token")])
-    every.sort()
+    """Resident memory once every token of the model is held in the count cache, preloaded
+    as the daemon does (``ModelStore.preload``)."""
     before = proc_cpu.rss_bytes(os.getpid())
-    store = ModelStore.open(str(path), cache_tokens=len(every) + 1)
-    for start in range(0, len(every), 4096):
-        store.lookup(every[start : start + 4096])
+    store = ModelStore.open(str(path))
+    if not store.preload():
+        raise SystemExit("the model did not fit in the count cache")
     after = proc_cpu.rss_bytes(os.getpid())
     stats = store.stats()
     store.close()
-    tokens_held = len(every)
+    tokens_held = stats.tokens
     budget = 100 * 2**20 + 40 * tokens_held
     print(
         f"resident memory:     {after / 2**20:7.1f} MB with {tokens_held} tokens held "
-        f"(budget {budget / 2**20:.1f} MB); the cache added "
+        f"(budget {budget / 2**20:.1f} MB); opening and preloading added "
         f"{(after - before) / tokens_held:.1f} B per token"
     )
     print(

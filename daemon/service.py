@@ -37,6 +37,7 @@ from mailweir.daemon.judge import INLINE_BELOW, ON_LOOP_BELOW, Judge, make_execu
 from mailweir.daemon.log_setup import configure_logging
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import Observing
+from mailweir.daemon.preload import KeepPreloaded
 from mailweir.daemon.quarantine import Quarantine, QuarantineCollector
 from mailweir.daemon.settings import HostPort, Settings
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
@@ -59,6 +60,7 @@ class Service:
         self.judge: Judge | None = None
         self.verdict_log: VerdictLog | None = None
         self.upkeep: Upkeep | None = None
+        self.preload: KeepPreloaded | None = None
         self.quarantine: Quarantine | None = None
         self.digests: DigestSchedule | None = None
         self._quarantine_collector: QuarantineCollector | None = None
@@ -271,6 +273,9 @@ class Service:
         self.metrics.watch_verdict_log(self.verdict_log)
         self.upkeep = Upkeep(self.store, self.settings.upkeep, self.metrics.upkeep)
         await self.upkeep.start()
+        if model.preload:
+            self.preload = KeepPreloaded(self.store)
+            self.preload.start()
         intake = FeedbackIntake(
             self.store,
             self.settings.feedback,
@@ -302,6 +307,9 @@ class Service:
         if self.upkeep is not None:
             await self.upkeep.stop()  # before the store closes under a task's thread
             self.upkeep = None
+        if self.preload is not None:
+            await self.preload.stop()  # likewise
+            self.preload = None
         if self.verdict_log is not None:
             await self.verdict_log.close()
             self.verdict_log = None

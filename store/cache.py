@@ -150,11 +150,30 @@ class CountCache:
 
         *hashes* should be unique: a repeated hash gets its delta once, not once per repeat.
         """
+        self._add_held(np.asarray(hashes, dtype=np.int64), np.asarray(delta, dtype=np.int64))
+
+    def add_or_insert(self, hashes: TokenHashes, delta: TokenCounts) -> bool:
+        """``add``, and cache the hashes not held as ``max(delta, 0)`` (for a cache that holds
+        every token there is: those had no counts).  False, inserting none, when they would
+        pass the token limit.  *hashes* should be unique."""
         hashes = np.asarray(hashes, dtype=np.int64)
         delta = np.asarray(delta, dtype=np.int64)
+        where = self._add_held(hashes, delta)
+        fresh = np.ones(len(hashes), dtype=np.bool_)
+        fresh[where] = False
+        new = int(fresh.sum())
+        if self._size + new > self.max_tokens:
+            return False
+        if new:
+            self._insert(hashes[fresh], np.maximum(delta[fresh], 0))
+        return True
+
+    def _add_held(self, hashes: npt.NDArray[np.int64], delta: npt.NDArray[np.int64]) -> _Index:
+        """Add *delta* to the entries held, clamping at zero; return where they are in *hashes*."""
         where, slots = self._find(hashes)
         updated = self._pairs[slots + _BUCKET] + delta[where]
         self._pairs[slots + _BUCKET] = np.maximum(updated, 0)
+        return where
 
     # -- the table -----------------------------------------------------------------------------
 

@@ -29,7 +29,8 @@ from mailweir.store import schema, verdicts
 from mailweir.store.cache import CountCache
 from mailweir.store.engine import NO_BEGIN, READ_ONLY, make_engine
 from mailweir.store.errors import StoreBusy, retryable, store_errors
-from mailweir.store.lookup import CountReader
+from mailweir.store.lookup import CountReader, every_count
+from mailweir.store.memory import release_free_memory
 from mailweir.store.meta import database_bytes, get_meta, row_count, set_meta
 from mailweir.store.migrations import migrate
 from mailweir.store.training import (
@@ -87,6 +88,7 @@ class ModelStore:
         self._epoch = 0  # advances on every in-memory change; guards cache fills
         self._writers = 0  # transactions in flight in this process that may change counts
         self._lookup_conns: list[Connection] = []
+        self._complete = False  # memory holds every token's counts (``preload``)
         postgres = engine.dialect.name == "postgresql"
         self._autocommit: dict[str, Any] = (
             {"isolation_level": "AUTOCOMMIT"} if postgres else {NO_BEGIN: True}
@@ -225,6 +227,7 @@ class ModelStore:
 
     def _reset(self, revision: int, totals: ClassCounts) -> None:
         self._cache.clear()
+        self._complete = False
         self._vocab = None
         self._totals = totals
         self._revision = revision
@@ -245,7 +248,10 @@ class ModelStore:
             self._checked = float("-inf")  # someone else wrote too: reload on next read
             self._reset(-1, self._totals)
             return
-        self._cache.add(hashes, delta)
+        if self._complete:  # a token memory lacks had no counts; one past the limit ends that
+            self._complete = self._cache.add_or_insert(hashes, delta)
+        else:
+            self._cache.add(hashes, delta)
         self._totals = self._totals + messages
         if self._vocab is not None:
             if old is None:
@@ -262,8 +268,8 @@ class ModelStore:
         self._check_fresh()
         with self._lock:
             counts, found = self._cache.get(hashes)
-            epoch, writers = self._epoch, self._writers
-        if found.all():
+            epoch, writers, complete = self._epoch, self._writers, self._complete
+        if complete or found.all():  # complete: what memory lacks has no counts
             return counts
         with store_errors():
             self._fill(hashes, counts, found, self._fetch, epoch, writers)
@@ -324,10 +330,10 @@ class ModelStore:
         try:
             counts, found = self._cache.get(hashes)
             totals = self._totals.copy()
-            epoch, writers = self._epoch, self._writers
+            epoch, writers, complete = self._epoch, self._writers, self._complete
         finally:
             self._lock.release()
-        if found.all():
+        if complete or found.all():  # complete: what memory lacks has no counts
             return totals, counts
         if not local_read or self._reader.postgres or len(found) - found.sum() > LOCAL_READ_MAX:
             return None
@@ -378,6 +384,42 @@ class ModelStore:
                 self._lookup_conns.remove(conn)
             conn.close()
             raise
+
+    @property
+    def complete(self) -> bool:
+        """Whether memory holds every token's counts (``preload``), so a lookup reads nothing."""
+        return self._complete
+
+    def preload(self) -> bool:
+        """Read every token's counts into memory, so a hash memory lacks is known to have none
+        and a lookup never reads the database.  Own writes keep memory complete; another
+        process's write (noticed within ``staleness_seconds``) or the token limit ends it, and
+        lookups read through again until the next preload.
+
+        SQLite only (on a shared PostgreSQL model other daemons write all the time).  False
+        when the model holds more tokens than the cache may, or a write landed meanwhile."""
+        if self._reader.postgres:
+            return False
+        with self._lock:
+            epoch = self._epoch
+        with self._reading(snapshot=True) as conn, conn.begin():
+            revision, totals = self._read_totals(conn)
+            rows = row_count(conn, schema.token)
+            if rows > self._cache.max_tokens:
+                return False
+            hashes, counts = every_count(conn, rows)
+        cache = CountCache(self._cache.max_tokens)
+        cache.put(hashes, counts)
+        del hashes, counts
+        release_free_memory()
+        with self._lock:
+            if epoch != self._epoch or self._writers:
+                return False
+            if revision != self._revision:
+                self._reset(revision, totals)
+            self._cache, self._complete = cache, True
+            self._epoch += 1
+        return True
 
     def class_count(self) -> ClassCounts:
         """Trained ham and spam messages, shape (2,)."""

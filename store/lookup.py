@@ -91,3 +91,26 @@ def _plain_rows(conn: Connection, statement: str, params: tuple[Any, ...]) -> li
         return list(result.cursor.fetchall())
     finally:
         result.close()
+
+
+_CHUNK_ROWS = 8192
+
+
+def every_count(conn: Connection, rows: int) -> tuple[TokenHashes, TokenCounts]:
+    """Every token's hash and counts (*rows*: how many the table holds, read in the same
+    transaction).  Read in small chunks into arrays of the final size: the driver's row
+    tuples for a whole model of a million tokens would take over 100 MB, and memory freed
+    after a peak mostly stays with the process."""
+    hashes = np.empty(rows, dtype=np.int64)
+    counts = np.empty((rows, 2), dtype=np.int64)
+    result = conn.exec_driver_sql(_SELECT.removesuffix(" WHERE hash"))
+    at = 0
+    try:
+        while chunk := result.cursor.fetchmany(_CHUNK_ROWS):
+            part = np.array(chunk, dtype=np.int64)
+            hashes[at : at + len(part)] = part[:, 0]
+            counts[at : at + len(part)] = part[:, 1:]
+            at += len(part)
+    finally:
+        result.close()
+    return hashes[:at], counts[:at]

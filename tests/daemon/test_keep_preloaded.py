@@ -1,0 +1,115 @@
+"""The daemon keeps every token's counts in memory: preloaded at start, again after it ends."""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+import threading
+from pathlib import Path
+
+import pytest
+
+from mailweir.daemon.preload import KeepPreloaded
+
+
+class FakeStore:
+    """Stands in for ModelStore.preload/complete; the gate holds a preload in its thread."""
+
+    def __init__(self) -> None:
+        self.complete = False
+        self.calls = 0
+        self.fail_next = 0
+        self.gate = threading.Event()
+        self.gate.set()
+        self.entered = threading.Event()
+
+    def preload(self) -> bool:
+        self.calls += 1
+        self.entered.set()
+        assert self.gate.wait(10), "test left the gate shut"
+        if self.fail_next:
+            self.fail_next -= 1
+            raise RuntimeError("database is locked")
+        self.complete = True
+        return True
+
+
+async def wait_until(condition, rounds: int = 2000) -> None:  # type: ignore[no-untyped-def]
+    for _ in range(rounds):
+        if condition():
+            return
+        await asyncio.sleep(0.005)
+    raise AssertionError("condition never became true")
+
+
+async def test_preloads_at_start_and_again_once_memory_is_no_longer_complete() -> None:
+    store = FakeStore()
+    keeper = KeepPreloaded(store, every=0.01)
+    keeper.start()
+    await wait_until(lambda: store.complete)
+    await asyncio.sleep(0.05)
+    assert store.calls == 1  # complete: nothing more to read
+    store.complete = False  # another process wrote
+    await wait_until(lambda: store.complete)
+    assert store.calls == 2
+    await keeper.stop()
+
+
+async def test_a_failed_preload_is_logged_and_tried_again(
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    store = FakeStore()
+    store.fail_next = 1
+    keeper = KeepPreloaded(store, every=0.01)
+    keeper.start()
+    await wait_until(lambda: store.complete)
+    assert store.calls == 2
+    assert "preloading the token counts failed" in caplog.text
+    await keeper.stop()
+
+
+async def test_stop_waits_for_a_preload_in_its_thread() -> None:
+    store = FakeStore()
+    store.gate.clear()
+    keeper = KeepPreloaded(store, every=3600)
+    keeper.start()
+    await asyncio.to_thread(store.entered.wait, 10)
+    stopping = asyncio.create_task(keeper.stop())
+    await asyncio.sleep(0.05)
+    assert not stopping.done()  # the store must not close under the reading thread
+    store.gate.set()
+    await asyncio.wait_for(stopping, 10)
+
+
+@pytest.mark.parametrize("preload", [True, False])
+async def test_the_daemon_holds_its_whole_model_in_memory(tmp_path: Path, preload: bool) -> None:
+    import numpy as np
+
+    from mailweir.daemon.service import Service
+    from mailweir.daemon.settings import HostPort, Settings, SmtpSettings
+    from mailweir.model.hashing import message_digest
+    from mailweir.model.types import SPAM
+    from mailweir.store import ModelStore
+
+    base = Settings(state_dir=tmp_path)
+    settings = dataclasses.replace(
+        base,
+        smtp=SmtpSettings(listen=HostPort("127.0.0.1", 0), hostname="filter.harbourlane.example"),
+        http=dataclasses.replace(base.http, listen=HostPort("127.0.0.1", 0)),
+        model=dataclasses.replace(base.model, preload=preload),
+    )
+    hashes = np.arange(1, 50, dtype=np.int64)
+    model = ModelStore.open(str(settings.database))
+    model.train(hashes, SPAM, digest=message_digest(hashes), source="t")
+    model.close()
+    service = Service(settings)
+    await service.startup()
+    try:
+        if preload:
+            await wait_until(lambda: service.store.complete)
+        else:  # model.preload = false: tokens are read as mail brings them
+            await asyncio.sleep(0.2)
+            assert service.preload is None and not service.store.complete
+        assert service.store.lookup(np.array([7, 500])).tolist() == [[0, 1], [0, 0]]
+    finally:
+        await service.shutdown(grace=1)

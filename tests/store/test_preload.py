@@ -1,0 +1,167 @@
+"""ModelStore.preload: every token's counts in memory, so a lookup never reads the database.
+
+The oracle is the database itself: after any mix of our own training, untraining, pruning
+and another process's writes, every lookup must give what the token rows say (zero for a
+token with no row).
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Callable
+
+import numpy as np
+import pytest
+from sqlalchemy import event
+from store_helpers import digest_of, dump_model, hashes_of
+
+from mailweir.model.types import HAM, SPAM
+from mailweir.store import ModelStore
+
+
+def truth(store: ModelStore, hashes: np.ndarray) -> list[list[int]]:
+    rows = {h: [ham, spam] for h, ham, spam in dump_model(store)["tokens"]}  # type: ignore[misc]
+    return [rows.get(int(h), [0, 0]) for h in hashes]
+
+
+def selects_during(store: ModelStore, action: Callable[[], object]) -> int:
+    seen: list[str] = []
+
+    def tracer(_conn: object, _cursor: object, statement: str, *_args: object) -> None:
+        seen.append(statement)
+
+    event.listen(store.engine, "before_cursor_execute", tracer)
+    try:
+        action()
+    finally:
+        event.remove(store.engine, "before_cursor_execute", tracer)
+    return sum(1 for s in seen if "weir_token" in s)
+
+
+def sqlite_only(store: ModelStore) -> None:
+    if store.engine.dialect.name == "postgresql":
+        assert not store.preload() and not store.complete  # other daemons write all the time
+        pytest.skip("preloading is SQLite only")
+
+
+def test_preload_answers_every_lookup_from_memory(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    writer = open_store()
+    writer.train(hashes_of(1, 2, 3), SPAM, digest=digest_of("a"), source="t")
+    writer.train(hashes_of(3, 4), HAM, digest=digest_of("b"), source="t")
+    store = open_store(staleness_seconds=3600.0)
+    sqlite_only(store)
+    assert store.preload() and store.complete
+    wanted = hashes_of(1, 3, 4, 99, -5)
+    assert selects_during(store, lambda: store.lookup(wanted)) == 0
+    assert store.lookup(wanted).tolist() == truth(store, wanted)
+    answer = store.cached_counts(wanted)  # the event loop's call needs no local read either
+    assert answer is not None and answer[1].tolist() == truth(store, wanted)
+
+
+def test_own_writes_keep_memory_complete(open_store: Callable[..., ModelStore]) -> None:
+    store = open_store(staleness_seconds=3600.0)
+    sqlite_only(store)
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    assert store.preload()
+    store.train(hashes_of(2, 5, 6), HAM, digest=digest_of("b"), source="t")  # 5, 6 are new
+    store.train_many([(hashes_of(6, 7), SPAM, digest_of("c"), "t")])
+    store.untrain(hashes_of(1, 2), digest=digest_of("a"))
+    store.prune(max_count=1, unseen_days=0, today=10**6)  # rows of count 1 go
+    wanted = hashes_of(*range(0, 10))
+    assert store.complete
+    assert selects_during(store, lambda: store.lookup(wanted)) == 0
+    assert store.lookup(wanted).tolist() == truth(store, wanted)
+
+
+def test_another_process_writing_ends_completeness(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    store = open_store(staleness_seconds=0.0)  # notices other writers at once
+    sqlite_only(store)
+    other = open_store()
+    store.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
+    assert store.preload()
+    other.train(hashes_of(1, 8), HAM, digest=digest_of("b"), source="t")
+    wanted = hashes_of(1, 8, 9)
+    assert store.lookup(wanted).tolist() == truth(store, wanted) == [[1, 1], [1, 0], [0, 0]]
+    assert not store.complete
+    assert store.preload() and store.complete  # and the next preload restores it
+    assert store.lookup(wanted).tolist() == truth(store, wanted)
+
+
+def test_preload_declines_a_model_over_the_token_limit(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    store = open_store(cache_tokens=3, staleness_seconds=3600.0)
+    sqlite_only(store)
+    store.train(hashes_of(1, 2, 3, 4), SPAM, digest=digest_of("a"), source="t")
+    assert not store.preload() and not store.complete
+    assert store.lookup(hashes_of(1, 4, 9)).tolist() == [[0, 1], [0, 1], [0, 0]]
+
+
+def test_training_past_the_token_limit_ends_completeness(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    store = open_store(cache_tokens=4, staleness_seconds=3600.0)
+    sqlite_only(store)
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    assert store.preload()
+    store.train(hashes_of(3, 4, 5), HAM, digest=digest_of("b"), source="t")  # 5 tokens > 4
+    assert not store.complete
+    wanted = hashes_of(1, 3, 5, 9)
+    assert store.lookup(wanted).tolist() == truth(store, wanted)
+
+
+def test_preload_gives_way_to_a_write_in_flight(open_store: Callable[..., ModelStore]) -> None:
+    store = open_store(staleness_seconds=3600.0)
+    sqlite_only(store)
+    store.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
+    results: list[bool] = []
+    with store.transaction():  # a write of ours between its read and its commit
+        reader = threading.Thread(target=lambda: results.append(store.preload()))
+        reader.start()
+        reader.join(30)
+    assert results == [False] and not store.complete
+    assert store.preload()
+
+
+def test_preloaded_lookups_match_the_database_through_mixed_writes(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    # Random own and foreign writes, preloads now and then; every lookup checked against the
+    # rows (seeded, bounded: 60 steps over 40 token values).
+    store = open_store(cache_tokens=30, staleness_seconds=0.0)
+    sqlite_only(store)
+    other = open_store()
+    rng = np.random.default_rng(11)
+    trained: list[tuple[np.ndarray, bytes]] = []
+    for step in range(60):
+        action = rng.integers(0, 6)
+        tokens = hashes_of(*rng.integers(0, 40, rng.integers(1, 6)).tolist())
+        if action <= 1:
+            digest = digest_of(f"m{step}")
+            store.train(tokens, int(rng.integers(0, 2)), digest=digest, source="t")
+            trained.append((tokens, digest))
+        elif action == 2 and trained:
+            tokens, digest = trained.pop(int(rng.integers(0, len(trained))))
+            store.untrain(tokens, digest=digest)
+        elif action == 3:
+            other.train(tokens, SPAM, digest=digest_of(f"o{step}"), source="t")
+        elif action == 4:
+            store.preload()
+        else:
+            store.prune(max_count=1, unseen_days=0, today=10**6)
+        wanted = hashes_of(*range(0, 40))
+        assert store.lookup(wanted).tolist() == truth(store, wanted), step
+
+
+def test_release_free_memory_calls_glibc_where_there_is_one() -> None:
+    import platform
+
+    from mailweir.store import memory
+
+    memory.release_free_memory()  # never raises
+    if platform.system() == "Linux" and platform.libc_ver()[0] == "glibc":
+        assert memory._malloc_trim() is not None
