@@ -3,15 +3,14 @@
 from __future__ import annotations
 
 import ctypes
-import ctypes.util
 import functools
+from collections.abc import Callable
 
 
 @functools.cache
-def _malloc_trim() -> ctypes._NamedFuncPointer | None:
-    name = ctypes.util.find_library("c")
-    try:
-        return ctypes.CDLL(name).malloc_trim if name else None
+def _malloc_trim() -> Callable[[int], int] | None:
+    try:  # the symbols the process already has: glibc's, on Linux
+        return ctypes.CDLL(None).malloc_trim  # type: ignore[no-any-return]
     except (OSError, AttributeError):  # not glibc: nothing to call
         return None
 
