@@ -9,7 +9,7 @@ import asyncio
 import dataclasses
 import smtplib
 import socket
-from collections.abc import AsyncIterator, Sequence
+from collections.abc import AsyncIterator, Callable, Sequence
 from contextlib import asynccontextmanager
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -148,6 +148,15 @@ class NextHop:
             )
         )
         return f"250 2.0.0 Queued as Q{len(self.deliveries)}"
+
+
+async def wait_until(condition: Callable[[], object], rounds: int = 2000) -> None:
+    """Poll *condition* every 5 ms, at most *rounds* times (10 s by default)."""
+    for _ in range(rounds):
+        if condition():
+            return
+        await asyncio.sleep(0.005)
+    raise AssertionError("condition never became true")
 
 
 def free_port() -> int:

@@ -8,6 +8,7 @@ import threading
 from pathlib import Path
 
 import pytest
+from smtp_helpers import wait_until
 
 from mailweir.daemon.preload import KeepPreloaded
 
@@ -32,14 +33,6 @@ class FakeStore:
             raise RuntimeError("database is locked")
         self.complete = True
         return True
-
-
-async def wait_until(condition, rounds: int = 2000) -> None:  # type: ignore[no-untyped-def]
-    for _ in range(rounds):
-        if condition():
-            return
-        await asyncio.sleep(0.005)
-    raise AssertionError("condition never became true")
 
 
 async def test_preloads_at_start_and_again_once_memory_is_no_longer_complete() -> None:

@@ -8,6 +8,7 @@ import time
 from typing import Any
 
 import pytest
+from smtp_helpers import wait_until
 
 from mailweir.daemon.verdict_log import VerdictLog
 
@@ -40,14 +41,6 @@ class RecordingStore:
     @property
     def records(self) -> list[Any]:
         return [r for batch in self.batches for r in batch]
-
-
-async def wait_until(condition: Any, rounds: int = 2000) -> None:
-    for _ in range(rounds):
-        if condition():
-            return
-        await asyncio.sleep(0.005)
-    raise AssertionError("condition never became true")
 
 
 async def test_verdict_log_writes_full_batches_without_waiting_for_timer() -> None:
