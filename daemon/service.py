@@ -396,6 +396,7 @@ class TransactionWatch:
 
 
 CLOSE_WAIT = 1.0  # seconds for closed connections to flush their 421 at shutdown
+ACCEPT_SETTLE = 0.05  # seconds for connections accepted as the listener closed to appear
 
 
 async def _drain(watch: Any, grace: float) -> int:
@@ -419,11 +420,10 @@ async def _closed(connections: Connections, seconds: float) -> None:
     """Give closed connections ``seconds`` to send their 421 and go, then cut off the rest
     (a client that reads nothing would hold its transport open past the loop's end)."""
     # A connection the kernel handed over just before the listener closed gets its protocol
-    # a loop turn later (and a 421); a turn more runs connection_lost.
-    for _ in range(3):
-        await asyncio.sleep(0)
+    # (and its 421) from a task that runs a few loop turns later: wait that out first.
+    await asyncio.sleep(ACCEPT_SETTLE)
     deadline = time.monotonic() + seconds
-    while connections.active and time.monotonic() < deadline:
+    while not connections.all_gone and time.monotonic() < deadline:
         await asyncio.sleep(0.01)
     connections.abort_all()
     await asyncio.sleep(0)

@@ -69,6 +69,7 @@ class Connections:
     def __init__(self, limit: int, admission: Admission | None = None) -> None:
         self.admission = admission or Admission(limit)
         self.protocols: set[FilterSMTP] = set()
+        self.turned_away: set[FilterSMTP] = set()  # refused at connect, still closing
         self.closing = False  # set at shutdown: late arrivals get SHUTTING_DOWN
 
     @classmethod
@@ -81,11 +82,11 @@ class Connections:
 
     def admit(self, protocol: FilterSMTP, host: str | None) -> Reply | None:
         """Count ``protocol`` in, or return the refusal to send before closing it."""
-        if self.closing:
-            return replies.SHUTTING_DOWN
-        refusal = self.admission.admit(host, self.active)
+        refusal = replies.SHUTTING_DOWN if self.closing else self.admission.admit(host, self.active)
         if refusal is None:
             self.protocols.add(protocol)
+        else:
+            self.turned_away.add(protocol)
         return refusal
 
     def release(self, protocol: FilterSMTP, host: str | None) -> None:
@@ -96,6 +97,11 @@ class Connections:
     @property
     def active(self) -> int:
         return len(self.protocols)
+
+    @property
+    def all_gone(self) -> bool:
+        """No connection left open, counted or turned away."""
+        return not self.protocols and not self.turned_away
 
     @property
     def working(self) -> int:
@@ -109,7 +115,7 @@ class Connections:
 
     def abort_all(self) -> None:
         """Cut off every connection still open, unsent replies and all."""
-        for protocol in list(self.protocols):
+        for protocol in [*self.protocols, *self.turned_away]:
             if protocol.transport is not None:
                 protocol.transport.abort()
 
@@ -194,6 +200,7 @@ class FilterSMTP(SMTP):
 
     def connection_lost(self, error: Exception | None) -> None:
         if self._refused:
+            self._connections.turned_away.discard(self)
             asyncio.StreamReaderProtocol.connection_lost(self, error)
             return
         if self._counted:

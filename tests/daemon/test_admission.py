@@ -14,6 +14,7 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from dataclasses import replace
 from pathlib import Path
+from typing import Any
 
 import pytest
 from smtp_helpers import LOCAL, FakeJudge, FakeVerdictLog, daemon_settings
@@ -235,3 +236,26 @@ async def test_smtp_reserved_address_connects_when_outsiders_filled_their_share(
             writer.close()
     assert codes == [b"220", b"220", b"220", b"421"]
     assert reserved.startswith(b"220 ")
+
+
+def test_connections_keep_the_turned_away_until_they_are_gone() -> None:
+    # Shutdown waits for refused connections too, and cuts off any still open at the end.
+    class Late:
+        def __init__(self) -> None:
+            self.transport = AbortRecorder()
+
+    class AbortRecorder:
+        aborted = False
+
+        def abort(self) -> None:
+            self.aborted = True
+
+    connections = Connections(4)
+    connections.closing = True
+    late: Any = Late()
+    assert connections.admit(late, "192.0.2.7") == replies.SHUTTING_DOWN
+    assert late in connections.turned_away and not connections.all_gone
+    connections.abort_all()
+    assert late.transport.aborted
+    connections.turned_away.discard(late)  # as its connection_lost does
+    assert connections.all_gone

@@ -199,17 +199,30 @@ async def test_service_shutdown_closes_idle_connections_with_a_421(
 async def test_service_answers_421_to_a_connection_accepted_as_it_stops(
     tmp_path: Path, sink: tuple[SinkHandler, HostPort]
 ) -> None:
-    # The kernel may hand over a connection after the listener closed; it gets its 421 at once
-    # and is closed, rather than a greeting from a server that is going away.
+    # The kernel may hand over a connection as the listener closes; it gets its 421 at once
+    # and is closed, rather than a greeting from a server that is going away, and shutdown
+    # waits until it is gone.  The late connection is handed to the server's own protocol
+    # factory (asyncio.Server's, as its accept would) after shutdown has begun.
     _, next_hop = sink
     service = Service(make_settings(tmp_path, next_hop))
     await service.startup()
     connections = service.connections
     assert connections is not None
-    await service.shutdown(grace=5)
+    factory = service.smtp_server._protocol_factory
+    ours, theirs = socket.socketpair()
+    theirs.settimeout(10)
+    try:
+        connections.close_idle()  # what shutdown does first
+        loop = asyncio.get_running_loop()
+        await loop.connect_accepted_socket(factory, ours)
+        assert not connections.protocols  # refused, not counted in
+        await service.shutdown(grace=5)
+        assert connections.all_gone
+        assert (await asyncio.to_thread(read_until_closed, theirs)).startswith(b"421 4.3.2 ")
+    finally:
+        theirs.close()
     late: Any = object()
     assert connections.admit(late, "192.0.2.7") == replies.SHUTTING_DOWN
-    assert not connections.protocols
 
 
 async def test_service_bad_config_fails_before_binding(
