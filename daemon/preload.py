@@ -52,9 +52,7 @@ class KeepPreloaded:
         self._reading = asyncio.ensure_future(asyncio.to_thread(self._store.preload))
         try:
             done = await asyncio.shield(self._reading)
-        except asyncio.CancelledError:
-            raise
-        except Exception:
+        except Exception:  # a cancellation (stop) passes through: it is not an Exception
             log.exception("preloading the token counts failed; lookups read through meanwhile")
             return
         finally:
