@@ -281,15 +281,20 @@ async def test_faults_database_locked_loses_nothing(
     database = tmp_path / "model.sqlite3"
     holder: list[sqlite3.Connection] = []
 
-    async def lock(sent: int) -> None:
-        if sent == COUNT // 4:
-            conn = sqlite3.connect(database, isolation_level=None)
-            conn.execute("BEGIN EXCLUSIVE")
-            holder.append(conn)
-        elif sent == 3 * COUNT // 4:
-            holder.pop().rollback()
-
     async with daemon(tmp_path, sink.address) as service:
+
+        async def lock(sent: int) -> None:
+            if sent == COUNT // 4:
+                conn = sqlite3.connect(database, isolation_level=None)
+                conn.execute("BEGIN EXCLUSIVE")
+                holder.append(conn)
+            elif sent == 3 * COUNT // 4:
+                # The mail between may pass faster than the log's batch period: make sure it
+                # tries (and fails) to write while the lock is held, or the test shows nothing.
+                if not service.verdict_log.write_failures:
+                    await service.verdict_log.flush()
+                holder.pop().rollback()
+
         await upstream(service.smtp_address.port, messages, ledger, clients=CLIENTS, between=lock)
         failures = service.verdict_log.write_failures
     figures = check_nothing_lost(messages, ledger, sink)
