@@ -40,9 +40,9 @@ class Observing:
         self.refresher = ReportRefresher(
             metrics,
             rates=lambda window: reports.misfiling_rates(engine, window),
-            model=lambda: reports.model_summary(engine),
+            model=lambda: reports.model_summary(engine, tokens=store.vocabulary().size),
         )
-        self.page = StatusPage(engine, policy)
+        self.page = StatusPage(engine, policy, model_tokens=lambda: store.vocabulary().size)
 
         async def store_ready() -> bool:
             return await asyncio.to_thread(reports.ping, engine)

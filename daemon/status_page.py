@@ -72,14 +72,21 @@ class StatusData:
     error: str | None = None
 
 
-def collect(engine: Engine, policy: PolicySettings, now: float, days: int = DAYS) -> StatusData:
-    """Every figure the page shows (blocking: run it in a worker thread)."""
+def collect(
+    engine: Engine,
+    policy: PolicySettings,
+    now: float,
+    days: int = DAYS,
+    model_tokens: Callable[[], int] | None = None,
+) -> StatusData:
+    """Every figure the page shows (blocking: run it in a worker thread).  *model_tokens*
+    gives the model's size from memory; without it the token table is counted."""
     return StatusData(
         generated_at=now,
         policy=policy,
         days=reports.daily_report(engine, days, now),
         histogram=reports.score_histogram(engine, days, now),
-        model=reports.model_summary(engine),
+        model=reports.model_summary(engine, None if model_tokens is None else model_tokens()),
         rates={w: reports.misfiling_rates(engine, s, now) for w, s in RATE_WINDOWS.items()},
     )
 
@@ -100,8 +107,10 @@ class StatusPage:
         days: int = DAYS,
         max_age: float = 10.0,
         clock: Callable[[], float] = time.time,
+        model_tokens: Callable[[], int] | None = None,
     ) -> None:
         self._engine = engine
+        self._model_tokens = model_tokens
         self._policy = policy
         self._days = days
         self._max_age = max_age
@@ -124,7 +133,9 @@ class StatusPage:
         self.reads += 1
         policy = self._policy()
         try:
-            return await asyncio.to_thread(collect, self._engine, policy, now, self._days)
+            return await asyncio.to_thread(
+                collect, self._engine, policy, now, self._days, self._model_tokens
+            )
         except Exception as exc:
             log.exception("status page: reading the store failed")
             return StatusData(now, policy, error=f"{type(exc).__name__}: {exc}")

@@ -187,14 +187,25 @@ class ModelStore:
         self._local.after[-1].append(step)
 
     @contextmanager
-    def _reading(self, *, snapshot: bool = False) -> Iterator[Connection]:
-        """A connection for reads: autocommit, or one consistent snapshot when asked."""
+    def _reading(
+        self, *, snapshot: bool = False, whole_table: bool = False
+    ) -> Iterator[Connection]:
+        """A connection for reads: autocommit, or one consistent snapshot when asked.
+
+        *whole_table*: the read walks every page of the token table.  Through SQLite's memory
+        map those pages then stay resident for as long as the connection lives (as much
+        memory again as the file's size), so the connection is closed afterwards instead of
+        going back to the pool."""
         options: dict[str, Any] = self._autocommit
         if snapshot:
             postgres = self._engine.dialect.name == "postgresql"
             options = {"isolation_level": "REPEATABLE READ"} if postgres else {READ_ONLY: True}
         with store_errors(), self._engine.connect() as conn:
-            yield conn.execution_options(**options)
+            try:
+                yield conn.execution_options(**options)
+            finally:
+                if whole_table and not self._reader.postgres:
+                    conn.invalidate()
 
     # -- freshness -----------------------------------------------------------------------------
 
@@ -402,7 +413,7 @@ class ModelStore:
             return False
         with self._lock:
             epoch = self._epoch
-        with self._reading(snapshot=True) as conn, conn.begin():
+        with self._reading(snapshot=True, whole_table=True) as conn, conn.begin():
             revision, totals = self._read_totals(conn)
             rows = row_count(conn, schema.token)
             if rows > self._cache.max_tokens:
@@ -436,7 +447,7 @@ class ModelStore:
         while True:
             with self._lock:
                 epoch = self._epoch
-            with self._reading(snapshot=True) as conn, conn.begin():
+            with self._reading(snapshot=True, whole_table=True) as conn, conn.begin():
                 revision, totals = self._read_totals(conn)
                 tracker = VocabularyTracker.load(conn)
             with self._lock:
@@ -549,7 +560,7 @@ class ModelStore:
     # -- bookkeeping ---------------------------------------------------------------------------
 
     def stats(self) -> ModelStats:
-        with self._reading() as conn:
+        with self._reading(whole_table=True) as conn:
             totals: dict[int, int] = dict(
                 conn.execute(
                     select(schema.class_total.c.label, schema.class_total.c.messages)

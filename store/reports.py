@@ -250,13 +250,18 @@ def score_histogram(
     return ScoreHistogram(edges, counts)
 
 
-def model_summary(engine: Engine) -> ModelSummary:
-    """Model size, class totals and the time of the newest ledger entry."""
+def model_summary(engine: Engine, tokens: int | None = None) -> ModelSummary:
+    """Model size, class totals and the time of the newest ledger entry.
+
+    *tokens*: the model's size when the caller knows it (``ModelStore.vocabulary().size``,
+    kept in memory across its own training).  None counts the token table, which reads every
+    row: seconds for tens of millions, too much for a gauge refreshed every minute."""
     t, c, ledger = schema.token, schema.class_total, schema.ledger
     with _reading(engine) as conn:
-        tokens = conn.execute(
-            select(func.count()).where((t.c.ham > 0) | (t.c.spam > 0))
-        ).scalar_one()
+        if tokens is None:
+            tokens = conn.execute(
+                select(func.count()).where((t.c.ham > 0) | (t.c.spam > 0))
+            ).scalar_one()
         totals = {int(k): int(v) for k, v in conn.execute(select(c.c.label, c.c.messages))}
         last = conn.execute(select(func.max(ledger.c.trained_at))).scalar_one()
     return ModelSummary(

@@ -116,6 +116,39 @@ async def test_service_startup_binds_port_zero_and_shuts_down_clean(
     assert service.store is None and service.judge is None
 
 
+async def test_service_model_gauges_count_tokens_without_reading_the_token_table(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    """The model-size gauge is refreshed every minute; a full count of the token table each
+    time would read the whole file (seconds, and its pages resident, with tens of millions of
+    rows), so it comes from the store's vocabulary summary after the first refresh."""
+    import numpy as np
+    from sqlalchemy import event
+
+    from mailweir.store import ModelStore
+
+    settings = make_settings(tmp_path, sink[1])
+    seed = ModelStore.open(str(settings.database))
+    seed.train(np.arange(1, 8, dtype=np.int64), 0, digest=b"h" * 16, source="test")
+    seed.train(np.arange(5, 12, dtype=np.int64), 1, digest=b"s" * 16, source="test")
+    seed.close()
+    service = Service(settings)
+    await service.startup()
+    try:
+        assert service.observing is not None and service.store is not None
+        refresher = service.observing.refresher
+        assert await refresher.refresh()
+        statements: list[str] = []
+        event.listen(
+            service.store.engine, "before_cursor_execute", lambda *a: statements.append(a[2])
+        )
+        assert await refresher.refresh()
+        assert statements and not [s for s in statements if "weir_token" in s]
+        assert service.metrics.model_tokens._value.get() == 11
+    finally:
+        await service.shutdown(grace=5)
+
+
 async def test_service_shutdown_lets_transaction_in_flight_finish(
     tmp_path: Path, sink: tuple[SinkHandler, HostPort]
 ) -> None:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Callable
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -165,3 +166,36 @@ def test_release_free_memory_calls_glibc_where_there_is_one() -> None:
     memory.release_free_memory()  # never raises
     if platform.system() == "Linux" and platform.libc_ver()[0] == "glibc":
         assert memory._malloc_trim() is not None
+
+
+def resident_kib_of(path: str) -> int:
+    """Resident KiB of this process's mappings of *path* (Linux /proc/self/smaps)."""
+    total, current = 0, None
+    with open("/proc/self/smaps") as smaps:
+        for line in smaps:
+            fields = line.split()
+            if "-" in fields[0] and len(fields) >= 5 and ":" in fields[3]:
+                current = fields[5] if len(fields) > 5 else None
+            elif fields[0] == "Rss:" and current == path:
+                total += int(fields[1])
+    return total
+
+
+@pytest.mark.parametrize("whole_table_read", ["preload", "vocabulary", "stats"])
+def test_whole_table_reads_leave_no_pages_mapped(tmp_path: Path, whole_table_read: str) -> None:
+    """Reading every token row goes through SQLite's memory map; a pooled connection would
+    keep those pages resident (as much memory as the file) long after.  Such reads use a
+    connection of their own that is closed afterwards."""
+    path = str(tmp_path / "model.sqlite3")
+    writer = ModelStore.open(path)
+    hashes = np.unique(np.random.default_rng(3).integers(-(2**63), 2**63 - 1, 60_000))
+    writer.train(hashes, SPAM, digest=digest_of("a"), source="t")
+    writer.close()
+    store = ModelStore.open(path, staleness_seconds=3600.0)
+    try:
+        getattr(store, whole_table_read)()
+        size_kib = (tmp_path / "model.sqlite3").stat().st_size // 1024
+        assert size_kib > 1000
+        assert resident_kib_of(path) < size_kib // 10
+    finally:
+        store.close()

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from sqlalchemy import Engine
+from sqlalchemy import Engine, event
 
 from mailweir.store import ModelStore, reports
 from mailweir.store.engine import make_engine
@@ -175,6 +175,34 @@ def test_model_summary_after_training(store: ModelStore) -> None:
     assert before <= summary.last_trained_at <= time.time()
     store.untrain(np.array([5], np.int64), digest=b"c" * 16)
     assert reports.model_summary(store.engine).tokens == 4  # token 5 is gone from the model
+
+
+def test_model_summary_size_from_memory_matches_the_table(store: ModelStore) -> None:
+    """The daemon takes the size from the store's vocabulary summary (kept in memory across
+    its own training) instead of counting the table each minute: the two always agree."""
+
+    def both() -> tuple[reports.ModelSummary, reports.ModelSummary]:
+        known = reports.model_summary(store.engine, tokens=store.vocabulary().size)
+        return known, reports.model_summary(store.engine)
+
+    known, counted = both()
+    assert known == counted
+    rng = np.random.default_rng(5)
+    for n in range(30):
+        hashes = np.unique(rng.integers(0, 60, size=8)).astype(np.int64)
+        store.train(hashes, n % 2, digest=bytes([n]) * 16, source="test")
+        if n % 7 == 6:
+            store.untrain(hashes, digest=bytes([n]) * 16)
+        known, counted = both()
+        assert known == counted
+
+
+def test_model_summary_with_known_size_reads_no_token_row(store: ModelStore) -> None:
+    store.train(np.array([1, 2, 3], np.int64), 0, digest=b"a" * 16, source="test")
+    statements: list[str] = []
+    event.listen(store.engine, "before_cursor_execute", lambda *a: statements.append(a[2]))
+    reports.model_summary(store.engine, tokens=3)
+    assert statements and not [s for s in statements if "weir_token" in s]
 
 
 def test_ping_answers_true(engine: Engine) -> None:
