@@ -399,12 +399,37 @@ def crash_worker() -> None:
     os._exit(3)  # a worker dying the hard way (out of memory, a crash in C code)
 
 
+async def test_judge_starts_its_pool_with_the_first_message_that_needs_it() -> None:
+    """Small mail never uses the process pool; making it at start cost a site whose mail is
+    all small a resource-tracker process for nothing."""
+    made: list[concurrent.futures.Executor] = []
+
+    def factory() -> concurrent.futures.Executor:
+        made.append(concurrent.futures.ThreadPoolExecutor(1))
+        return made[-1]
+
+    judge = Judge(
+        FakeStore(), settings(), executor_factory=factory, inline_below=4096, on_loop_below=1024
+    )
+    large = NEW_HAM + b"\r\n" + b"Pepper is doing well after the check.\r\n" * 120
+    assert len(NEW_HAM) < 1024 and len(large) >= 4096
+    for raw in (NEW_HAM, NEW_HAM[:-2] + b" " * 2000 + b"\r\n"):  # on the loop; in a thread
+        assert (await judge.judge(raw)).band == "ham"
+    assert made == [] and judge.executor is None
+    assert (await judge.judge(large)).band == "ham"
+    assert made == [judge.executor]
+    assert (await judge.judge(large)).band == "ham"
+    assert len(made) == 1  # made once, then kept
+    judge.close()
+    assert judge.executor is None
+
+
 @pytest.mark.slow
 async def test_judge_replaces_a_broken_process_pool() -> None:
     judge = Judge(FakeStore(), settings(), executor_factory=lambda: make_executor(1, "process"))
+    assert (await judge.judge(NEW_HAM)).band == "ham"
     first = judge.executor
     assert first is not None
-    assert (await judge.judge(NEW_HAM)).band == "ham"
     with pytest.raises(concurrent.futures.process.BrokenProcessPool):
         await asyncio.get_running_loop().run_in_executor(first, crash_worker)
     assert (await judge.judge(NEW_HAM)).band == "failed"  # the message caught in the break
