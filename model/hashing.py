@@ -13,30 +13,31 @@ from hashlib import blake2b
 
 import numpy as np
 
+from .digest_cache import DigestCache, keys_of
 from .pairs import PAIR_PREFIX, pair_hash_int, pair_hashes, split_pair
 from .types import TokenHashes
 
-_CACHE_LIMIT = 200_000
-# Token -> 8-byte digest.  Constructing a blake2b object costs about a microsecond, several
-# times more than the rest of tokenizing a common word; most words recur from message to
-# message, so a bounded cache makes hashing cheap.  Cleared when full (no eviction order kept);
-# only single dict operations touch it, so threads sharing it cannot break each other.
-_digest_cache: dict[str, bytes] = {}
+# Constructing a blake2b object costs about a microsecond, several times more than the rest
+# of tokenizing a common word; most words recur from message to message, so the hashes of the
+# words met lately are kept (``digest_cache.py``).  The pool's tokenizer processes keep fewer.
+DIGEST_CACHE_ENTRIES = 200_000
+_digest_cache = DigestCache(DIGEST_CACHE_ENTRIES)
 
 
 def limit_digest_cache(entries: int) -> None:
-    """Hold at most about *entries* token digests in this process (emptied when over)."""
-    global _CACHE_LIMIT
-    _CACHE_LIMIT = entries
-    if len(_digest_cache) > entries:
-        _digest_cache.clear()
+    """Hold about *entries* token hashes in this process (the cache starts empty)."""
+    _digest_cache.resize(entries)
+
+
+def digest_cache_capacity() -> int:
+    return _digest_cache.capacity
 
 
 def _digest8(token: str) -> bytes:
     pair = split_pair(token)
     if pair is not None:  # the tokenizer mixes these from word hashes (pairs.osb_pair_hashes)
         distance, earlier, later = pair
-        mixed = pair_hash_int(_cached_hash(earlier), _cached_hash(later), distance)
+        mixed = pair_hash_int(_blake_int(earlier), _blake_int(later), distance)
         return mixed.to_bytes(8, "little", signed=True)
     return _blake8(token)
 
@@ -46,11 +47,8 @@ def _blake8(token: str) -> bytes:
     return blake2b(token.encode("utf-8", "surrogatepass"), digest_size=8).digest()
 
 
-def _cached_hash(word: str) -> int:
-    digest = _digest_cache.get(word)
-    if digest is None:
-        digest = _digest_cache[word] = _digest8(word)
-    return int.from_bytes(digest, "little", signed=True)
+def _blake_int(token: str) -> int:
+    return int.from_bytes(_blake8(token), "little", signed=True)
 
 
 def token_hash(token: str) -> int:
@@ -100,35 +98,30 @@ def token_hashes(tokens: Iterable[str]) -> TokenHashes:
         ``np.int64`` hash of each token, aligned with ``tokens`` (repeats kept, not sorted).
     """
     tokens = list(tokens)
-    digests = list(map(_digest_cache.get, tokens))
-    if None in digests:
-        if len(_digest_cache) > _CACHE_LIMIT:
-            _digest_cache.clear()
+    keys = keys_of(tokens)
+    values, found = _digest_cache.get(keys)
+    if not found.all():
+        missing = np.flatnonzero(~found)
         deferred: list[tuple[int, int, str, str]] = []
-        for index, digest in enumerate(digests):
-            if digest is None:
-                token = tokens[index]
-                # Most misses are plain words: test the prefix before parsing a pair.
-                pair = split_pair(token) if token.startswith(PAIR_PREFIX) else None
-                if pair is None:
-                    digests[index] = _digest_cache[token] = _blake8(token)
-                else:
-                    deferred.append((index, *pair))
+        for index in missing.tolist():
+            token = tokens[index]
+            # Most misses are plain words: test the prefix before parsing a pair.
+            pair = split_pair(token) if token.startswith(PAIR_PREFIX) else None
+            if pair is None:
+                values[index] = _blake_int(token)
+            else:
+                deferred.append((index, *pair))
         if deferred:
-            _mix_pairs(tokens, digests, deferred)
-    joined = b"".join(digests)  # type: ignore[arg-type]  # no None left
-    return np.frombuffer(joined, dtype="<i8").astype(np.int64)
+            _mix_pairs(values, deferred)
+        _digest_cache.put(keys[missing], values[missing])
+    return values
 
 
-def _mix_pairs(
-    tokens: list[str], digests: list[bytes | None], deferred: list[tuple[int, int, str, str]]
-) -> None:
-    """Fill in the digests of pair texts missing from the cache, mixed in one numpy pass."""
+def _mix_pairs(values: TokenHashes, deferred: list[tuple[int, int, str, str]]) -> None:
+    """Fill in the hashes of pair texts the cache lacks, mixed in one numpy pass."""
     where, distance, earlier, later = zip(*deferred, strict=True)
     mixed = pair_hashes(token_hashes(earlier), token_hashes(later), np.array(distance))
-    packed = mixed.astype("<i8").tobytes()
-    for n, index in enumerate(where):
-        digests[index] = _digest_cache[tokens[index]] = packed[8 * n : 8 * n + 8]
+    values[list(where)] = mixed
 
 
 def sorted_unique(values: TokenHashes) -> TokenHashes:

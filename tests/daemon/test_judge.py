@@ -381,18 +381,23 @@ async def test_judge_runs_in_a_process_pool() -> None:
     assert any(text for text, _ in judgement.evidence)
 
 
-def digest_cache_limit() -> int:
+def digest_cache_capacity() -> int:
     from mailweir.model import hashing
 
-    return hashing._CACHE_LIMIT
+    return hashing.digest_cache_capacity()
 
 
 @pytest.mark.slow
 def test_process_pool_workers_keep_a_small_digest_cache() -> None:
     # The workers see only large messages; their digest caches were most of their memory.
+    from mailweir.model.digest_cache import DigestCache
+    from mailweir.model.hashing import DIGEST_CACHE_ENTRIES
+
+    small = DigestCache(judge_module.WORKER_DIGEST_CACHE).capacity
     with judge_module.make_executor(1, "process") as pool:
-        assert pool.submit(digest_cache_limit).result(60) == judge_module.WORKER_DIGEST_CACHE
-    assert digest_cache_limit() == 200_000  # the daemon's own process keeps its size
+        assert pool.submit(digest_cache_capacity).result(60) == small
+    # the daemon's own process keeps its size
+    assert digest_cache_capacity() == DigestCache(DIGEST_CACHE_ENTRIES).capacity > small
 
 
 def crash_worker() -> None:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import subprocess
 import sys
+import threading
 
 import numpy as np
 import pytest
@@ -18,6 +19,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from mailweir.model import hashing
+from mailweir.model.digest_cache import DigestCache
 from mailweir.model.hashing import hash_tokens, message_digest, token_hash, token_hashes
 
 
@@ -109,31 +111,51 @@ MIXED = [
 
 
 def test_token_hashes_one_for_one_through_the_cache() -> None:
-    # Oracle: token_hash of each token, which bypasses the cache for plain words.
+    # Oracle: token_hash of each token, which bypasses the cache.
     hashing._digest_cache.clear()
     cold = token_hashes(MIXED).tolist()
     warm = token_hashes(MIXED).tolist()
-    hashing._digest_cache.pop("booster")  # one miss among hits
-    partly = token_hashes(MIXED).tolist()
+    hashing._digest_cache.clear()
+    token_hashes(MIXED[:3])
+    partly = token_hashes(MIXED).tolist()  # misses among hits
     assert cold == warm == partly == [token_hash(token) for token in MIXED]
 
 
-def test_token_hashes_empties_a_full_cache_first(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(hashing, "_CACHE_LIMIT", 3)
-    hashing._digest_cache.clear()
-    token_hashes(["kennel", "booster", "collar", "leash"])
-    assert len(hashing._digest_cache) == 4  # over the limit only after this call
-    assert token_hashes(["harness"]).tolist() == [token_hash("harness")]
-    assert list(hashing._digest_cache) == ["harness"]
+def test_token_hashes_right_when_the_cache_overflows(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(hashing, "_digest_cache", DigestCache(16))  # 128 slots
+    words = [f"word{i}" for i in range(2000)]
+    for start in range(0, 2000, 250):
+        chunk = words[start : start + 250]
+        assert token_hashes(chunk).tolist() == [token_hash(w) for w in chunk]
+    assert len(hashing._digest_cache) <= hashing._digest_cache.capacity == 128
+    assert token_hashes(words).tolist() == [token_hash(w) for w in words]
 
 
-def test_limit_digest_cache_empties_a_cache_over_the_new_limit(
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
-    monkeypatch.setattr(hashing, "_CACHE_LIMIT", hashing._CACHE_LIMIT)  # restored afterwards
-    hashing._digest_cache.clear()
+def test_limit_digest_cache_resizes_and_empties(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(hashing, "_digest_cache", DigestCache(200_000))
     token_hashes(["kennel", "booster", "collar"])
-    hashing.limit_digest_cache(3)
-    assert len(hashing._digest_cache) == 3  # within the limit: kept
-    hashing.limit_digest_cache(2)
-    assert hashing._digest_cache == {} and hashing._CACHE_LIMIT == 2
+    assert len(hashing._digest_cache) == 3
+    hashing.limit_digest_cache(20_000)
+    assert len(hashing._digest_cache) == 0
+    assert 20_000 <= hashing.digest_cache_capacity() < 2 * 20_000
+
+
+def test_token_hashes_from_threads_sharing_a_small_cache(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Both arrays change under one lock: a key read beside another entry's hash would give
+    a word the wrong hash.  Two threads, a cache far too small, every answer checked."""
+    monkeypatch.setattr(hashing, "_digest_cache", DigestCache(64))
+    wrong: list[str] = []
+
+    def work(prefix: str) -> None:
+        words = [f"{prefix}{i % 300}" for i in range(300)]
+        truth = [token_hash(w) for w in words]
+        for _ in range(60):
+            if token_hashes(words).tolist() != truth:
+                wrong.append(prefix)
+
+    threads = [threading.Thread(target=work, args=(p,)) for p in ("hay", "oats")]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert wrong == []

@@ -1,0 +1,91 @@
+"""Token hashes of the words met lately, so most words of a message cost no BLAKE2b.
+
+A set-associative table in two numpy arrays of shape (sets, 8): row ``k & (sets - 1)`` holds
+up to eight keys and, beside them, their token hashes.  The key of a token is Python's own
+``hash()`` of its text: a str computes it once and keeps it, and the tokenizer has already
+asked for it (every token passes through a dict), so keying costs nothing per word.  That
+hash is salted per process, which suits a cache that never leaves one.  Two different texts
+with the same 64-bit key would share a token hash; among the 10**5-10**6 keys held that has a
+chance near 10**-8 per process lifetime (the birthday bound), far below the chance that two
+of the model's own tokens share a BLAKE2b hash (``hashing.py``).
+
+A slot costs 16 bytes, about 20-40 per entry with the slack of a set-associative table,
+against about 140 for a dict of token text to digest (measured: 80 bytes for the entry and
+its 8-byte digest, 61 for the text it keeps alive).  A lookup is a fixed handful of
+whole-array steps; a full set replaces one of its entries (the way picked by other bits of
+the key), so nothing is ever emptied at once.  Key 0 marks an empty slot; a text whose hash
+is 0 is keyed as 1.
+
+One lock guards both arrays: threads tokenize too (mid-sized messages, feedback), and a key
+read with another entry's hash would give a token the wrong hash.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import numpy.typing as npt
+
+WAYS = 8  # ``get`` reads a set's match flags as one 8-byte word
+_MIN_SETS = 16
+
+_Keys = npt.NDArray[np.int64]
+
+
+class DigestCache:
+    """Python ``hash()`` of a token's text -> the token's 64-bit hash, about ``entries`` held."""
+
+    def __init__(self, entries: int) -> None:
+        self._lock = threading.Lock()
+        self.resize(entries)
+
+    @property
+    def capacity(self) -> int:
+        return int(self._keys.size)
+
+    def __len__(self) -> int:
+        return int(np.count_nonzero(self._keys))
+
+    def resize(self, entries: int) -> None:
+        """Empty the cache and give it room for at least *entries* (a power of two of sets)."""
+        sets = _MIN_SETS
+        while sets * WAYS < entries:
+            sets *= 2
+        with self._lock:
+            self._keys = np.zeros((sets, WAYS), dtype=np.int64)
+            self._values = np.zeros((sets, WAYS), dtype=np.int64)
+            self._mask = np.int64(sets - 1)
+
+    def clear(self) -> None:
+        with self._lock:
+            self._keys[:] = 0
+
+    def get(self, keys: _Keys) -> tuple[_Keys, npt.NDArray[np.bool_]]:
+        """Token hashes for *keys* (0 where not held) and a mask of which were held."""
+        rows = keys & self._mask
+        with self._lock:
+            match = self._keys[rows] == keys[:, None]
+            values = self._values.reshape(-1)[rows * WAYS + match.argmax(axis=1)]
+        found = match.view(np.uint64).reshape(-1) != 0  # a row's 8 flags read as one word
+        values *= found
+        return values, found
+
+    def put(self, keys: _Keys, values: _Keys) -> None:
+        """Hold these entries: in the way already holding the key, else an empty way of its
+        set, else one picked by bits 32-34 of the key.  Of repeats in one call, one is kept."""
+        rows = keys & self._mask
+        with self._lock:
+            held = self._keys[rows]
+            same, empty = held == keys[:, None], held == 0
+            way = np.where(empty.any(axis=1), empty.argmax(axis=1), (keys >> 32) & (WAYS - 1))
+            way = np.where(same.any(axis=1), same.argmax(axis=1), way)
+            self._keys[rows, way] = keys
+            self._values[rows, way] = values
+
+
+def keys_of(tokens: list[str]) -> _Keys:
+    """The cache keys of *tokens* (their Python hashes, 0 moved to 1)."""
+    keys = np.fromiter(map(hash, tokens), dtype=np.int64, count=len(tokens))
+    keys[keys == 0] = 1
+    return keys
