@@ -275,7 +275,7 @@ def _part_tokens(part: Part, options: TokenizerOptions, found: dict[str, None]) 
         found["obf:invisible"] = None
     words = split_words(cleaned, sequence=options.bigrams)
     found.update(dict.fromkeys(_host_tokens(text_hosts(words.rest))))
-    found.update(dict.fromkeys(words.tokens))
+    found.update(words.tokens)
     return words.sequence
 
 

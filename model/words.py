@@ -30,6 +30,7 @@ _MONEY: Final = re.compile(
     r"([$€£¥]|usd\b|eur\b|gbp\b)"
 )
 _SIGNS: Final = "$€£¥"
+_CURRENCY_WORDS: Final = frozenset(word for word in _CURRENCY if word.isalpha())
 _NUMBER_THEN_WORD: Final = re.compile(r"\d\s?(?:usd|eur|gbp)")
 _MONEY_START: Final = re.compile(r"[$€£¥\d]\d*")  # a sign, or a run of digits from its first
 # Cheap tests that decide whether the slower obfuscation checks run at all.
@@ -106,8 +107,9 @@ class TextTokens:
 
     Attributes
     ----------
-    tokens : list of str
-        Unique tokens in order of first appearance: plain words, long-word buckets, numbers,
+    tokens : dict of str to None
+        Unique tokens in order of first appearance (a dict, so a caller collecting tokens in
+        one merges them in a single C-level step): plain words, long-word buckets, numbers,
         money, obfuscated words (both the decoded word and the raw form), CJK bigrams.
     sequence : list of str
         Plain words in text order, repeats kept (only when asked for; for bigrams).
@@ -116,7 +118,7 @@ class TextTokens:
         by spaces: everything a URL, number or obfuscation can be in.
     """
 
-    tokens: list[str]
+    tokens: dict[str, None]
     sequence: list[str]
     rest: str
 
@@ -150,7 +152,7 @@ def split_words(text: str, prefix: str = "", sequence: bool = False) -> TextToke
         out = dict.fromkeys([w if len(w) <= MAX_WORD else long_token(len(w)) for w in out])
     if _DIGIT.search(rest):
         out.update(dict.fromkeys(number_tokens(rest)))
-    if any(symbol in text for symbol in _CURRENCY):
+    if _may_hold_money(rest, chunks):
         out.update(dict.fromkeys(money_tokens(text)))
     if _LEET_HINT.search(rest):
         _add_obfuscated(others, out)
@@ -163,9 +165,18 @@ def split_words(text: str, prefix: str = "", sequence: bool = False) -> TextToke
             run = run[: _CJK_BIGRAMS_PER_RUN + 1]
             out.update(dict.fromkeys(run[i : i + 2] for i in range(len(run) - 1)))
     out.pop("", None)
-    found = [prefix + token for token in out] if prefix else list(out)
+    found = {prefix + token: None for token in out} if prefix else out
     order = [w for w in _WORD.findall(text) if MIN_WORD <= len(w) <= MAX_WORD] if sequence else []
     return TextTokens(found, order, rest)
+
+
+def _may_hold_money(rest: str, chunks: dict[str, None]) -> bool:
+    """Whether ``money_tokens(text)`` can find anything, looking only at the non-word chunks
+    and the set of chunks (both far shorter than the text).  An amount holds a digit, so its
+    chunk is never all letters, and a sign is never a letter: both lie in ``rest``.  A
+    currency word counts after a digit and before a word boundary: inside a chunk with that
+    digit or the boundary's character (in ``rest``), or as a chunk of its own."""
+    return any(symbol in rest for symbol in _CURRENCY) or not _CURRENCY_WORDS.isdisjoint(chunks)
 
 
 def _add_obfuscated(chunks: list[str], out: dict[str, None]) -> None:

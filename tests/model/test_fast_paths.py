@@ -4,11 +4,15 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
+from mailweir.model import words
 from mailweir.model.fisher import RobinsonFisher
 from mailweir.model.hashing import hash_tokens, token_hash, token_hashes
 from mailweir.model.nb_base import NaiveBayes, posterior_spam
 from mailweir.model.types import Vocabulary
+from mailweir.model.words import money_tokens
 
 
 @pytest.mark.parametrize(
@@ -34,3 +38,25 @@ def test_token_hashes_aligned_with_token_hash() -> None:
     words = ["booster", "kennel", "booster", "ärzte", ""]
     assert token_hashes(words).tolist() == [token_hash(w) for w in words]
     np.testing.assert_array_equal(hash_tokens(words), np.unique(token_hashes(words)))
+
+
+# Text as split_words meets it (case-folded), rich in what money and its gate look at.
+MONEY_TEXT = st.lists(
+    st.sampled_from(
+        [
+            *["$", "€", "£", "¥", "usd", "eur", "gbp", "eureka", "amateur", "5", "250", "1.200,00"],
+            *[" ", "\u00a0", "\t", ".", ",", "-", "kennel", "fee", "a", "99usd", "_", "x"],
+        ]
+    ),
+    max_size=14,
+).map("".join)
+
+
+@settings(max_examples=400)
+@given(MONEY_TEXT)
+def test_money_gate_never_hides_an_amount(text: str) -> None:
+    # The gate looks only at the non-word chunks and the chunk set; money_tokens at the text.
+    chunks = dict.fromkeys(text.split())
+    rest = " ".join(sorted(chunks.keys() - set(filter(str.isalpha, chunks))))
+    if money_tokens(text):
+        assert words._may_hold_money(rest, chunks)
