@@ -22,11 +22,16 @@ from .types import TokenHashes
 # words met lately are kept (``digest_cache.py``).  The pool's tokenizer processes keep fewer.
 DIGEST_CACHE_ENTRIES = 200_000
 _digest_cache = DigestCache(DIGEST_CACHE_ENTRIES)
+# New hashes wait in a small dict and go into the table a few hundred at a time: a message
+# brings a handful, and a whole-array put for them cost more than the rest of their lookup.
+_STAGED_LIMIT = 512
+_staged: dict[int, int] = {}  # cache key -> token hash
 
 
 def limit_digest_cache(entries: int) -> None:
     """Hold about *entries* token hashes in this process (the cache starts empty)."""
     _digest_cache.resize(entries)
+    _staged.clear()
 
 
 def digest_cache_capacity() -> int:
@@ -100,28 +105,43 @@ def token_hashes(tokens: Iterable[str]) -> TokenHashes:
     tokens = list(tokens)
     keys = keys_of(tokens)
     values, found = _digest_cache.get(keys)
-    if not found.all():
-        missing = np.flatnonzero(~found)
-        deferred: list[tuple[int, int, str, str]] = []
-        for index in missing.tolist():
+    if found.all():
+        return values
+    missing = np.flatnonzero(~found).tolist()
+    deferred: list[tuple[int, int, str, str]] = []
+    for index, key in zip(missing, keys[missing].tolist(), strict=True):
+        value = _staged.get(key)
+        if value is None:
             token = tokens[index]
             # Most misses are plain words: test the prefix before parsing a pair.
             pair = split_pair(token) if token.startswith(PAIR_PREFIX) else None
-            if pair is None:
-                values[index] = _blake_int(token)
-            else:
+            if pair is not None:
                 deferred.append((index, *pair))
-        if deferred:
-            _mix_pairs(values, deferred)
-        _digest_cache.put(keys[missing], values[missing])
+                continue
+            value = _staged[key] = _blake_int(token)
+        values[index] = value
+    if deferred:
+        _mix_pairs(values, keys, deferred)
+    if len(_staged) >= _STAGED_LIMIT:
+        _flush_staged()
     return values
 
 
-def _mix_pairs(values: TokenHashes, deferred: list[tuple[int, int, str, str]]) -> None:
+def _mix_pairs(
+    values: TokenHashes, keys: TokenHashes, deferred: list[tuple[int, int, str, str]]
+) -> None:
     """Fill in the hashes of pair texts the cache lacks, mixed in one numpy pass."""
     where, distance, earlier, later = zip(*deferred, strict=True)
     mixed = pair_hashes(token_hashes(earlier), token_hashes(later), np.array(distance))
     values[list(where)] = mixed
+    _staged.update(zip(keys[list(where)].tolist(), mixed.tolist(), strict=True))
+
+
+def _flush_staged() -> None:
+    """Move the staged hashes into the table in one whole-array step."""
+    batch = _staged.copy()  # another thread's entry staged meanwhile may be lost: a miss later
+    _staged.clear()
+    _digest_cache.put(np.fromiter(batch, np.int64, len(batch)), np.array(list(batch.values())))
 
 
 def sorted_unique(values: TokenHashes) -> TokenHashes:

@@ -113,16 +113,21 @@ MIXED = [
 def test_token_hashes_one_for_one_through_the_cache() -> None:
     # Oracle: token_hash of each token, which bypasses the cache.
     hashing._digest_cache.clear()
+    hashing._staged.clear()
     cold = token_hashes(MIXED).tolist()
     warm = token_hashes(MIXED).tolist()
     hashing._digest_cache.clear()
+    hashing._staged.clear()
     token_hashes(MIXED[:3])
+    hashing._flush_staged()
     partly = token_hashes(MIXED).tolist()  # misses among hits
     assert cold == warm == partly == [token_hash(token) for token in MIXED]
 
 
 def test_token_hashes_right_when_the_cache_overflows(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(hashing, "_digest_cache", DigestCache(16))  # 128 slots
+    monkeypatch.setattr(hashing, "_staged", {})
+    monkeypatch.setattr(hashing, "_STAGED_LIMIT", 100)
     words = [f"word{i}" for i in range(2000)]
     for start in range(0, 2000, 250):
         chunk = words[start : start + 250]
@@ -133,8 +138,11 @@ def test_token_hashes_right_when_the_cache_overflows(monkeypatch: pytest.MonkeyP
 
 def test_limit_digest_cache_resizes_and_empties(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(hashing, "_digest_cache", DigestCache(200_000))
+    monkeypatch.setattr(hashing, "_staged", {})
     token_hashes(["kennel", "booster", "collar"])
-    assert len(hashing._digest_cache) == 3
+    assert len(hashing._staged) == 3  # new hashes wait to go into the table together
+    hashing._flush_staged()
+    assert len(hashing._digest_cache) == 3 and not hashing._staged
     hashing.limit_digest_cache(20_000)
     assert len(hashing._digest_cache) == 0
     assert 20_000 <= hashing.digest_cache_capacity() < 2 * 20_000
@@ -144,6 +152,8 @@ def test_token_hashes_from_threads_sharing_a_small_cache(monkeypatch: pytest.Mon
     """Both arrays change under one lock: a key read beside another entry's hash would give
     a word the wrong hash.  Two threads, a cache far too small, every answer checked."""
     monkeypatch.setattr(hashing, "_digest_cache", DigestCache(64))
+    monkeypatch.setattr(hashing, "_staged", {})
+    monkeypatch.setattr(hashing, "_STAGED_LIMIT", 50)
     wrong: list[str] = []
 
     def work(prefix: str) -> None:
