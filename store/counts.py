@@ -280,6 +280,8 @@ class ModelStore:
         with self._lock:
             counts, found = self._cache.get(hashes)
             epoch, writers, complete = self._epoch, self._writers, self._complete
+        if complete and self._lookup_conns:
+            self._close_read_connections()
         if complete or found.all():  # complete: what memory lacks has no counts
             return counts
         with store_errors():
@@ -344,6 +346,8 @@ class ModelStore:
             epoch, writers, complete = self._epoch, self._writers, self._complete
         finally:
             self._lock.release()
+        if complete and self._lookup_conns:
+            self._close_read_connections()
         if complete or found.all():  # complete: what memory lacks has no counts
             return totals, counts
         if not local_read or self._reader.postgres or len(found) - found.sum() > LOCAL_READ_MAX:
@@ -375,6 +379,19 @@ class ModelStore:
         if conn is not None:
             with self._lock:
                 self._lookup_conns.remove(conn)
+            conn.close()
+
+    def _close_read_connections(self) -> None:
+        """Close the calling thread's read connections: with memory complete it needs them no
+        more, and each keeps every page of the file it has read mapped (resident) while open.
+        Only the owner closes them, never a connection another thread may be using."""
+        self._drop_nowait_connection()
+        conn = getattr(self._local, "lookup_conn", None)
+        if conn is not None:
+            self._local.lookup_conn = None
+            with self._lock:
+                self._lookup_conns.remove(conn)
+            conn.invalidate()  # closed for real, not handed back to the pool with its pages
             conn.close()
 
     def _fetch(self, unique: TokenHashes) -> TokenCounts:
@@ -422,15 +439,16 @@ class ModelStore:
         cache = CountCache(self._cache.max_tokens)
         cache.put(hashes, counts)
         del hashes, counts
-        release_free_memory()
         with self._lock:
-            if epoch != self._epoch or self._writers:
-                return False
-            if revision != self._revision:
-                self._reset(revision, totals)
-            self._cache, self._complete = cache, True
-            self._epoch += 1
-        return True
+            installed = epoch == self._epoch and not self._writers
+            if installed:
+                if revision != self._revision:
+                    self._reset(revision, totals)
+                cache, self._cache, self._complete = self._cache, cache, True
+                self._epoch += 1
+        del cache  # the one replaced (or the one not installed)
+        release_free_memory()  # after both are gone: what was read, and the cache replaced
+        return installed
 
     def class_count(self) -> ClassCounts:
         """Trained ham and spam messages, shape (2,)."""

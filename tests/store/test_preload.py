@@ -199,3 +199,27 @@ def test_whole_table_reads_leave_no_pages_mapped(tmp_path: Path, whole_table_rea
         assert resident_kib_of(path) < size_kib // 10
     finally:
         store.close()
+
+
+def test_read_connections_close_once_memory_is_complete(tmp_path: Path) -> None:
+    """Before the preload finishes, mail is looked up through the file (each thread keeps a
+    connection, and SQLite keeps every page it read mapped).  Once memory is complete the
+    thread's next lookup closes them, so those pages stop counting against the daemon."""
+    path = str(tmp_path / "model.sqlite3")
+    hashes = np.unique(np.random.default_rng(4).integers(-(2**63), 2**63 - 1, 60_000))
+    writer = ModelStore.open(path)
+    writer.train(hashes, SPAM, digest=digest_of("a"), source="t")
+    writer.close()
+    store = ModelStore.open(path, staleness_seconds=3600.0)
+    try:
+        for chunk in np.array_split(hashes, 40):  # the whole file read through, piece by piece
+            store.lookup(chunk)
+        assert store.cached_counts(hashes_of(7, 8), local_read=True) is not None  # the loop's
+        size_kib = (tmp_path / "model.sqlite3").stat().st_size // 1024
+        assert resident_kib_of(path) > size_kib // 2
+        assert store.preload()
+        assert store.cached_counts(hashes_of(7, 8), local_read=True) is not None
+        assert store.lookup(hashes[:5]).tolist() == [[0, 1]] * 5
+        assert resident_kib_of(path) < size_kib // 10
+    finally:
+        store.close()
