@@ -9,6 +9,7 @@ writes are noticed by re-reading the revision once ``staleness_seconds`` have pa
 
 from __future__ import annotations
 
+import collections
 import functools
 import sqlite3
 import threading
@@ -71,6 +72,12 @@ def day_number() -> int:
     return int(time.time() // 86400)
 
 
+def _close_for_good(conn: Connection) -> None:
+    """Close a connection and its database handle, rather than hand it back to the pool."""
+    conn.invalidate()
+    conn.close()
+
+
 class ModelStore:
     """The naive Bayes model's counts and the logs around them, on SQLite or PostgreSQL."""
 
@@ -87,7 +94,11 @@ class ModelStore:
         self._checked = float("-inf")
         self._epoch = 0  # advances on every in-memory change; guards cache fills
         self._writers = 0  # transactions in flight in this process that may change counts
-        self._lookup_conns: list[Connection] = []
+        # Event-loop reads keep a connection per thread that never waits for a lock; lookups
+        # share idle connections, each taken for one query (``_fetch``).
+        self._nowait_conns: list[Connection] = []
+        self._idle_reads: collections.deque[tuple[int, Connection]] = collections.deque()
+        self._read_generation = 0  # advanced when idle lookup connections are retired
         self._complete = False  # memory holds every token's counts (``preload``)
         postgres = engine.dialect.name == "postgresql"
         self._autocommit: dict[str, Any] = (
@@ -117,9 +128,10 @@ class ModelStore:
 
     def close(self) -> None:
         with self._lock:
-            conns, self._lookup_conns = self._lookup_conns, []
+            conns, self._nowait_conns = self._nowait_conns, []
         for conn in conns:
             conn.close()
+        self._retire_reads()
         self._engine.dispose()
 
     @property
@@ -280,8 +292,6 @@ class ModelStore:
         with self._lock:
             counts, found = self._cache.get(hashes)
             epoch, writers, complete = self._epoch, self._writers, self._complete
-        if complete and self._lookup_conns:
-            self._close_read_connections()
         if complete or found.all():  # complete: what memory lacks has no counts
             return counts
         with store_errors():
@@ -346,8 +356,8 @@ class ModelStore:
             epoch, writers, complete = self._epoch, self._writers, self._complete
         finally:
             self._lock.release()
-        if complete and self._lookup_conns:
-            self._close_read_connections()
+        if complete and self._nowait_conns:
+            self._drop_nowait_connection()  # not needed while memory is complete (see preload)
         if complete or found.all():  # complete: what memory lacks has no counts
             return totals, counts
         if not local_read or self._reader.postgres or len(found) - found.sum() > LOCAL_READ_MAX:
@@ -369,7 +379,7 @@ class ModelStore:
             conn.detach()  # its busy timeout of 0 must never reach another user of the pool
             conn.exec_driver_sql("PRAGMA busy_timeout = 0")
             with self._lock:
-                self._lookup_conns.append(conn)
+                self._nowait_conns.append(conn)
             self._local.nowait_conn = conn
         return conn
 
@@ -378,40 +388,40 @@ class ModelStore:
         self._local.nowait_conn = None
         if conn is not None:
             with self._lock:
-                self._lookup_conns.remove(conn)
-            conn.close()
-
-    def _close_read_connections(self) -> None:
-        """Close the calling thread's read connections: with memory complete it needs them no
-        more, and each keeps every page of the file it has read mapped (resident) while open.
-        Only the owner closes them, never a connection another thread may be using."""
-        self._drop_nowait_connection()
-        conn = getattr(self._local, "lookup_conn", None)
-        if conn is not None:
-            self._local.lookup_conn = None
-            with self._lock:
-                self._lookup_conns.remove(conn)
-            conn.invalidate()  # closed for real, not handed back to the pool with its pages
+                self._nowait_conns.remove(conn)
             conn.close()
 
     def _fetch(self, unique: TokenHashes) -> TokenCounts:
-        # Each thread keeps one autocommit connection for lookups: checking a connection out
-        # of the pool and back costs more than the query itself.  A failed connection is
-        # dropped, and the next lookup opens a new one.
-        conn = getattr(self._local, "lookup_conn", None)
-        if conn is None:
-            conn = self._engine.connect().execution_options(**self._autocommit)
-            with self._lock:
-                self._lookup_conns.append(conn)
-            self._local.lookup_conn = conn
+        # Lookups share idle autocommit connections, each taken for one query: cheaper than
+        # the pool's checkout and return (which cost more than the query), and one idle when
+        # memory becomes complete can be closed at once.  A failed one is closed, not reused.
         try:
-            return self._reader.fetch(conn, unique)
+            generation, conn = self._idle_reads.pop()
+        except IndexError:
+            generation = self._read_generation
+            conn = self._engine.connect().execution_options(**self._autocommit)
+        try:
+            counts = self._reader.fetch(conn, unique)
         except BaseException:
-            self._local.lookup_conn = None
-            with self._lock:
-                self._lookup_conns.remove(conn)
-            conn.close()
+            _close_for_good(conn)
             raise
+        if generation == self._read_generation:
+            self._idle_reads.append((generation, conn))
+        else:
+            _close_for_good(conn)  # retired while it was in use
+        return counts
+
+    def _retire_reads(self) -> None:
+        """Close the idle lookup connections, and those in use as they come back: each keeps
+        every page of the file it has read mapped (resident) while it is open."""
+        with self._lock:
+            self._read_generation += 1
+        while True:
+            try:
+                _, conn = self._idle_reads.pop()
+            except IndexError:
+                return
+            _close_for_good(conn)
 
     @property
     def complete(self) -> bool:
@@ -447,6 +457,8 @@ class ModelStore:
                 cache, self._cache, self._complete = self._cache, cache, True
                 self._epoch += 1
         del cache  # the one replaced (or the one not installed)
+        if installed:
+            self._retire_reads()  # lookups now read nothing; the event loop's goes on its next
         release_free_memory()  # after both are gone: what was read, and the cache replaced
         return installed
 

@@ -223,3 +223,26 @@ def test_read_connections_close_once_memory_is_complete(tmp_path: Path) -> None:
         assert resident_kib_of(path) < size_kib // 10
     finally:
         store.close()
+
+
+def test_a_lookup_connection_retired_while_in_use_closes_when_it_comes_back(
+    open_store: Callable[..., ModelStore], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    store = open_store()
+    store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    reader = store._reader
+    real_fetch = reader.fetch
+    used: list[object] = []
+
+    def fetch_then_retire(conn: object, unique: np.ndarray) -> np.ndarray:
+        used.append(conn)
+        counts = real_fetch(conn, unique)  # type: ignore[arg-type]
+        store._retire_reads()  # a preload finishing meanwhile, in another thread
+        return counts
+
+    monkeypatch.setattr(reader, "fetch", fetch_then_retire)
+    assert store.lookup(hashes_of(1, 2, 3)).tolist() == [[0, 1], [0, 1], [0, 0]]
+    assert not store._idle_reads and used[0].closed  # type: ignore[attr-defined]
+    monkeypatch.setattr(reader, "fetch", real_fetch)
+    store.lookup(hashes_of(4))
+    assert len(store._idle_reads) == 1  # the next one is kept for the lookups after it
