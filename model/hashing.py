@@ -2,6 +2,7 @@
 
 Hashes come from BLAKE2b, never Python's ``hash()``: that one is salted per process, and the
 counts stored in the database must mean the same token in every process and on every host.
+(``hash()`` only keys this process's cache of BLAKE2b results, ``digest_cache.py``.)
 Orthogonal sparse bigrams (``osb:`` tokens) are hashed from their words' hashes instead
 (``pairs.py``), far cheaper for the many pairs of a message.
 """
