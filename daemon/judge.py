@@ -140,7 +140,7 @@ def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, l
     """Return the message's unique sorted hashes and one token text per hash (same order)."""
     # Each word hashed once (through the digest cache); bigram hashes mixed from word hashes.
     words, aligned = tokens_and_hashes(raw, options)
-    order = np.argsort(aligned, kind="stable")
+    order = aligned.argsort(kind="stable")
     ordered = aligned[order]
     first = np.ones(len(ordered), dtype=np.bool_)  # the first word of each hash keeps it
     np.not_equal(ordered[1:], ordered[:-1], out=first[1:])

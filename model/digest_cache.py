@@ -13,8 +13,8 @@ A slot costs 16 bytes, about 20-40 per entry with the slack of a set-associative
 against about 140 for a dict of token text to digest (measured: 80 bytes for the entry and
 its 8-byte digest, 61 for the text it keeps alive).  A lookup is a fixed handful of
 whole-array steps; a full set replaces one of its entries (the way picked by other bits of
-the key), so nothing is ever emptied at once.  Key 0 marks an empty slot; a text whose hash
-is 0 is keyed as 1.
+the key), so nothing is ever emptied at once.  Key -1 marks an empty slot: ``hash()`` never
+gives -1 (CPython keeps it for errors), so the keys need no remapping.
 
 One lock guards both arrays: threads tokenize too (mid-sized messages, feedback), and a key
 read with another entry's hash would give a token the wrong hash.
@@ -28,6 +28,7 @@ import numpy as np
 import numpy.typing as npt
 
 WAYS = 8  # ``get`` reads a set's match flags as one 8-byte word
+_EMPTY = -1  # never a str's hash()
 _MIN_SETS = 16
 
 _Keys = npt.NDArray[np.int64]
@@ -45,7 +46,7 @@ class DigestCache:
         return int(self._keys.size)
 
     def __len__(self) -> int:
-        return int(np.count_nonzero(self._keys))
+        return int(np.count_nonzero(self._keys != _EMPTY))
 
     def resize(self, entries: int) -> None:
         """Empty the cache and give it room for at least *entries* (a power of two of sets)."""
@@ -53,13 +54,13 @@ class DigestCache:
         while sets * WAYS < entries:
             sets *= 2
         with self._lock:
-            self._keys = np.zeros((sets, WAYS), dtype=np.int64)
+            self._keys = np.full((sets, WAYS), _EMPTY, dtype=np.int64)
             self._values = np.zeros((sets, WAYS), dtype=np.int64)
             self._mask = np.int64(sets - 1)
 
     def clear(self) -> None:
         with self._lock:
-            self._keys[:] = 0
+            self._keys[:] = _EMPTY
 
     def get(self, keys: _Keys) -> tuple[_Keys, npt.NDArray[np.bool_]]:
         """Token hashes for *keys* (0 where not held) and a mask of which were held."""
@@ -77,7 +78,7 @@ class DigestCache:
         rows = keys & self._mask
         with self._lock:
             held = self._keys[rows]
-            same, empty = held == keys[:, None], held == 0
+            same, empty = held == keys[:, None], held == _EMPTY
             way = np.where(empty.any(axis=1), empty.argmax(axis=1), (keys >> 32) & (WAYS - 1))
             way = np.where(same.any(axis=1), same.argmax(axis=1), way)
             self._keys[rows, way] = keys
@@ -85,7 +86,5 @@ class DigestCache:
 
 
 def keys_of(tokens: list[str]) -> _Keys:
-    """The cache keys of *tokens* (their Python hashes, 0 moved to 1)."""
-    keys = np.fromiter(map(hash, tokens), dtype=np.int64, count=len(tokens))
-    keys[keys == 0] = 1
-    return keys
+    """The cache keys of *tokens*: their Python hashes."""
+    return np.fromiter(map(hash, tokens), dtype=np.int64, count=len(tokens))

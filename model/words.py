@@ -142,21 +142,23 @@ def split_words(text: str, prefix: str = "", sequence: bool = False) -> TextToke
     chunks = dict.fromkeys(text.split())
     out: dict[str, None] = {}
     others: list[str] = []
-    longest = 0
+    too_long = False
     for chunk in chunks:
         if not chunk.isalpha():
             others.append(chunk)
         elif (size := len(chunk)) >= MIN_WORD:
             out[chunk] = None
-            longest = max(longest, size)
+            if size > MAX_WORD:
+                too_long = True
     others.sort()  # the same order in every process
     rest = " ".join(others)
     if rest:
         for word in _WORD.findall(rest):
             if (size := len(word)) >= MIN_WORD:
                 out[word] = None
-                longest = max(longest, size)
-    if longest > MAX_WORD:
+                if size > MAX_WORD:
+                    too_long = True
+    if too_long:
         out = dict.fromkeys([w if len(w) <= MAX_WORD else long_token(len(w)) for w in out])
     if _DIGIT.search(rest):
         out.update(dict.fromkeys(number_tokens(rest)))
