@@ -43,9 +43,12 @@ _SEPARATORS: Final = str.maketrans("", "", "-._*+~'`^·•")
 _LEET_CHARS: Final = "01345 7@$€!|£¡".replace(" ", "")
 
 _PLAIN_ALNUM: Final = re.compile(r"\d+[^\W\d_]+|[^\W\d_]+\d")
-# A letter next to a leet character: the sign of a chunk worth de-obfuscating.
+# A letter next to a leet character: the sign of a chunk worth de-obfuscating.  Written to
+# start at the leet character, so the regular expression engine skips to those in C; the
+# plain "letter then leet, or leet then letter" found the same (tests/model/
+# test_fast_paths.py) fourteen times slower on a 4 KB message's chunks.
 LEET_NEIGHBOUR: Final = re.compile(
-    r"[^\W\d_][" + re.escape(_LEET_CHARS) + r"]|[" + re.escape(_LEET_CHARS) + r"][^\W\d_]"
+    r"[" + re.escape(_LEET_CHARS) + r"](?:(?<=[^\W\d_].)|(?=[^\W\d_]))"
 )
 MAX_CHUNK: Final = 40
 _EDGE_PUNCT: Final = "\"'()[]{}<>.,;:?!*«»“”‘’"

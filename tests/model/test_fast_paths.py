@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -11,6 +13,8 @@ from mailweir.model import words
 from mailweir.model.fisher import RobinsonFisher
 from mailweir.model.hashing import hash_tokens, token_hash, token_hashes
 from mailweir.model.nb_base import NaiveBayes, posterior_spam
+from mailweir.model.normalize import _LEET_CHARS as LEET_CHARS
+from mailweir.model.normalize import LEET_NEIGHBOUR
 from mailweir.model.types import Vocabulary
 from mailweir.model.words import money_tokens
 
@@ -60,3 +64,18 @@ def test_money_gate_never_hides_an_amount(text: str) -> None:
     rest = " ".join(sorted(chunks.keys() - set(filter(str.isalpha, chunks))))
     if money_tokens(text):
         assert words._may_hold_money(rest, chunks)
+
+
+# The two hints in their plain form, as first written: the fast forms must agree with them.
+PLAIN_LEET = re.compile(
+    r"[^\W\d_][" + re.escape(LEET_CHARS) + r"]|[" + re.escape(LEET_CHARS) + r"][^\W\d_]"
+)
+PLAIN_SEPARATED = re.compile(r"\b\w[-._*+~·•]\w[-._*+~·•]\w[-._*+~·•]\w\b")
+HINT_TEXT = st.text(st.sampled_from(list("ab1 0_.-!|é·5xZ\u00a0ß3@€~*\n")), max_size=16)
+
+
+@settings(max_examples=3000)
+@given(HINT_TEXT)
+def test_obfuscation_hints_find_what_their_plain_forms_find(text: str) -> None:
+    assert bool(LEET_NEIGHBOUR.search(text)) == bool(PLAIN_LEET.search(text))
+    assert bool(words._SEPARATED_HINT.search(text)) == bool(PLAIN_SEPARATED.search(text))
