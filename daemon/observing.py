@@ -36,13 +36,17 @@ class Observing:
         feedback: FeedbackHandler | None,
     ) -> None:
         engine = store.engine
+
+        def model_tokens() -> int:  # from memory: counting the table reads every row
+            return int(store.vocabulary().size)
+
         self.metrics = metrics
         self.refresher = ReportRefresher(
             metrics,
             rates=lambda window: reports.misfiling_rates(engine, window),
-            model=lambda: reports.model_summary(engine, tokens=store.vocabulary().size),
+            model=lambda: reports.model_summary(engine, tokens=model_tokens()),
         )
-        self.page = StatusPage(engine, policy, model_tokens=lambda: store.vocabulary().size)
+        self.page = StatusPage(engine, policy, model_tokens=model_tokens)
 
         async def store_ready() -> bool:
             return await asyncio.to_thread(reports.ping, engine)
