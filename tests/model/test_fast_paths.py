@@ -56,7 +56,7 @@ MONEY_TEXT = st.lists(
 ).map("".join)
 
 
-@settings(max_examples=400)
+@settings(max_examples=400, deadline=None)
 @given(MONEY_TEXT)
 def test_money_gate_never_hides_an_amount(text: str) -> None:
     # The gate looks only at the non-word chunks and the chunk set; money_tokens at the text.
@@ -74,7 +74,7 @@ PLAIN_SEPARATED = re.compile(r"\b\w[-._*+~·•]\w[-._*+~·•]\w[-._*+~·•]\w
 HINT_TEXT = st.text(st.sampled_from(list("ab1 0_.-!|é·5xZ\u00a0ß3@€~*\n")), max_size=16)
 
 
-@settings(max_examples=3000)
+@settings(max_examples=3000, deadline=None)
 @given(HINT_TEXT)
 def test_obfuscation_hints_find_what_their_plain_forms_find(text: str) -> None:
     assert bool(LEET_NEIGHBOUR.search(text)) == bool(PLAIN_LEET.search(text))
