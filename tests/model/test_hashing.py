@@ -112,12 +112,11 @@ MIXED = [
 
 def test_token_hashes_one_for_one_through_the_cache() -> None:
     # Oracle: token_hash of each token, which bypasses the cache.
-    hashing._digest_cache.clear()
-    hashing._staged.clear()
+    size = hashing.DIGEST_CACHE_ENTRIES
+    hashing.limit_digest_cache(size)  # the table and the staged digests, both emptied
     cold = token_hashes(MIXED).tolist()
     warm = token_hashes(MIXED).tolist()
-    hashing._digest_cache.clear()
-    hashing._staged.clear()
+    hashing.limit_digest_cache(size)
     token_hashes(MIXED[:3])
     hashing._flush_staged()
     partly = token_hashes(MIXED).tolist()  # misses among hits
