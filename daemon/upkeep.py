@@ -11,6 +11,11 @@ worker thread, so mail keeps flowing; the store's own locking keeps the writes a
 run is stamped in the database: after a restart a task runs when it is due by the stamp (but
 not in the first minute, which belongs to getting mail moving again).  Every run shows in the
 metrics, and a failed one is logged, counted and tried again after at most an hour.
+
+Daemons that share one PostgreSQL model share the schedule too: each run first takes the
+task's lease in the database (``store/maintenance.py`` ``claim``), so one process runs a task
+while the others skip it, and a task finished elsewhere within its interval is not run again.
+``mailweir upkeep`` takes the same lease, so it never runs a task beside a daemon running it.
 """
 
 from __future__ import annotations
@@ -18,6 +23,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import contextlib
+import functools
 import logging
 import os
 import sys
@@ -40,6 +46,10 @@ TASKS: Final = maintenance.TASKS
 DAY: Final = 86400.0
 FIRST_DELAY: Final = 60.0  # seconds after start before an overdue task runs
 RETRY_AFTER: Final = 3600.0  # most seconds before a failed task is tried again
+# How long a run's lease keeps other processes off the task.  A holder that dies frees it
+# after this; a run that outlasts it (none has come close) may meet a second one, which only
+# repeats idempotent deletes.
+LEASE: Final = 2 * 3600.0
 
 
 class UpkeepMetrics:
@@ -71,8 +81,16 @@ class UpkeepMetrics:
             ["task"],
             registry=registry,
         )
+        self.skipped = Counter(
+            "mailweir_upkeep_skipped",
+            "Upkeep runs left to another process on the same database (it held the task's "
+            "lease, or had finished the task within its interval).",
+            ["task"],
+            registry=registry,
+        )
         for task in TASKS:
-            for metric in (self.last_run, self.duration, self.removed, self.failures):
+            metrics = (self.last_run, self.duration, self.removed, self.failures, self.skipped)
+            for metric in metrics:
                 metric.labels(task)
 
 
@@ -83,22 +101,48 @@ class TaskResult:
     removed: int
     seconds: float
     detail: str
+    skipped: bool = False  # left to another process; ``due`` says when to look again
+    due: float | None = None
 
 
 def run_task(
-    store: Any, settings: UpkeepSettings, task: str, now: float | None = None
+    store: Any,
+    settings: UpkeepSettings,
+    task: str,
+    now: float | None = None,
+    *,
+    every: float | None = None,
 ) -> TaskResult:
-    """Run one task to the end (blocking: call it in a worker thread) and stamp it.  A failure
+    """Take the task's lease, run it to the end (blocking: call it in a worker thread), stamp
+    it and give the lease back.  ``every``: the task's interval, so a run another process
+    finished less than that ago is not repeated (None, as by hand: run it anyway).  A failure
     becomes a result with ``ok=False``; its traceback is logged here."""
     now = time.time() if now is None else now
     started = time.monotonic()
+    try:
+        lease = maintenance.claim(store, task, now, every=every, lease=LEASE)
+    except Exception as exc:
+        log.exception("upkeep %s: could not take its lease", task)
+        return TaskResult(task, False, 0, time.monotonic() - started, f"failed: {exc}")
+    if not lease.taken:
+        detail = f"skipped: {lease.reason}"
+        return TaskResult(task, True, 0, 0.0, detail, skipped=True, due=lease.due)
     try:
         removed, detail = _do(store, settings, task, now)
         maintenance.stamp(store, task, time.time())
     except Exception as exc:
         log.exception("upkeep %s failed", task)
         return TaskResult(task, False, 0, time.monotonic() - started, f"failed: {exc}")
+    finally:
+        _release(store, task)
     return TaskResult(task, True, removed, time.monotonic() - started, detail)
+
+
+def _release(store: Any, task: str) -> None:
+    try:
+        maintenance.release(store, task)
+    except Exception:  # the lease then ends by itself, LEASE after it was taken
+        log.exception("upkeep %s: could not give its lease back", task)
 
 
 def _do(store: Any, settings: UpkeepSettings, task: str, now: float) -> tuple[int, str]:
@@ -179,9 +223,11 @@ class Upkeep:
                 await self._working
             self._working = None
 
-    async def run(self, task: str) -> TaskResult:
-        """Run one task now, in a worker thread, and count it in the metrics."""
-        work = asyncio.ensure_future(asyncio.to_thread(run_task, self._store, self._settings, task))
+    async def run(self, task: str, every: float | None = None) -> TaskResult:
+        """Run one task now, in a worker thread, and count it in the metrics (``every``: as
+        :func:`run_task` takes it)."""
+        call = functools.partial(run_task, self._store, self._settings, task, every=every)
+        work = asyncio.ensure_future(asyncio.to_thread(call))
         self._working = work
         result = await asyncio.shield(work)  # a stop() waits for the thread instead
         self._working = None
@@ -194,6 +240,11 @@ class Upkeep:
 
     def _account(self, result: TaskResult) -> None:
         self.runs = [*self.runs[-99:], result]
+        if result.skipped:
+            log.info("upkeep %s: %s", result.task, result.detail)
+            if self._metrics is not None:
+                self._metrics.skipped.labels(result.task).inc()
+            return
         if result.ok:
             log.info("upkeep %s: %s in %.2f s", result.task, result.detail, result.seconds)
         if self._metrics is None:
@@ -211,7 +262,10 @@ class Upkeep:
             await asyncio.sleep(max(0.0, min(due.values()) - time.time()))
             for task in TASKS:
                 if task in due and due[task] <= time.time():
-                    result = await self.run(task)
+                    result = await self.run(task, every[task])
+                    if result.due is not None:  # left to another process until then
+                        due[task] = max(result.due, time.time() + 1.0)
+                        continue
                     wait = every[task] if result.ok else min(every[task], RETRY_AFTER)
                     due[task] = time.time() + wait
 
@@ -256,7 +310,10 @@ def upkeep_command(args: argparse.Namespace) -> int:
         store.close()
     report = {"database": settings.database, "tasks": [asdict(r) for r in results]}
     lines = [
-        f"{r.task}: {'ok' if r.ok else 'FAILED'}, {r.detail} ({r.seconds:.2f} s)" for r in results
+        f"{r.task}: {r.detail}"
+        if r.skipped
+        else f"{r.task}: {'ok' if r.ok else 'FAILED'}, {r.detail} ({r.seconds:.2f} s)"
+        for r in results
     ]
     print_report(args, report, lines)
     return 0 if all(r.ok for r in results) else 1

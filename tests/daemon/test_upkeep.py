@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import asyncio
+import concurrent.futures
 import dataclasses
 import json
 import os
+import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -109,18 +111,134 @@ def test_upkeep_tidy_runs_on_both_backends(store: ModelStore) -> None:
     assert ("skipped" in result.detail) == (not sqlite)
 
 
-class BrokenStore:
-    def prune(self, **_: Any) -> int:
-        raise RuntimeError("database is locked")
+def _locked(**_: Any) -> int:
+    raise RuntimeError("database is locked")
 
 
-async def test_upkeep_failure_is_counted_not_raised() -> None:
+async def test_upkeep_failure_is_counted_not_raised(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    store = ModelStore.open(str(tmp_path / "model.sqlite3"))
+    monkeypatch.setattr(store, "prune", _locked)
     metrics = upkeep.UpkeepMetrics(CollectorRegistry())
-    runner = upkeep.Upkeep(BrokenStore(), UpkeepSettings(), metrics)
+    runner = upkeep.Upkeep(store, UpkeepSettings(), metrics)
     result = await runner.run("prune")
     assert not result.ok and "database is locked" in result.detail
     assert metrics.failures.labels("prune")._value.get() == 1
     assert metrics.last_run.labels("prune")._value.get() == 0
+    # The failed run gave its lease back: the retry is not kept off by itself.
+    assert maintenance.claim(store, "prune", time.time(), every=3600, lease=60).taken
+    store.close()
+
+
+# -- one schedule for several processes on one database ---------------------------------------
+
+
+def _second(store: ModelStore) -> ModelStore:
+    """Another process's view of the same database (its own engine and connections)."""
+    return ModelStore.open(store.engine.url.render_as_string(hide_password=False))
+
+
+def test_upkeep_lease_keeps_another_process_off_until_given_back(store: ModelStore) -> None:
+    other = _second(store)
+    try:
+        now = 1_000_000.0
+        assert maintenance.claim(store, "prune", now, every=3600, lease=600).taken
+        busy = maintenance.claim(other, "prune", now + 1, every=3600, lease=600)
+        assert (busy.taken, busy.reason, busy.due) == (False, "running elsewhere", now + 600)
+        assert maintenance.claim(other, "trim", now + 1, every=3600, lease=600).taken  # per task
+        maintenance.stamp(store, "prune", now + 5)
+        maintenance.release(store, "prune")
+        # Finished elsewhere within its interval: not repeated on schedule, but by hand it is.
+        done = maintenance.claim(other, "prune", now + 10, every=3600, lease=600)
+        assert (done.taken, done.reason, done.due) == (False, "finished elsewhere", now + 3605)
+        assert maintenance.claim(other, "prune", now + 10, every=None, lease=600).taken
+    finally:
+        other.close()
+
+
+def test_upkeep_lease_of_a_dead_holder_ends_by_itself(store: ModelStore) -> None:
+    other = _second(store)
+    try:
+        assert maintenance.claim(store, "tidy", 5000.0, every=60, lease=100).taken  # then "dies"
+        assert not maintenance.claim(other, "tidy", 5099.0, every=60, lease=100).taken
+        assert maintenance.claim(other, "tidy", 5100.0, every=60, lease=100).taken
+    finally:
+        other.close()
+
+
+def test_upkeep_lease_race_has_one_winner(store: ModelStore) -> None:
+    """Eight processes' stores ask at the same moment: the compare-and-set lets one through
+    (SQLite: writers serialise on BEGIN IMMEDIATE; PostgreSQL: the conditional upsert)."""
+    others = [_second(store) for _ in range(8)]
+    start = threading.Barrier(len(others))
+
+    def ask(one: ModelStore) -> bool:
+        start.wait(timeout=30)
+        return maintenance.claim(one, "trim", 7000.0, every=3600, lease=600).taken
+
+    try:
+        for round_ in range(3):  # bounded: three races, each from a free lease
+            with concurrent.futures.ThreadPoolExecutor(len(others)) as pool:
+                won = list(pool.map(ask, others))
+            assert won.count(True) == 1, (round_, won)
+            maintenance.release(store, "trim")
+    finally:
+        for one in others:
+            one.close()
+
+
+async def test_upkeep_two_daemons_run_each_task_once(store: ModelStore) -> None:
+    """Two schedulers on one database, every task overdue: each task runs in one of them, the
+    other counts it skipped and waits for the interval instead of repeating it."""
+    other = _second(store)
+    hourly = UpkeepSettings(prune_every_hours=1, trim_every_hours=1, tidy_every_hours=1)
+    registries = [CollectorRegistry(), CollectorRegistry()]
+    runners = [
+        upkeep.Upkeep(one, hourly, upkeep.UpkeepMetrics(registry), first_delay=0.0)
+        for one, registry in zip((store, other), registries, strict=True)
+    ]
+    try:
+        for runner in runners:
+            await runner.start()
+        for _ in range(600):  # bounded: at most about 30 s on a slow machine
+            if sum(len(runner.runs) for runner in runners) >= 2 * len(upkeep.TASKS):
+                break
+            await asyncio.sleep(0.05)
+        results = [result for runner in runners for result in runner.runs]
+        assert len(results) == 2 * len(upkeep.TASKS)  # and no more: nothing ran twice
+        for task in upkeep.TASKS:
+            ran = [r for r in results if r.task == task and not r.skipped]
+            skipped = [r for r in results if r.task == task and r.skipped]
+            assert len(ran) == 1 and ran[0].ok, (task, results)
+            assert len(skipped) == 1 and skipped[0].due is not None
+            assert skipped[0].due > time.time() + 3000  # the other's run, plus the interval
+        skips = [
+            sum(
+                registry.get_sample_value("mailweir_upkeep_skipped_total", {"task": task}) or 0
+                for task in upkeep.TASKS
+            )
+            for registry in registries
+        ]
+        assert sum(skips) == len(upkeep.TASKS)
+    finally:
+        for runner in runners:
+            await runner.stop()
+        other.close()
+
+
+def test_upkeep_command_leaves_a_task_running_elsewhere(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    database = tmp_path / "model.sqlite3"
+    daemon_side = ModelStore.open(str(database))
+    assert maintenance.claim(daemon_side, "prune", time.time(), every=None, lease=600).taken
+    assert cli.main(["upkeep", "--db", str(database), "--task", "prune"]) == 0
+    assert capsys.readouterr().out.startswith("prune: skipped: running elsewhere")
+    maintenance.release(daemon_side, "prune")
+    daemon_side.close()
+    assert cli.main(["upkeep", "--db", str(database), "--task", "prune"]) == 0
+    assert capsys.readouterr().out.startswith("prune: ok")
 
 
 def test_upkeep_intervals_zero_switches_a_task_off() -> None:
