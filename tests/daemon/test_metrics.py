@@ -47,6 +47,7 @@ EXPECTED_FAMILIES = {
     "mailweir_upkeep_duration_seconds": "gauge",
     "mailweir_upkeep_removed_rows": "counter",
     "mailweir_upkeep_failures": "counter",
+    "mailweir_upkeep_skipped": "counter",
     "mailweir_listed_messages": "counter",
     "mailweir_config_reloads": "counter",
     "mailweir_verdict_journal_failures": "counter",
