@@ -4,7 +4,8 @@ The SMTP handler drives a :class:`NextHopSession` in lock-step with its upstream
 first RCPT opens the next-hop transaction (connect, EHLO, MAIL FROM), every RCPT is answered
 with the next hop's own reply for that recipient, and the end of DATA sends the message on the
 same transaction.  The connection is kept for the next upstream transaction (RFC 5321 section
-4.1.1.5: RSET between transactions) and closed when the upstream connection ends.
+4.1.1.5: RSET between transactions) and closed when the upstream connection ends.  A next hop
+that offers XFORWARD hears who the client was before each MAIL (daemon/xforward.py).
 
 Every aiosmtplib or socket error is mapped into the error tree by :func:`relay_errors`.
 """
@@ -20,7 +21,7 @@ from dataclasses import dataclass
 import aiosmtplib
 from aiosmtplib import errors as smtp_errors
 
-from mailweir.daemon import replies
+from mailweir.daemon import replies, xforward
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import HostPort, NextHopSettings
@@ -140,27 +141,42 @@ class NextHopSession:
     def connected(self) -> bool:
         return self._client is not None and self._client.is_connected
 
-    async def start(self, sender: str, params: MailParameters, extra_size: int = 0) -> None:
-        """Open a next-hop transaction: connect if needed, RSET an open one, MAIL FROM.
+    async def start(
+        self,
+        sender: str,
+        params: MailParameters,
+        extra_size: int = 0,
+        client: xforward.Forwarded | None = None,
+    ) -> None:
+        """Open a next-hop transaction: connect if needed, RSET an open one, XFORWARD
+        ``client`` if given and offered, MAIL FROM.
 
         A connection kept from an earlier transaction may have been closed by the next hop
         in the meantime; that case gets one fresh connection before giving up.
         """
         reused = self.connected
         try:
-            await self._start(sender, params, extra_size)
+            await self._start(sender, params, extra_size, client)
         except NextHopUnavailable as exc:
             if not reused or exc.reply is not replies.NEXT_HOP_LOST:
                 raise
             log.info("next hop dropped a kept connection; reconnecting")
             self.abort()
-            await self._start(sender, params, extra_size)
+            await self._start(sender, params, extra_size, client)
 
-    async def _start(self, sender: str, params: MailParameters, extra_size: int) -> None:
+    async def _start(
+        self,
+        sender: str,
+        params: MailParameters,
+        extra_size: int,
+        forwarded: xforward.Forwarded | None,
+    ) -> None:
         client = await self._connection()
         if self._in_transaction:
             await self.reset()
             client = await self._connection()
+        if forwarded is not None and client.supports_extension("xforward"):
+            await self._tell_client(client, forwarded)
         options: list[bytes] = []
         if params.size is not None and client.supports_extension("size"):
             options.append(b"SIZE=%d" % (params.size + extra_size))
@@ -183,6 +199,21 @@ class NextHopSession:
         if answer.code != 250:
             raise error_for_answer(answer.code, answer.message)
         self._in_transaction = True
+
+    async def _tell_client(self, client: aiosmtplib.SMTP, forwarded: xforward.Forwarded) -> None:
+        """XFORWARD before MAIL.  It only informs: a refusal is logged and the mail goes on
+        (the next hop then names mailweir as the client, as without XFORWARD)."""
+        offered = client.esmtp_extensions.get("xforward", "")
+        for line in xforward.command_lines(forwarded, offered):
+            with relay_errors():
+                answer = await client.execute_command(
+                    b"XFORWARD", line, timeout=self.timeouts.command
+                )
+            if answer.code == 421:
+                raise error_for_answer(answer.code, answer.message)
+            if answer.code != 250:
+                log.warning("next hop refused XFORWARD: %s %s", answer.code, answer.message)
+                return
 
     async def add_recipient(self, address: str) -> Reply:
         """RCPT TO; returns the next hop's own answer (success or refusal) for this recipient.

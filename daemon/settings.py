@@ -57,6 +57,7 @@ class NextHopSettings:
     # RFC 5321 section 4.5.3.2: 10 minutes for the reply to the end of DATA.
     data_timeout: float = 600.0
     helo_name: str = ""  # empty: same as smtp.hostname
+    send_xforward: bool = True  # tell a next hop that offers XFORWARD who the client was
 
 
 @dataclass(frozen=True)

@@ -194,9 +194,18 @@ class FilterHandler:
             )
         if not envelope.relay_open:
             params = MailParameters.from_options(envelope.mail_options)
-            await session.relay.start(envelope.mail_from or "", params, HEADER_ALLOWANCE)
+            client = self._client_for_next_hop(session, envelope)
+            await session.relay.start(envelope.mail_from or "", params, HEADER_ALLOWANCE, client)
             envelope.relay_open = True
         return await session.relay.add_recipient(address)
+
+    def _client_for_next_hop(
+        self, session: FilterSession, envelope: FilterEnvelope
+    ) -> xforward.Forwarded | None:
+        """Who the client was, for a next hop that offers XFORWARD (None: tell it nothing)."""
+        if not self.settings.next_hop.send_xforward:
+            return None
+        return xforward.passed_on(session, envelope)
 
     async def _decide(
         self, session: FilterSession, envelope: FilterEnvelope, raw: bytes
@@ -250,7 +259,8 @@ class FilterHandler:
         sent = False
         try:
             if rerouted:
-                refusal = await self._reroute(relay, envelope, len(message), judgement)
+                client = self._client_for_next_hop(session, envelope)
+                refusal = await self._reroute(relay, envelope, len(message), judgement, client)
                 if refusal is not None:
                     return judgement, decision, "tempfail", refusal
             answer = await relay.send(message)
@@ -272,7 +282,12 @@ class FilterHandler:
         return judgement, decision, decision.action, Reply(250, answer.enhanced or "2.0.0", text)
 
     async def _reroute(
-        self, relay: NextHopSession, envelope: FilterEnvelope, size: int, judgement: Judgement
+        self,
+        relay: NextHopSession,
+        envelope: FilterEnvelope,
+        size: int,
+        judgement: Judgement,
+        client: xforward.Forwarded | None,
     ) -> Reply | None:
         """Keep the held copy (the bytes as they arrived), then replace the next-hop
         transaction's recipients by the quarantine mailbox.  None when ready to send, else
@@ -291,7 +306,9 @@ class FilterHandler:
                 await relay.reset()
                 return refusal
         params = MailParameters.from_options(envelope.mail_options)
-        await relay.start(envelope.mail_from or "", dataclasses.replace(params, size=size))
+        await relay.start(
+            envelope.mail_from or "", dataclasses.replace(params, size=size), client=client
+        )
         answer = await relay.add_recipient(self.settings.policy.quarantine_mailbox)
         if not answer.is_positive:
             log.error("next hop refused the quarantine mailbox: %s", answer)

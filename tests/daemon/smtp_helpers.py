@@ -39,6 +39,7 @@ class Delivery:
     mail_options: list[str]
     rcpt_tos: list[str]
     content: bytes
+    xforward: list[str] = field(default_factory=list)  # XFORWARD arguments before its MAIL
 
 
 @dataclass
@@ -51,6 +52,8 @@ class SinkBehaviour:
     delay_at_data: float = 0.0  # seconds before answering the end of DATA
     mail_reply: str | None = None
     drop_at_rcpt: set[str] = field(default_factory=set)  # answer 421 and hang up
+    offer_xforward: str | None = None  # e.g. "NAME ADDR PROTO HELO": listed in EHLO
+    xforward_reply: str = "250 2.0.0 Ok"
 
 
 class SinkSMTP(SMTP):
@@ -60,7 +63,10 @@ class SinkSMTP(SMTP):
         super().__init__(sink, **kwargs)
         self.sink = sink
 
+    xforward_args: list[str]  # since the last transaction ended
+
     def connection_made(self, transport: asyncio.BaseTransport) -> None:
+        self.xforward_args = []
         self.sink.protocols.add(self)
         self.sink.connections += 1
         super().connection_made(transport)
@@ -68,6 +74,15 @@ class SinkSMTP(SMTP):
     def connection_lost(self, error: Exception | None) -> None:
         self.sink.protocols.discard(self)
         super().connection_lost(error)
+
+    async def smtp_XFORWARD(self, arg: str | None) -> None:
+        """As Postfix's XFORWARD (only when offered): the attributes hold until the end of
+        the next transaction."""
+        if self.sink.behaviour.offer_xforward is None:
+            await self.push("500 5.5.2 Error: command not recognized")
+            return
+        self.xforward_args.append(arg or "")
+        await self.push(self.sink.behaviour.xforward_reply)
 
 
 class NextHop:
@@ -129,7 +144,23 @@ class NextHop:
         envelope.rcpt_tos.append(address)
         return "250 2.1.5 Recipient ok"
 
+    async def handle_EHLO(
+        self,
+        server: SMTP,
+        session: Session,
+        envelope: Envelope,
+        hostname: str,
+        responses: list[str],
+    ) -> list[str]:
+        session.host_name = hostname
+        offered = self.behaviour.offer_xforward
+        if offered is None:
+            return responses
+        return [*responses[:-1], f"250-XFORWARD {offered}", responses[-1]]
+
     async def handle_RSET(self, server: SMTP, session: Session, envelope: Envelope) -> str:
+        if isinstance(server, SinkSMTP):
+            server.xforward_args = []
         self.rsets += 1
         return "250 2.0.0 Reset"
 
@@ -139,12 +170,16 @@ class NextHop:
         await asyncio.sleep(self.behaviour.delay_at_data)
         if self.behaviour.data_reply:
             return self.behaviour.data_reply
+        told: list[str] = []
+        if isinstance(server, SinkSMTP):
+            told, server.xforward_args = server.xforward_args, []
         self.deliveries.append(
             Delivery(
                 envelope.mail_from or "",
                 list(envelope.mail_options),
                 list(envelope.rcpt_tos),
                 envelope.original_content or b"",
+                told,
             )
         )
         return f"250 2.0.0 Queued as Q{len(self.deliveries)}"

@@ -10,10 +10,13 @@ smtp.xforward_networks) or from 127.0.0.2 (outside it; Linux routes all of 127/8
 from __future__ import annotations
 
 import asyncio
+import ipaddress
 import smtplib
 from dataclasses import replace
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from smtp_helpers import SPAM, FakeJudge, NextHop, daemon_settings, message, running_daemon
 
 from mailweir.daemon import xforward
@@ -184,3 +187,130 @@ async def test_xforward_sequence_errors(next_hop: NextHop) -> None:
 
 def test_default_xforward_networks_are_loopback_only() -> None:
     assert SmtpSettings().xforward_networks == ("127.0.0.1/32", "::1/128")
+
+
+# -- passing it on to the next hop ----------------------------------------------------------
+
+EVERY = "NAME ADDR PROTO HELO SOURCE"
+_ASCII_TEXT = st.text(st.characters(min_codepoint=0x20, max_codepoint=0x7E), max_size=255)
+
+
+def test_command_lines_name_only_what_the_next_hop_offers() -> None:
+    client = xforward.Forwarded(addr=OUTSIDE, name="mx.offers.mail.example", helo="a+b=c")
+    assert xforward.command_lines(client, "addr helo") == [
+        f"ADDR={OUTSIDE} HELO=a+2Bb+3Dc".encode()  # xtext, RFC 3461 section 4
+    ]
+    # Not known: "[UNAVAILABLE]", as Postfix writes it; SOURCE has no such form and is left out.
+    assert xforward.command_lines(xforward.Forwarded(), EVERY) == [
+        b"NAME=[UNAVAILABLE] ADDR=[UNAVAILABLE] PROTO=[UNAVAILABLE] HELO=[UNAVAILABLE]"
+    ]
+    assert xforward.command_lines(xforward.Forwarded(addr="2001:db8::7"), "ADDR") == [
+        b"ADDR=IPV6:2001:db8::7"
+    ]
+
+
+@given(
+    addr=st.one_of(st.none(), st.ip_addresses().map(str)),
+    name=_ASCII_TEXT,
+    helo=_ASCII_TEXT,
+    proto=st.sampled_from(["SMTP", "ESMTP", ""]),
+    source=st.sampled_from(["LOCAL", "REMOTE", ""]),
+)
+@settings(max_examples=200, deadline=None)
+def test_command_lines_read_back_by_the_parser_as_sent(
+    addr: str | None, name: str, helo: str, proto: str, source: str
+) -> None:
+    """What we send, our own receiving side (and so Postfix's syntax) reads back: every
+    line within the 512-byte command limit (RFC 5321 section 4.5.3.1.4)."""
+    client = xforward.Forwarded(
+        addr=addr, name=name or None, helo=helo or None, proto=proto or None, source=source or None
+    )
+    lines = xforward.command_lines(client, EVERY)
+    assert all(len(b"XFORWARD " + line + b"\r\n") <= 512 for line in lines)
+    read: xforward.Forwarded | None = None
+    for line in lines:
+        read = xforward.parse(line.decode("ascii"), read)
+    unknown = xforward.NOT_KNOWN
+    expected = xforward.Forwarded(
+        addr=None if addr is None else str(ipaddress.ip_address(addr)),
+        name=None if client.name in (None, unknown) else client.name,
+        helo=None if client.helo in (None, unknown) else client.helo,
+        proto=client.proto,
+        source=client.source,
+    )
+    assert read == expected
+
+
+async def test_next_hop_hears_the_forwarded_client_then_the_connection_itself(
+    next_hop: NextHop,
+) -> None:
+    next_hop.behaviour.offer_xforward = EVERY
+
+    def two_messages(port: int) -> None:
+        with smtplib.SMTP("127.0.0.1", port, timeout=20) as client:
+            client.ehlo("mx.harbourlane.example")
+            told = f"XFORWARD NAME=mx.offers.mail.example ADDR={OUTSIDE} HELO=offers PROTO=ESMTP"
+            assert client.docmd(told)[0] == 250
+            client.sendmail(OFFERS, [MAREN], message())
+            client.sendmail(OFFERS, [MAREN], message())  # no XFORWARD before this one
+
+    async with running_daemon(_settings(next_hop)) as daemon:
+        await asyncio.to_thread(two_messages, daemon.port)
+    first, second = (_told(delivery.xforward) for delivery in next_hop.deliveries)
+    assert first == xforward.Forwarded(
+        addr=OUTSIDE, name="mx.offers.mail.example", helo="offers", proto="ESMTP"
+    )
+    # Nothing forwarded: the client mailweir itself talked to (no name: mailweir looks none up).
+    assert second == xforward.Forwarded(
+        addr="127.0.0.1", helo="mx.harbourlane.example", proto="ESMTP"
+    )
+    assert len(next_hop.deliveries) == 2
+
+
+async def test_next_hop_hears_only_the_attributes_it_lists(next_hop: NextHop) -> None:
+    next_hop.behaviour.offer_xforward = "ADDR HELO"
+    async with running_daemon(_settings(next_hop)) as daemon:
+        await dialogue(daemon.port, [f"XFORWARD NAME=mx.offers.mail.example ADDR={OUTSIDE}"])
+    assert next_hop.deliveries[0].xforward == [f"ADDR={OUTSIDE} HELO=[UNAVAILABLE]"]
+
+
+async def test_rerouted_mail_carries_the_client_to_the_next_hop(next_hop: NextHop) -> None:
+    next_hop.behaviour.offer_xforward = EVERY
+    settings = _settings(
+        next_hop, spam_action="reroute", quarantine_mailbox="quarantine@harbourlane.example"
+    )
+    async with running_daemon(settings, judge=FakeJudge(SPAM)) as daemon:
+        _, _, sent = await dialogue(daemon.port, [f"XFORWARD ADDR={OUTSIDE}"])
+    assert sent is not None and sent[0] == 250
+    (delivery,) = next_hop.deliveries
+    assert delivery.rcpt_tos == ["quarantine@harbourlane.example"]
+    assert _told(delivery.xforward).addr == OUTSIDE
+
+
+async def test_a_refused_xforward_loses_no_mail(next_hop: NextHop) -> None:
+    next_hop.behaviour.offer_xforward = EVERY
+    next_hop.behaviour.xforward_reply = "550 5.7.0 Not authorized"
+    async with running_daemon(_settings(next_hop)) as daemon:
+        _, _, sent = await dialogue(daemon.port, [])
+    assert sent is not None and sent[0] == 250
+    assert len(next_hop.deliveries) == 1
+
+
+@pytest.mark.parametrize("offered, switched_on", [(None, True), (EVERY, False)])
+async def test_next_hop_hears_nothing_unless_offered_and_switched_on(
+    next_hop: NextHop, offered: str | None, switched_on: bool
+) -> None:
+    next_hop.behaviour.offer_xforward = offered
+    settings = _settings(next_hop)
+    settings = replace(settings, next_hop=replace(settings.next_hop, send_xforward=switched_on))
+    async with running_daemon(settings) as daemon:
+        _, _, sent = await dialogue(daemon.port, [f"XFORWARD ADDR={OUTSIDE}"])
+    assert sent is not None and sent[0] == 250
+    assert next_hop.deliveries[0].xforward == []  # (the sink answers 500 to an unoffered one)
+
+
+def _told(arguments: list[str]) -> xforward.Forwarded:
+    told = xforward.Forwarded()
+    for argument in arguments:
+        told = xforward.parse(argument, told)
+    return told

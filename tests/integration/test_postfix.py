@@ -442,6 +442,25 @@ def test_postfix_before_queue_delivers_ham_tagged(before_queue: Instance) -> Non
     assert path.read_bytes().split(b"\n\n", 1)[1] == (body + "\r\n").replace("\r\n", "\n").encode()
 
 
+def test_postfix_before_queue_names_the_real_client_after_mailweir(before_queue: Instance) -> None:
+    """Postfix's proxy tells mailweir the client by XFORWARD, and mailweir tells the
+    after-filter listener (smtpd_authorized_xforward_hosts in the snippet), whose log then
+    names the sending client beside mailweir's connection ("orig_client=", Postfix's own log
+    format as this Postfix writes it).  The client connects from 127.0.0.2, mailweir from
+    127.0.0.1."""
+    body = f"{HAM_LINES[2]}\r\n{HAM_LINES[5]}"
+    raw = _message("jo.hartley@mail.example", "tobias@harbourlane.example", "Cover", body)
+    _submit(before_queue, "tobias@harbourlane.example", raw, client_address="127.0.0.2")
+    _wait_for(
+        "delivery to tobias", lambda: bool(before_queue.delivered("tobias")), before_queue.logs
+    )
+    returned = re.compile(
+        r"mailweir-return/smtpd\[\d+\]: \w+: client=\S*\[127\.0\.0\.1\], "
+        r"orig_client=\S*\[127\.0\.0\.2\]"
+    )
+    assert returned.search(before_queue.logs()), before_queue.logs()
+
+
 def test_postfix_before_queue_refuses_spam_in_the_session(before_queue: Instance) -> None:
     # RFC 3463: 5.7.1 "delivery not authorized, message refused"; the code our reject uses.
     body = "\r\n".join(SPAM_LINES[1:5])
