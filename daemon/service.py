@@ -258,7 +258,11 @@ class Service:
         self.judge = Judge(
             self.store,
             self.settings,
-            executor_factory=functools.partial(make_executor, model.scoring_workers),
+            executor_factory=functools.partial(
+                make_executor,
+                model.scoring_workers,
+                "process" if model.tokenizer_processes else "thread",
+            ),
             metrics=self.metrics,
             inline_below=INLINE_BELOW,
             on_loop_below=ON_LOOP_BELOW,

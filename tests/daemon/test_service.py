@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import concurrent.futures
 import dataclasses
 import logging
+import multiprocessing
 import os
 import signal
 import smtplib
@@ -19,6 +21,7 @@ from typing import Any
 import pytest
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
+from mailweir.daemon import judge as judge_module
 from mailweir.daemon import replies
 from mailweir.daemon import service as service_module
 from mailweir.daemon.config import ConfigSource
@@ -460,3 +463,28 @@ async def test_service_reload_reaches_messages_on_open_connections(
     first, second = handler.received
     assert b"Mailweir-" not in first  # observe mode: untouched
     assert b"Mailweir-" in second  # enforce mode: marked (not yet judged: untrained model)
+
+
+async def test_service_without_tokenizer_processes_parses_large_mail_in_threads(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+) -> None:
+    """model.tokenizer_processes = false: a message over INLINE_BELOW is tokenized in a thread
+    of the daemon; no worker process (nor multiprocessing's helpers) is ever started."""
+    handler, next_hop = sink
+    settings = make_settings(tmp_path, next_hop)
+    settings = dataclasses.replace(
+        settings, model=dataclasses.replace(settings.model, tokenizer_processes=False)
+    )
+    large = MESSAGE + b"The rota for the Saturday surgery is pinned in the staff room.\r\n" * 2000
+    assert len(large) >= judge_module.INLINE_BELOW
+    service = Service(settings)
+    await service.startup()
+    try:
+        assert await asyncio.to_thread(send, service.smtp_address, large) == {}
+        assert service.judge is not None
+        assert isinstance(service.judge.executor, concurrent.futures.ThreadPoolExecutor)
+        assert service.judge.counts["failed"] == 0 and sum(service.judge.counts.values()) == 1
+        assert multiprocessing.active_children() == []
+    finally:
+        await service.shutdown(grace=5)
+    assert len(handler.received) == 1
