@@ -10,9 +10,31 @@ and "On the loop"):
                                    from the local SQLite file without waiting for a lock;
                                    a worker thread looks up whatever that declines
     below INLINE_BELOW (64 KiB)    everything in one worker thread
-    larger                         tokenize in the process pool, look up and score in a thread
+    larger                         the same (the default), or with model.tokenizer_processes
+                                   tokenize in the process pool, look up and score in a thread
 
-Pool choice: a process pool (``POOL_KIND``), measured with ``bench/bench_pool.py`` on the
+Large mail: threads by default, processes when ``model.tokenizer_processes`` is set.
+``bench/bench_relay.py`` on the 2-core development machine, 100 KB messages, 500,000-token
+model, two rounds each, 2026-12-02 15:40 UTC (mailweir against the bare relay of the same run):
+
+                   clients  msg/s    p99 ms   CPU ms/msg  PSS MB (daemon and its processes)
+    threads           1     97-107   14-15     7.1-7.7      107
+                      8    119-137   80-88     7.3-8.5      109-112
+    2 processes       1     71-74    16-18    10.9-11.6     156-164
+                      8    137-141   75-79    10.1-10.4     158-164
+    1 process         8    137-146   68-70     9.5-9.9      149-150
+
+and mixed, 4 clients of 4 KB beside 4 of 100 KB: 4 KB mail p50 5.6-6.1 ms against 8.3-12.0
+with processes, p99 40-48 against 31-36; the same wall time; daemon CPU 1.26-1.30 s against
+1.49-1.59; 109-111 MB PSS against 158-166.  Pickling each message to a worker and back, the
+pool's manager thread and the forkserver cost more than they save on a machine with few
+cores, and the processes (two workers, the forkserver, the resource tracker) hold 45-55 MB.
+What threads cost: the loop shares the interpreter lock while a large message is parsed, so
+other connections wait a little more at the tail (the p99 above) and a pathological message's
+parse (bounded by the tokenizer's limits) slows the loop rather than a worker.  On a machine
+with spare cores and much large mail, the processes parse beside the loop.
+
+The case for processes (``POOL_KIND``), measured earlier with ``bench/bench_pool.py`` on the
 2-core development machine (Python 3.11, 2 workers, 8 messages in flight, a 10 ms ticker on the
 loop; three alternating rounds each, ranges over the rounds; the machine is shared, so absolute
 figures move between runs, the comparison did not):

@@ -110,9 +110,9 @@ class ModelSettings:
     preload: bool = True  # every token's counts in memory at start (SQLite; daemon/preload.py)
     staleness_seconds: float = 5.0
     scoring_workers: int = 2
-    # False: large messages are tokenized in threads of the daemon, with no worker processes
-    # (less memory, while the event loop shares the interpreter with the parse; judge.py).
-    tokenizer_processes: bool = True
+    # True: large messages are tokenized in worker processes; False (the default): in threads
+    # of the daemon, which measured cheaper and leaner on a small machine (daemon/judge.py).
+    tokenizer_processes: bool = False
     max_concurrent_scoring: int = 16
 
 

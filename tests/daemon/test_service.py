@@ -465,15 +465,20 @@ async def test_service_reload_reaches_messages_on_open_connections(
     assert b"Mailweir-" in second  # enforce mode: marked (not yet judged: untrained model)
 
 
-async def test_service_without_tokenizer_processes_parses_large_mail_in_threads(
-    tmp_path: Path, sink: tuple[SinkHandler, HostPort]
+@pytest.mark.parametrize(
+    "processes", [False, pytest.param(True, marks=pytest.mark.slow)], ids=["threads", "processes"]
+)
+async def test_service_tokenizes_large_mail_where_model_tokenizer_processes_says(
+    tmp_path: Path, sink: tuple[SinkHandler, HostPort], processes: bool
 ) -> None:
-    """model.tokenizer_processes = false: a message over INLINE_BELOW is tokenized in a thread
-    of the daemon; no worker process (nor multiprocessing's helpers) is ever started."""
+    """A message over INLINE_BELOW: by default tokenized in a thread of the daemon, so no
+    worker process (nor multiprocessing's helpers) is ever started; with
+    model.tokenizer_processes in the process pool."""
     handler, next_hop = sink
     settings = make_settings(tmp_path, next_hop)
+    assert settings.model.tokenizer_processes is False  # the default
     settings = dataclasses.replace(
-        settings, model=dataclasses.replace(settings.model, tokenizer_processes=False)
+        settings, model=dataclasses.replace(settings.model, tokenizer_processes=processes)
     )
     large = MESSAGE + b"The rota for the Saturday surgery is pinned in the staff room.\r\n" * 2000
     assert len(large) >= judge_module.INLINE_BELOW
@@ -482,9 +487,15 @@ async def test_service_without_tokenizer_processes_parses_large_mail_in_threads(
     try:
         assert await asyncio.to_thread(send, service.smtp_address, large) == {}
         assert service.judge is not None
-        assert isinstance(service.judge.executor, concurrent.futures.ThreadPoolExecutor)
+        pool = service.judge.executor
+        kind = (
+            concurrent.futures.ProcessPoolExecutor
+            if processes
+            else concurrent.futures.ThreadPoolExecutor
+        )
+        assert isinstance(pool, kind)
         assert service.judge.counts["failed"] == 0 and sum(service.judge.counts.values()) == 1
-        assert multiprocessing.active_children() == []
+        assert (multiprocessing.active_children() != []) is processes
     finally:
         await service.shutdown(grace=5)
     assert len(handler.received) == 1
