@@ -43,6 +43,7 @@ from mailweir.daemon.settings import HostPort, Settings
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
 from mailweir.daemon.upkeep import Upkeep
 from mailweir.daemon.verdict_log import VerdictLog
+from mailweir.store.memory import limit_malloc_arenas
 
 log = logging.getLogger("mailweir.service")
 
@@ -475,6 +476,7 @@ def run_command(args: argparse.Namespace) -> int:
         print(f"mailweir: configuration error: {exc}", file=sys.stderr)
         return 2
     configure_logging(settings.log)
+    limit_malloc_arenas()  # before asyncio.run starts any thread
     return asyncio.run(_serve(settings, source))
 
 

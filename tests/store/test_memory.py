@@ -1,0 +1,72 @@
+"""glibc allocator knobs (store/memory.py), checked in child processes: an arena cap holds for
+the whole process, so each case gets a fresh interpreter."""
+
+from __future__ import annotations
+
+import ctypes
+import os
+import subprocess
+import sys
+
+import pytest
+
+try:
+    ctypes.CDLL(None).malloc_info  # noqa: B018 - glibc only
+    GLIBC = True
+except (OSError, AttributeError):
+    GLIBC = False
+
+pytestmark = [pytest.mark.slow, pytest.mark.skipif(not GLIBC, reason="glibc's malloc only")]
+
+# Eight threads allocate at once, then glibc's own report (malloc_info, XML) counts its heaps.
+CHILD = """
+import ctypes, os, sys, tempfile, threading
+from mailweir.store.memory import limit_malloc_arenas
+print(limit_malloc_arenas() if sys.argv[1] == "cap" else "-")
+ready, done = threading.Barrier(9), threading.Event()
+def allocate():
+    ready.wait()
+    held = [bytes(1000) + b"x" * i for i in range(20000)]
+    ready.wait()
+    done.wait()
+threads = [threading.Thread(target=allocate) for _ in range(8)]
+for thread in threads:
+    thread.start()
+ready.wait()
+ready.wait()
+libc = ctypes.CDLL(None)
+libc.fopen.restype = ctypes.c_void_p
+fd, path = tempfile.mkstemp()
+stream = ctypes.c_void_p(libc.fopen(path.encode(), b"w"))
+libc.malloc_info(0, stream)
+libc.fclose(stream)
+print(open(path).read().count("<heap nr="))
+os.unlink(path)
+done.set()
+"""
+
+
+def _heaps(mode: str, **env: str) -> tuple[str, int]:
+    environment = {k: v for k, v in os.environ.items() if k != "MALLOC_ARENA_MAX"} | env
+    out = subprocess.run(
+        [sys.executable, "-c", CHILD, mode],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        env=environment,
+        check=True,
+    ).stdout.split()
+    return out[0], int(out[1])
+
+
+def test_limit_malloc_arenas_caps_the_heaps_threads_grow() -> None:
+    uncapped = _heaps("none")[1]
+    answer, capped = _heaps("cap")
+    assert answer == "True"
+    assert capped <= 2 < uncapped  # without the cap, threads that allocate at once get heaps
+
+
+def test_limit_malloc_arenas_leaves_an_administrators_setting_alone() -> None:
+    answer, heaps = _heaps("cap", MALLOC_ARENA_MAX="4")
+    assert answer == "False"
+    assert 2 < heaps <= 4
