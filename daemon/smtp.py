@@ -260,7 +260,10 @@ class FilterHandler:
         try:
             if rerouted:
                 client = self._client_for_next_hop(session, envelope)
-                refusal = await self._reroute(relay, envelope, len(message), judgement, client)
+                held_as = decision.verdict or judgement.band
+                refusal = await self._reroute(
+                    relay, envelope, len(message), judgement, held_as, client
+                )
                 if refusal is not None:
                     return judgement, decision, "tempfail", refusal
             answer = await relay.send(message)
@@ -287,11 +290,14 @@ class FilterHandler:
         envelope: FilterEnvelope,
         size: int,
         judgement: Judgement,
+        held_as: str,
         client: xforward.Forwarded | None,
     ) -> Reply | None:
         """Keep the held copy (the bytes as they arrived), then replace the next-hop
         transaction's recipients by the quarantine mailbox.  None when ready to send, else
-        the temporary refusal for the upstream."""
+        the temporary refusal for the upstream.  ``held_as`` is the verdict that rerouted it
+        (the band after the recipients' own cut-offs, or the sender list's verdict), which
+        the held copy records and the digest shows."""
         if self.holding is not None:
             refusal = await self.holding.hold(
                 envelope.original_content or b"",
@@ -300,7 +306,7 @@ class FilterHandler:
                 envelope.rcpt_tos,
                 envelope.mail_options,
                 judgement.score,
-                judgement.band,
+                held_as,
             )
             if refusal is not None:
                 await relay.reset()

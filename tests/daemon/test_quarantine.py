@@ -20,6 +20,7 @@ from dataclasses import dataclass
 from email.parser import BytesParser
 from io import StringIO
 from pathlib import Path
+from typing import Any
 
 import aiohttp
 from smtp_helpers import LOCAL, FakeJudge, FakeVerdictLog, Judged, NextHop, daemon_settings, send
@@ -31,7 +32,7 @@ from mailweir.daemon.judge import new_tracking_id
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import feedback_closed
 from mailweir.daemon.quarantine import Quarantine, QuarantineCollector
-from mailweir.daemon.settings import HostPort, HttpSettings, Settings
+from mailweir.daemon.settings import HostPort, HttpSettings, RecipientPolicy, Settings
 from mailweir.daemon.smtp import FilterHandler
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
 from mailweir.store.held_mail import HeldEnvelope
@@ -74,14 +75,17 @@ class Held:
 
 
 @asynccontextmanager
-async def holding_daemon(tmp_path: Path, sink: NextHop) -> AsyncIterator[Held]:
+async def holding_daemon(
+    tmp_path: Path, sink: NextHop, judge: FakeJudge | None = None, **policy: Any
+) -> AsyncIterator[Held]:
     """mailweir's SMTP side rerouting everything to quarantine, with the held copies on."""
-    base = daemon_settings(sink.address, spam_action="reroute", quarantine_mailbox=QUARANTINE)
+    policy = {"spam_action": "reroute", "quarantine_mailbox": QUARANTINE, **policy}
+    base = daemon_settings(sink.address, **policy)
     settings = dataclasses.replace(
         base, state_dir=tmp_path, http=HttpSettings(listen=HostPort(LOCAL, 0), token=TOKEN)
     )
     quarantine = Quarantine(settings)
-    handler = FilterHandler(settings, FreshJudge(), FakeVerdictLog())
+    handler = FilterHandler(settings, judge or FreshJudge(), FakeVerdictLog())
     handler.holding = quarantine
     connections = Connections(10)
     server = await create_smtp_server(settings, handler, connections=connections)
@@ -129,6 +133,33 @@ async def test_quarantine_reroute_holds_the_bytes_as_they_arrived(
         assert next_hop.deliveries[-1].content.startswith(b"Mailweir-Verdict: spam")
         assert envelope.recipients == (PRIYA, TOBIAS) and envelope.sender == SENDER
         assert envelope.band == "spam" and envelope.score == 0.9987
+
+
+async def test_quarantine_records_the_verdict_that_held_it_not_the_judges_band(
+    tmp_path: Path, next_hop: NextHop
+) -> None:
+    """Priya's own spam cut-off (0.9) makes a 0.95 "suspect" spam for her, and spam is
+    rerouted: the held copy (and so the digest) says "spam", as her verdict field does."""
+    suspect = FakeJudge(Judged("0123456789abcdeh", "suspect", 0.95, (("kennel", 1.5),)))
+    mine = RecipientPolicy(match=PRIYA, spam_threshold=0.9)
+    async with holding_daemon(tmp_path, next_hop, suspect, recipient=(mine,)) as daemon:
+        sent = await send(daemon.port, JUNK, [PRIYA], SENDER)
+        assert sent.data is not None and sent.data[0] == 250, sent
+        (envelope,) = daemon.quarantine.store.envelopes()
+    assert next_hop.deliveries[-1].rcpt_tos == [QUARANTINE]
+    assert (envelope.band, envelope.score) == ("spam", 0.95)
+
+
+async def test_quarantine_records_a_blocked_sender_as_such(
+    tmp_path: Path, next_hop: NextHop
+) -> None:
+    async with holding_daemon(
+        tmp_path, next_hop, block_senders=("@bulkdeals.example",), block_action="reroute"
+    ) as daemon:
+        sent = await send(daemon.port, JUNK, [PRIYA], SENDER)
+        assert sent.data is not None and sent.data[0] == 250, sent
+        (envelope,) = daemon.quarantine.store.envelopes()
+    assert (envelope.band, envelope.score) == ("sender-blocked", None)
 
 
 async def test_quarantine_release_by_command_reaches_original_recipients_once(
