@@ -231,7 +231,7 @@ class Judge:
         inline_below: int = 0,
         on_loop_below: int = 0,
     ) -> None:
-        """``executor`` runs the CPU steps (None: the loop's default thread pool).  With
+        """``executor`` runs the CPU steps (None: the judge's own threads).  With
         ``executor_factory`` the judge makes its own and replaces it when it breaks (a process
         pool whose worker died fails every later call otherwise).  Messages shorter than
         ``inline_below`` bytes skip a process pool (see ``INLINE_BELOW``); those shorter than
@@ -250,10 +250,10 @@ class Judge:
         # looks up keeps its own database connection (about 35 MB more resident each,
         # measured with bench/bench_relay.py), while more threads than cores only contend
         # for the GIL.
+        # Without a pool of its own they serve every message the loop does not judge, large
+        # ones included (model.tokenizer_processes off).
         self._threads: concurrent.futures.ThreadPoolExecutor | None = None
-        if executor_factory is not None or isinstance(
-            executor, concurrent.futures.ProcessPoolExecutor
-        ):
+        if executor is None or isinstance(executor, concurrent.futures.ProcessPoolExecutor):
             self._threads = concurrent.futures.ThreadPoolExecutor(
                 settings.model.scoring_workers, thread_name_prefix="mailweir-judge"
             )
@@ -303,7 +303,7 @@ class Judge:
             if size < self._inline_below:
                 return self._threads
             self.executor = self._executor_factory()
-        return self.executor
+        return self.executor if self.executor is not None else self._threads
 
     def _replace_executor(self, broken: concurrent.futures.Executor | None) -> None:
         if self._executor_factory is None or broken is None or self.executor is not broken:

@@ -259,10 +259,11 @@ class Service:
         self.judge = Judge(
             self.store,
             self.settings,
-            executor_factory=functools.partial(
-                make_executor,
-                model.scoring_workers,
-                "process" if model.tokenizer_processes else "thread",
+            # Without tokenizer processes the judge's own threads take large mail too.
+            executor_factory=(
+                functools.partial(make_executor, model.scoring_workers)
+                if model.tokenizer_processes
+                else None
             ),
             metrics=self.metrics,
             inline_below=INLINE_BELOW,
