@@ -126,8 +126,12 @@ class Quarantine:
                 self.store.record_release, envelope, way, delivered, refused, answer
             )
         except OSError as exc:
-            # Sent but not recorded: the claim stays, so nobody sends it a second time.
+            # Sent but not recorded: the claim stays, so nobody sends it a second time, and
+            # says what went where for whoever asks next.
             log.error("%s: released to %s but not recorded: %s", tracking_id, delivered, exc)
+            when = time.strftime("%Y-%m-%d %H:%M:%S %Z")
+            note = f"{when} by {way} to {', '.join(delivered)}: {answer}; record failed: {exc}"
+            await asyncio.to_thread(self.store.note_unrecorded, tracking_id, note)
             raise ReleaseFailed(
                 f"{tracking_id} went to {', '.join(delivered)} but the record failed ({exc}); "
                 "its claim file stays so it is not sent twice"

@@ -34,6 +34,19 @@ TRACKING_ID: Final = re.compile(r"[A-Za-z0-9_-]{1,64}")  # as the verdict log st
 RELEASE_WAYS: Final = ("command", "http", "feedback")
 
 
+_UNRECORDED = "sent, not recorded: "  # a claim file's line after a release's record failed
+
+
+def _claim_note(claim: Path) -> str:
+    """What a claim file says was sent without a record ("" if nothing, or unreadable)."""
+    try:
+        lines = claim.read_text("utf-8", errors="replace").splitlines()
+    except OSError:
+        return ""
+    notes = [line[len(_UNRECORDED) :] for line in lines if line.startswith(_UNRECORDED)]
+    return f"sent but its release not recorded ({notes[-1][:300]})" if notes else ""
+
+
 class HeldMailError(Exception):
     """A held-mail operation that cannot go ahead; the message says why and what to do."""
 
@@ -245,6 +258,12 @@ class HeldMailStore:
         try:
             descriptor = os.open(claim, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600)
         except FileExistsError:
+            said = _claim_note(claim)
+            if said:
+                raise ReleaseUnderway(
+                    f"{tracking_id} was {said}; if the recipients have it, nothing is left to "
+                    f"do but delete {claim}"
+                ) from None
             raise ReleaseUnderway(
                 f"a release of {tracking_id} is under way; if none is (a release was cut off), "
                 f"check whether the recipients got it, then delete {claim}"
@@ -258,6 +277,13 @@ class HeldMailStore:
             self.unclaim(tracking_id)
             raise AlreadyReleased(_released_text(envelope))
         return envelope
+
+    def note_unrecorded(self, tracking_id: str, note: str) -> None:
+        """Write into the claim what a release sent but could not record (best effort: the
+        disk that refused the record may refuse this too), for whoever asks next."""
+        claim = self._path(tracking_id, ".releasing")
+        with contextlib.suppress(OSError), claim.open("a", encoding="utf-8") as out:
+            out.write(f"{_UNRECORDED}{note}\n")
 
     def unclaim(self, tracking_id: str) -> None:
         with contextlib.suppress(FileNotFoundError):

@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 import aiohttp
+import pytest
 from smtp_helpers import LOCAL, FakeJudge, FakeVerdictLog, Judged, NextHop, daemon_settings, send
 
 from mailweir.daemon import cli, replies
@@ -31,7 +32,7 @@ from mailweir.daemon.http_side import HttpSide
 from mailweir.daemon.judge import new_tracking_id
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import feedback_closed
-from mailweir.daemon.quarantine import Quarantine, QuarantineCollector
+from mailweir.daemon.quarantine import Quarantine, QuarantineCollector, ReleaseFailed
 from mailweir.daemon.settings import HostPort, HttpSettings, RecipientPolicy, Settings
 from mailweir.daemon.smtp import FilterHandler
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
@@ -254,6 +255,30 @@ async def test_quarantine_release_with_next_hop_down_can_be_retried(
         code, out = await asyncio.to_thread(_command, "release", tracking_id, *_where(daemon))
         assert code == 0, out
         assert next_hop.deliveries[-1].rcpt_tos == [PRIYA, TOBIAS]
+
+
+async def test_quarantine_release_sent_but_not_recorded_is_never_sent_twice(
+    tmp_path: Path, next_hop: NextHop, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The next hop took the release but the record could not be written (a full disk): the
+    claim stays, so no second release goes out, and it says where the mail went."""
+    async with holding_daemon(tmp_path, next_hop) as daemon:
+        tracking_id = await _reroute(daemon, next_hop)
+
+        def disk_full(*_: object, **__: object) -> None:
+            raise OSError(28, "No space left on device")
+
+        monkeypatch.setattr(daemon.quarantine.store, "record_release", disk_full)
+        with pytest.raises(ReleaseFailed, match="claim file stays"):
+            await daemon.quarantine.release(tracking_id, "command")
+        assert next_hop.deliveries[-1].rcpt_tos == [PRIYA, TOBIAS]
+        sent = len(next_hop.deliveries)
+        monkeypatch.undo()
+        code, out = await asyncio.to_thread(_command, "release", tracking_id, *_where(daemon))
+    assert code != 0 and len(next_hop.deliveries) == sent  # not sent a second time
+    assert "sent but its release not recorded" in out, out
+    assert f"by command to {PRIYA}, {TOBIAS}: 250 2.0.0" in out and "No space left" in out, out
+    assert "delete" in out and f"{tracking_id}.releasing" in out
 
 
 async def test_quarantine_digest_lists_each_recipients_held_mail(
