@@ -192,8 +192,9 @@ class FeedbackIntake:
 
     # After an accepted "ham" correction with a known tracking id: release that message's held
     # copy, if the quarantine has one (daemon/quarantine.py's ``release_wanted``; the service
-    # sets it).  Returns a sentence for the reply, or None when nothing was held.
-    release_wanted: Callable[[str], Awaitable[str | None]] | None = None
+    # sets it), told whether the verdict rerouted it.  Returns a sentence for the reply, or
+    # None when there is nothing to say.
+    release_wanted: Callable[[str, bool], Awaitable[str | None]] | None = None
 
     def __init__(
         self,
@@ -247,7 +248,7 @@ class FeedbackIntake:
             return None
         # outcome.tracking_id is set only for a verdict found (and, for an id read from the
         # message, believed): nobody releases another message by writing its id.
-        return await hook(outcome.tracking_id) if outcome.tracking_id else None
+        return await hook(outcome.tracking_id, outcome.rerouted) if outcome.tracking_id else None
 
     @message_scoped  # the lines about this correction carry its tracking id
     async def _correct(self, request: FeedbackRequest, *, check_id: bool) -> FeedbackOutcome:
@@ -273,7 +274,9 @@ class FeedbackIntake:
         record = FeedbackRecord(kind, channel, self._clock(), tracking_id, message_digest(hashes))
         label = SPAM if request.correction == "spam" else HAM
         result = await asyncio.to_thread(self._store_correction, hashes, label, record, request)
-        return self._outcome(result, kind, tracking_id, exact)
+        outcome = self._outcome(result, kind, tracking_id, exact)
+        rerouted = verdict is not None and verdict.action == "reroute"
+        return dataclasses.replace(outcome, rerouted=rerouted) if rerouted else outcome
 
     async def _evidence(
         self, request: FeedbackRequest, check_id: bool

@@ -52,6 +52,7 @@ class FeedbackOutcome:
     detail: str = ""  # one sentence for the user or the admin
     kind: str | None = None  # as logged: false_positive, false_negative or confirmation
     tracking_id: str | None = None
+    rerouted: bool = False  # the verdict found rerouted the message to quarantine
 
     @property
     def accepted(self) -> bool:

@@ -146,15 +146,23 @@ class Quarantine:
         )
         return done
 
-    async def release_wanted(self, tracking_id: str) -> str | None:
+    async def release_wanted(self, tracking_id: str, rerouted: bool = False) -> str | None:
         """The feedback intake's hook after a ham correction: release the held copy, if any.
 
         Returns one sentence for the correction's reply, or None when nothing is held under
-        ``tracking_id``.  Never raises: the correction itself is already stored.
+        ``tracking_id`` and the verdict did not reroute it either.  A rerouted message whose
+        copy is not here (held by another daemon sharing the model, expired, or deleted) gets
+        a sentence saying so, so the user does not wait for it.  Never raises: the correction
+        itself is already stored.
         """
         try:
             done = await self.release(tracking_id, "feedback")
         except NotHeld:
+            if rerouted:
+                return (
+                    "held copy not on this filter (another filter's, expired or deleted); "
+                    "ask the admin to release it"
+                )
             return None
         except AlreadyReleased:
             return "held copy released before"

@@ -61,3 +61,32 @@ async def test_quarantine_service_feedback_retrains_and_releases_once(
         assert _sample(text, "mailweir_feedback_total", kind="false_positive") == 1
     finally:
         await service.shutdown(grace=5)
+
+
+async def test_quarantine_service_says_so_when_the_held_copy_is_elsewhere(
+    tmp_path: Path, next_hop: NextHop
+) -> None:
+    """Two daemons share a model but not their quarantine folders: a wanted-mail correction
+    reaching the one that did not hold the message still retrains, and its reply says the
+    copy is not here (here: the copy is gone from this daemon's folder)."""
+    settings, reminder, _ = reminder_taken_for_spam(
+        tmp_path, next_hop, TOKEN, spam_action="reroute", quarantine_mailbox=QUARANTINE
+    )
+    service = Service(settings)
+    await service.startup()
+    try:
+        port = service.smtp_address.port
+        sent = await send(port, reminder, [TOBIAS], SUPPLIER)
+        assert sent.data is not None and sent.data[0] == 250, sent
+        assert service.quarantine is not None
+        (held,) = service.quarantine.store.envelopes()
+        service.quarantine.store.forget(held.tracking_id)
+
+        forward = as_attachment(next_hop.deliveries[-1].content)
+        sent = await send(port, forward, [scenario.FEEDBACK_HAM], TOBIAS)
+        assert sent.data is not None and sent.data[0] == 250, sent
+        assert b"1 moved" in sent.data[1], sent
+        assert b"held copy not on this filter" in sent.data[1], sent
+        assert len(next_hop.deliveries) == 1  # nothing released
+    finally:
+        await service.shutdown(grace=5)
