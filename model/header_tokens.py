@@ -1,6 +1,8 @@
-"""Tokens from the top-level header fields: subject, sender, reply-to, mailer, field names.
+"""Tokens from the top-level header fields: subject, sender, reply-to, mailer, field names,
+the relays the message came through, its authentication results and its Message-ID.
 
-Prefixes: "subj:" subject words and shape, "from:" sender, "rt:" reply-to, "hdr:" the rest.
+Prefixes: "subj:" subject words and shape, "from:" sender, "rt:" reply-to, "rcvd:" relays,
+"auth:" authentication results, "mid:" Message-ID, "hdr:" the rest.
 """
 
 from __future__ import annotations
@@ -9,7 +11,7 @@ import re
 from typing import Final
 
 from .charsets import decode_header_value
-from .domains import address_domain, registrable
+from .domains import address_domain, clean_host, is_ip, registrable
 from .mime import MAX_FIELD_BYTES, Part
 from .normalize import clean_text
 from .words import split_words
@@ -20,6 +22,20 @@ _REPLY: Final = re.compile(r"(?i)^\s*(re|aw|sv|antw)\s*(\[\d+\])?\s*:")
 _ANGLE_ADDRESS: Final = re.compile(r"<([^<>]{0,300})>")
 _BARE_ADDRESS: Final = re.compile(r"[^\s<>\"(),;:]{1,200}@[^\s<>\"(),;:]{1,255}")
 _FORWARD: Final = re.compile(r"(?i)^\s*(fwd?|wg|tr|vs)\s*:")
+# Received: "from <helo> (<reverse name> [<address>]) by ..." (RFC 5321 section 4.4; the
+# parenthesised TCP-info is how the common servers write it, reverse name "unknown" when the
+# address has none).
+_RECEIVED_FROM: Final = re.compile(r"(?i)^\s*from\s+(\S{1,255})(?:\s+\(([^()]{0,600})\))?")
+_TCP_INFO: Final = re.compile(
+    r"^\s*([^\s\[\]]{1,255})?\s*\[([0-9a-fA-F.:]{1,60}|IPv6:[0-9a-fA-F.:]{1,60})\]"
+)
+RELAY_HOPS: Final = 2  # the newest Received fields read: the hops nearest our own server
+# Authentication-Results (RFC 8601 section 2.2): "authserv-id; method=result ptype.prop=value".
+_COMMENT: Final = re.compile(r"\([^()]*\)")
+_RESULT: Final = re.compile(r"(?i)^([a-z][a-z0-9-]{0,15})(?:/[0-9]+)?\s*=\s*([a-z]{1,16})\b")
+_DKIM_DOMAIN: Final = re.compile(r"(?i)\bheader\.d\s*=\s*([^\s;]{1,255})")
+MAX_RESULTS: Final = 8
+_ID_DOMAIN: Final = re.compile(r"@([^\s<>@\[\]]{1,255})")  # msg-id, RFC 5322 section 3.6.4
 
 
 def bucket(count: int) -> str:
@@ -68,10 +84,12 @@ def subject_tokens(top: Part) -> list[str]:
 
 
 def sender_tokens(top: Part) -> list[str]:
-    """Display-name words ("from:name:"), the From and Reply-To domains and how they relate."""
+    """Display-name words ("from:name:"), the From and Reply-To domains and how they relate,
+    and where the Message-ID was made ("mid:")."""
     name, address = split_address(top.field_text("from")[:1024])
     domain = address_domain(address)
     found = [f"from:dom:{registrable(domain)}" if domain else "from:dom:none"]
+    found.append(_message_id_token(top, domain))
     if not name.strip():
         found.append("from:noname")
     else:
@@ -98,3 +116,79 @@ def structure_tokens(top: Part) -> list[str]:
     hops = sum(1 for name, _ in top.fields if name == "received")
     found.append(f"hdr:hops:{bucket(hops)}")
     return found
+
+
+def relay_tokens(top: Part) -> list[str]:
+    """The newest ``RELAY_HOPS`` relays: "rcvd:dom:<domain>" of each one's reverse name,
+    "rcvd:no-rdns" for an address without one, and for the newest hop (the client our own
+    server talked to) whether its HELO name is an address or another domain than its
+    reverse name ("rcvd:helo-ip", "rcvd:helo-differs", "rcvd:helo-matches")."""
+    hops = [value for name, value in top.fields if name == "received"][:RELAY_HOPS]
+    found: list[str] = []
+    for number, raw in enumerate(hops):
+        text = raw[:MAX_FIELD_BYTES].decode("latin-1")
+        clause = _RECEIVED_FROM.match(text)
+        if clause is None:
+            continue  # "by ..." only, or a local delivery: no relay named
+        info = _TCP_INFO.match(clause.group(2) or "")
+        reverse = info.group(1) if info and info.group(1) else ""
+        if not info or reverse.lower() == "unknown":
+            found.append("rcvd:no-rdns")
+            reverse = ""
+        host = clean_host(reverse)
+        if host and not is_ip(host):
+            found.append(f"rcvd:dom:{registrable(host)}")
+        if number == 0:
+            found.extend(_helo_tokens(clause.group(1), host))
+    return found
+
+
+def _helo_tokens(helo: str, reverse: str) -> list[str]:
+    name = clean_host(helo.strip("[]"))
+    if not name or is_ip(name) or helo.startswith("["):
+        return ["rcvd:helo-ip"]
+    if not reverse or is_ip(reverse):
+        return []
+    return [
+        "rcvd:helo-matches" if registrable(name) == registrable(reverse) else "rcvd:helo-differs"
+    ]
+
+
+def auth_tokens(top: Part) -> list[str]:
+    """ "auth:<method>:<result>" (spf, dkim, dmarc, ...) and "auth:dkim-pass:<domain>" from
+    the newest Authentication-Results field only: the one the server in front of us added,
+    which RFC 8601 section 5 asks to remove forged ones carrying its name; "auth:none" when
+    there is none."""
+    raw = top.field("authentication-results")
+    if raw is None:
+        return ["auth:none"]
+    text = raw[:MAX_FIELD_BYTES].decode("latin-1")
+    while True:  # comments nest (RFC 5322 section 3.2.2): innermost first
+        text, removed = _COMMENT.subn(" ", text)
+        if not removed:
+            break
+    found: list[str] = []
+    for clause in text.split(";")[1 : MAX_RESULTS + 1]:  # the first is the authserv-id
+        result = _RESULT.match(clause.strip())
+        if result is None:
+            continue
+        method, outcome = result.group(1).lower(), result.group(2).lower()
+        found.append(f"auth:{method}:{outcome}")
+        if method == "dkim" and outcome == "pass":
+            signer = _DKIM_DOMAIN.search(clause)
+            host = clean_host(signer.group(1)) if signer else ""
+            if host:
+                found.append(f"auth:dkim-pass:{registrable(host)}")
+    return found or ["auth:no-results"]
+
+
+def _message_id_token(top: Part, sender: str) -> str:
+    """ "mid:from-domain" when the Message-ID's domain is the From domain's, else
+    "mid:dom:<domain>"; "mid:none" when it is missing or has no domain."""
+    raw = top.field("message-id")
+    found = _ID_DOMAIN.search(raw[:1024].decode("latin-1")) if raw else None
+    host = clean_host(found.group(1)) if found else ""
+    if not host:
+        return "mid:none"
+    mine = registrable(host)
+    return "mid:from-domain" if sender and mine == registrable(sender) else f"mid:dom:{mine}"

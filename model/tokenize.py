@@ -7,6 +7,9 @@ subj:      subject words and shape (``subj:all-caps``, ``subj:reply``, ``subj:en
 from:      sender display-name words (``from:name:``), domain (``from:dom:``)
 rt:        reply-to domain (``rt:dom:``) and ``rt:same`` / ``rt:differs``
 hdr:       mailer family, names of fields present, relay-hop bucket
+rcvd:      the newest relays' reverse-name domains (``rcvd:dom:``), ``rcvd:no-rdns``, HELO
+auth:      the newest Authentication-Results: ``auth:spf:pass``, ``auth:dkim-pass:<domain>``
+mid:       where the Message-ID was made (``mid:from-domain``, ``mid:dom:``, ``mid:none``)
 ct:        content types, charsets (``ct:cs:``), transfer encodings (``ct:cte:``)
 att:       attachment file types (``att:ext:pdf``, ``att:ext2:pdf.exe``)
 mime:      structure (``mime:parts:3-4``, ``mime:html-only``) and trouble (``mime:limit-parts``)
@@ -33,7 +36,14 @@ import numpy as np
 from .charsets import decode_bytes
 from .domains import is_ip, registrable, text_hosts, url_host
 from .hashing import hash_tokens, sorted_unique, token_hashes
-from .header_tokens import bucket, sender_tokens, structure_tokens, subject_tokens
+from .header_tokens import (
+    auth_tokens,
+    bucket,
+    relay_tokens,
+    sender_tokens,
+    structure_tokens,
+    subject_tokens,
+)
 from .html_text import parse_html
 from .mime import Limits, Part, Walk, walk
 from .normalize import clean_text
@@ -41,11 +51,14 @@ from .pairs import osb_pair_hashes
 from .types import OWN_HEADER_PREFIX, TokenHashes
 from .words import osb_pairs, split_words
 
-TOKENIZER_VERSION: Final = 2
+TOKENIZER_VERSION: Final = 3
 """Bumped whenever a change makes the same message and options give different tokens.
 
 2: bigram hashes are mixed from their words' hashes (``pairs.py``), no longer BLAKE2b of the
-pair string; single tokens hash as in 1, so only bigram models differ."""
+pair string; single tokens hash as in 1, so only bigram models differ.
+3: "rcvd:", "auth:" and "mid:" tokens from the Received, Authentication-Results and
+Message-ID fields.  Every earlier token is made as before, so a model made with 2 keeps its
+meaning; the new tokens start unknown to it (neutral) and are learned from then on."""
 
 _BODY_TYPES: Final = frozenset({"text/plain", "text/html"})
 _MAX_EXT: Final = 8
@@ -225,7 +238,13 @@ def _collect(
         found["mime:limit-message"] = None
     limits = Limits(options.max_part_bytes, options.max_parts, options.max_depth)
     tree = walk(raw, limits, (OWN_HEADER_PREFIX, *options.ignore_headers))
-    for family in (subject_tokens, sender_tokens, structure_tokens):
+    for family in (
+        subject_tokens,
+        sender_tokens,
+        structure_tokens,
+        relay_tokens,
+        auth_tokens,
+    ):
         found.update(dict.fromkeys(family(tree.top)))
     found.update(dict.fromkeys(_structure(tree)))
     for part in tree.leaves:

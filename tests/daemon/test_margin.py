@@ -30,7 +30,7 @@ from mailweir.daemon.margin import (
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.settings import FeedbackSettings, PolicySettings
 from mailweir.model.hashing import message_digest
-from mailweir.model.tokenize import tokenize
+from mailweir.model.tokenize import TOKENIZER_VERSION, tokenize
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore, VerdictRecord
 
@@ -296,12 +296,13 @@ def test_open_model_keeps_a_words_model_of_tokenizer_version_1(tmp_path: Path) -
 
 
 def test_new_model_stamps_the_tokenizer_version(tmp_path: Path) -> None:
-    target = str(tmp_path / "v2.sqlite3")
+    target = str(tmp_path / "stamped.sqlite3")
     open_model(target, bigrams=True).close()
     opened = open_model(target)
     try:
         assert opened.options.bigrams
-        assert '"tokenizer_version": 2' in (opened.store.get_meta("tokenizer") or "")
+        stamp = f'"tokenizer_version": {TOKENIZER_VERSION}'
+        assert stamp in (opened.store.get_meta("tokenizer") or "")
     finally:
         opened.close()
 
