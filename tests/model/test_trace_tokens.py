@@ -12,6 +12,8 @@ Appendix B.  Addresses are from the documentation ranges of RFC 5737.
 from __future__ import annotations
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from mailweir.model.header_tokens import auth_tokens, relay_tokens, sender_tokens
 from mailweir.model.mime import Limits, walk
@@ -149,3 +151,26 @@ def test_trace_tokens_reach_the_message_tokens() -> None:
         "auth:dkim-pass:vetsupply.example",
         "mid:from-domain",
     } <= found
+
+
+_FIELD_TEXT = st.text(
+    st.characters(blacklist_categories=("Cs",), blacklist_characters="\r\n"), max_size=400
+)
+
+
+@given(received=_FIELD_TEXT, results=_FIELD_TEXT, message_id=_FIELD_TEXT)
+@settings(max_examples=300, deadline=None)
+def test_trace_tokens_never_fail_on_any_field_text(
+    received: str, results: str, message_id: str
+) -> None:
+    """Whatever the fields hold, these families add tokens or nothing; a failure inside the
+    tokenizer would show as "mime:failed"."""
+    raw = (
+        f"Received: {received}\r\nReceived: {received}\r\n"
+        f"Authentication-Results: {results}\r\nMessage-ID: {message_id}\r\n"
+        "From: Orders <orders@vetsupply.example>\r\nSubject: Order\r\n" + BODY
+    ).encode("utf-8")
+    found = tokens(raw)
+    assert "mime:failed" not in found
+    assert sum(t.startswith("rcvd:dom:") for t in found) <= 2
+    assert "order" in found  # the body is still read
