@@ -114,14 +114,16 @@ def _when(at: float | None, missing: str = "never") -> str:
 
 
 async def _reachability(settings: Settings) -> list[Reachability]:
-    found = [await _greet(settings.next_hop.address)]
+    helo = settings.next_hop.helo_name or settings.smtp.hostname or socket.getfqdn()
+    found = [await _greet(settings.next_hop.address, helo, settings.next_hop.send_xforward)]
     found.append(_bindable("smtp.listen", settings.smtp.listen))
     found.append(_bindable("http.listen", settings.http.listen))
     return found
 
 
-async def _greet(address: HostPort) -> Reachability:
-    """Connect, read the greeting (RFC 5321 section 4.3.1: 220 ...), say QUIT."""
+async def _greet(address: HostPort, helo: str, xforward: bool) -> Reachability:
+    """Connect, read the greeting (RFC 5321 section 4.3.1: 220 ...), say EHLO to see whether
+    it offers XFORWARD (when ``next_hop.send_xforward`` is on), say QUIT."""
     what = "next_hop.address"
     try:
         reader, writer = await asyncio.wait_for(
@@ -129,17 +131,44 @@ async def _greet(address: HostPort) -> Reachability:
         )
     except (OSError, TimeoutError) as exc:
         return Reachability(what, str(address), False, f"cannot connect: {exc or 'timeout'}")
+    greeting, offers = b"", None
     try:
         greeting = await asyncio.wait_for(reader.readline(), CONNECT_TIMEOUT)
+        if xforward and greeting.startswith(b"220"):
+            writer.write(b"EHLO " + helo.encode("ascii", "replace") + b"\r\n")
+            offers = await asyncio.wait_for(_extensions(reader), CONNECT_TIMEOUT)
         writer.write(b"QUIT\r\n")
         await writer.drain()
     except (OSError, TimeoutError):
-        greeting = b""
+        pass  # what was read so far is the answer
     finally:
         writer.close()
     text = greeting.decode("ascii", "replace").strip()
     ok = text.startswith("220")
-    return Reachability(what, str(address), ok, text or "no greeting within 5 s")
+    detail = text or "no greeting within 5 s"
+    if ok and offers is not None:
+        detail += (
+            "; offers XFORWARD: its log will name each message's client"
+            if "XFORWARD" in offers
+            else "; no XFORWARD offered to us: its log will name mailweir as the client "
+            "(Postfix: smtpd_authorized_xforward_hosts)"
+        )
+    return Reachability(what, str(address), ok, detail)
+
+
+async def _extensions(reader: asyncio.StreamReader) -> list[str]:
+    """The keywords of a (multi-line) EHLO reply, upper-cased; none if it is not 250."""
+    found = []
+    for _ in range(100):  # bounded: a reply longer than this is not one we can use
+        line = (await reader.readline()).decode("ascii", "replace")
+        if not line.startswith("250"):
+            return []
+        words = line[4:].split()
+        if words:
+            found.append(words[0].upper())
+        if line[3:4] != "-":
+            break
+    return found[1:]  # the first line names the server
 
 
 def _bindable(what: str, address: HostPort) -> Reachability:

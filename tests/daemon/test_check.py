@@ -140,6 +140,11 @@ async def test_check_connect_greets_the_next_hop(
     assert status == 0, report
     hop = report["connect"][0]
     assert hop["ok"] and hop["detail"].startswith("220 mx.harbourlane.example")
+    assert "no XFORWARD offered to us" in hop["detail"]
+    next_hop.behaviour.offer_xforward = "NAME ADDR PROTO HELO"
+    await asyncio.to_thread(cli.main, args)
+    hop = json.loads(capsys.readouterr().out)["connect"][0]
+    assert hop["ok"] and "offers XFORWARD" in hop["detail"], hop
     config.write_text(config.read_text().replace(str(next_hop.address), f"127.0.0.1:{free_port()}"))
     status = await asyncio.to_thread(cli.main, args)
     report = json.loads(capsys.readouterr().out)
