@@ -27,7 +27,7 @@ _FORWARD: Final = re.compile(r"(?i)^\s*(fwd?|wg|tr|vs)\s*:")
 # address has none).
 _RECEIVED_FROM: Final = re.compile(r"(?i)^\s*from\s+(\S{1,255})(?:\s+\(([^()]{0,600})\))?")
 _TCP_INFO: Final = re.compile(
-    r"^\s*([^\s\[\]]{1,255})?\s*\[([0-9a-fA-F.:]{1,60}|IPv6:[0-9a-fA-F.:]{1,60})\]"
+    r"^\s*([^\s\[\]]{1,255})?\s*\[([0-9a-fA-F.:]{1,60}|(?i:ipv6):[0-9a-fA-F.:]{1,60})\]"
 )
 RELAY_HOPS: Final = 2  # the newest Received fields read: the hops nearest our own server
 # Authentication-Results (RFC 8601 section 2.2): "authserv-id; method=result ptype.prop=value".
@@ -35,6 +35,8 @@ _COMMENT: Final = re.compile(r"\([^()]*\)")
 _RESULT: Final = re.compile(r"(?i)^([a-z][a-z0-9-]{0,15})(?:/[0-9]+)?\s*=\s*([a-z]{1,16})\b")
 _DKIM_DOMAIN: Final = re.compile(r"(?i)\bheader\.d\s*=\s*([^\s;]{1,255})")
 MAX_RESULTS: Final = 8
+MAX_RESULTS_TEXT: Final = 4096  # characters of the field read; results come first
+MAX_COMMENT_DEPTH: Final = 8  # nesting undone; deeper is junk, and each level is one pass
 _ID_DOMAIN: Final = re.compile(r"@([^\s<>@\[\]]{1,255})")  # msg-id, RFC 5322 section 3.6.4
 
 
@@ -162,8 +164,8 @@ def auth_tokens(top: Part) -> list[str]:
     raw = top.field("authentication-results")
     if raw is None:
         return ["auth:none"]
-    text = raw[:MAX_FIELD_BYTES].decode("latin-1")
-    while True:  # comments nest (RFC 5322 section 3.2.2): innermost first
+    text = raw[:MAX_RESULTS_TEXT].decode("latin-1")
+    for _ in range(MAX_COMMENT_DEPTH):  # comments nest (RFC 5322 section 3.2.2): innermost first
         text, removed = _COMMENT.subn(" ", text)
         if not removed:
             break

@@ -51,6 +51,11 @@ def top(*fields: str) -> object:
             f" [IPv6:2001:db8::25]) {OURS}",
             ["rcvd:dom:coastal-linen.example", "rcvd:helo-matches"],
         ),
+        # An IPv6 literal written in lower case.
+        (
+            f"from mail.vetsupply.example (mail.vetsupply.example [ipv6:2001:db8::7]) {OURS}",
+            ["rcvd:dom:vetsupply.example", "rcvd:helo-matches"],
+        ),
         # Local submission: no "from" clause names a relay.
         ("by mx.harbourlane.example (Postfix, from userid 1000) id 4QhL2x; Wed, 2 Dec 2026", []),
     ],
@@ -86,6 +91,20 @@ def test_auth_tokens_read_each_method_and_the_dkim_signer() -> None:
         "auth:dkim-pass:vetsupply.example",
         "auth:dmarc:pass",
     ]
+
+
+def test_auth_tokens_undo_nested_comments_and_give_up_on_junk() -> None:
+    nested = top(
+        "Authentication-Results: mx.harbourlane.example; dkim=pass (key (2048 (rsa)); ok)"
+        " header.d=vetsupply.example"
+    )
+    assert auth_tokens(nested) == ["auth:dkim:pass", "auth:dkim-pass:vetsupply.example"]
+    # Nesting deeper than anyone writes is junk: read nothing from it, in bounded passes.
+    deep = "(" * 20 + "x" + ")" * 20
+    junk = top(
+        f"Authentication-Results: mx.harbourlane.example; {deep} dkim=pass header.d=x.example"
+    )
+    assert auth_tokens(junk) == ["auth:no-results"]
 
 
 def test_auth_tokens_read_only_the_newest_field() -> None:
