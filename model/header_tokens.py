@@ -2,7 +2,7 @@
 the relays the message came through, its authentication results and its Message-ID.
 
 Prefixes: "subj:" subject words and shape, "from:" sender, "rt:" reply-to, "rcvd:" relays,
-"auth:" authentication results, "mid:" Message-ID, "hdr:" the rest.
+"auth:" authentication results, "mid:" Message-ID, "list:" mailing list, "hdr:" the rest.
 """
 
 from __future__ import annotations
@@ -38,6 +38,8 @@ MAX_RESULTS: Final = 8
 MAX_RESULTS_TEXT: Final = 4096  # characters of the field read; results come first
 MAX_COMMENT_DEPTH: Final = 8  # nesting undone; deeper is junk, and each level is one pass
 _ID_DOMAIN: Final = re.compile(r"@([^\s<>@\[\]]{1,255})")  # msg-id, RFC 5322 section 3.6.4
+_LIST_ID: Final = re.compile(r"<([^<>\s]{1,255})>")  # RFC 2919: "phrase <label.namespace>"
+_PRECEDENCE: Final = frozenset({"bulk", "list", "junk"})  # common practice, no source
 
 
 def bucket(count: int) -> str:
@@ -109,7 +111,8 @@ def sender_tokens(top: Part) -> list[str]:
 
 
 def structure_tokens(top: Part) -> list[str]:
-    """Mailer family, the names of the fields present, and the number of relay hops."""
+    """Mailer family, the names of the fields present, the number of relay hops, and for list
+    mail the list's domain ("list:dom:", from List-Id, RFC 2919) and a Precedence value."""
     mailer = (top.field_text("x-mailer") or top.field_text("user-agent"))[:200].lower()
     family = _MAILER_FAMILY.search(mailer)
     found = [f"hdr:mailer:{family.group(0)}" if family else "hdr:mailer:none"]
@@ -117,6 +120,15 @@ def structure_tokens(top: Part) -> list[str]:
     found.extend(f"hdr:field:{name}" for name in names)
     hops = sum(1 for name, _ in top.fields if name == "received")
     found.append(f"hdr:hops:{bucket(hops)}")
+    if "list-id" in names:
+        listed = _LIST_ID.search((top.field("list-id") or b"")[:1024].decode("latin-1"))
+        host = clean_host(listed.group(1)) if listed else ""
+        if host and "." in host:
+            found.append(f"list:dom:{registrable(host)}")
+    if "precedence" in names:
+        value = (top.field("precedence") or b"")[:40].decode("latin-1").strip().lower()
+        if value in _PRECEDENCE:
+            found.append(f"hdr:precedence:{value}")
     return found
 
 

@@ -6,10 +6,11 @@ Token families (body words carry no prefix):
 subj:      subject words and shape (``subj:all-caps``, ``subj:reply``, ``subj:encoded``)
 from:      sender display-name words (``from:name:``), domain (``from:dom:``)
 rt:        reply-to domain (``rt:dom:``) and ``rt:same`` / ``rt:differs``
-hdr:       mailer family, names of fields present, relay-hop bucket
+hdr:       mailer family, names of fields present, relay-hop bucket, Precedence
 rcvd:      the newest relays' reverse-name domains (``rcvd:dom:``), ``rcvd:no-rdns``, HELO
 auth:      the newest Authentication-Results: ``auth:spf:pass``, ``auth:dkim-pass:<domain>``
 mid:       where the Message-ID was made (``mid:from-domain``, ``mid:dom:``, ``mid:none``)
+list:      a mailing list's domain from List-Id (``list:dom:``)
 ct:        content types, charsets (``ct:cs:``), transfer encodings (``ct:cte:``)
 att:       attachment file types (``att:ext:pdf``, ``att:ext2:pdf.exe``)
 mime:      structure (``mime:parts:3-4``, ``mime:html-only``) and trouble (``mime:limit-parts``)
@@ -56,9 +57,10 @@ TOKENIZER_VERSION: Final = 3
 
 2: bigram hashes are mixed from their words' hashes (``pairs.py``), no longer BLAKE2b of the
 pair string; single tokens hash as in 1, so only bigram models differ.
-3: "rcvd:", "auth:" and "mid:" tokens from the Received, Authentication-Results and
-Message-ID fields.  Every earlier token is made as before, so a model made with 2 keeps its
-meaning; the new tokens start unknown to it (neutral) and are learned from then on."""
+3: "rcvd:", "auth:", "mid:" and "list:" tokens from the Received, Authentication-Results,
+Message-ID and List-Id fields, and "hdr:precedence:".  Every earlier token is made as before,
+so a model made with 2 keeps its meaning; the new tokens start unknown to it (neutral) and are
+learned from then on."""
 
 _BODY_TYPES: Final = frozenset({"text/plain", "text/html"})
 _MAX_EXT: Final = 8

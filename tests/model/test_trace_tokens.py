@@ -1,12 +1,13 @@
-"""Relay, authentication-result and Message-ID tokens (model/header_tokens.py) on header
-sections written for the Harbour Lane Veterinary Practice scenario.
+"""Relay, authentication-result, Message-ID and mailing-list tokens (model/header_tokens.py)
+on header sections written for the Harbour Lane Veterinary Practice scenario.
 
 Received fields follow RFC 5321 section 4.4 in the form the common servers write it
 ("from <HELO> (<reverse name> [<address>]) by ...", reverse name "unknown" when the address
 has none; that form from memory of Postfix's, no other source).  Authentication-Results
 follows RFC 8601 section 2.2 (authserv-id, then "method=result" clauses with properties such
 as header.d, comments allowed anywhere); the examples are ours, in the style of RFC 8601
-Appendix B.  Addresses are from the documentation ranges of RFC 5737.
+Appendix B.  List-Id follows RFC 2919 section 3 ("phrase <list-label.namespace>").  Addresses
+are from the documentation ranges of RFC 5737.
 """
 
 from __future__ import annotations
@@ -15,7 +16,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from mailweir.model.header_tokens import auth_tokens, relay_tokens, sender_tokens
+from mailweir.model.header_tokens import (
+    auth_tokens,
+    relay_tokens,
+    sender_tokens,
+    structure_tokens,
+)
 from mailweir.model.mime import Limits, walk
 from mailweir.model.tokenize import tokens
 
@@ -152,6 +158,23 @@ def test_auth_tokens_without_results(fields: tuple[str, ...], expected: list[str
 )
 def test_message_id_tokens(fields: tuple[str, ...], expected: list[str]) -> None:
     assert [t for t in sender_tokens(top(*fields)) if t.startswith("mid:")] == expected
+
+
+@pytest.mark.parametrize(
+    "fields, expected",
+    [
+        (
+            ("List-Id: Practice news from VetSupply <news.vetsupply.example>", "Precedence: bulk"),
+            ["list:dom:vetsupply.example", "hdr:precedence:bulk"],
+        ),
+        (("List-Id: <weekly.offers.bulk.example>",), ["list:dom:bulk.example"]),
+        (("List-Id: no angle brackets here", "Precedence: first-class"), []),
+        ((), []),
+    ],
+)
+def test_list_tokens(fields: tuple[str, ...], expected: list[str]) -> None:
+    found = structure_tokens(top(*fields, "Subject: News"))
+    assert [t for t in found if t.startswith(("list:", "hdr:precedence:"))] == expected
 
 
 def test_trace_tokens_reach_the_message_tokens() -> None:
