@@ -263,7 +263,7 @@ class Upkeep:
             for task in TASKS:
                 if task in due and due[task] <= time.time():
                     result = await self.run(task, every[task])
-                    if result.due is not None:  # left to another process until then
+                    if result.skipped and result.due is not None:  # another process's
                         due[task] = max(result.due, time.time() + 1.0)
                         continue
                     wait = every[task] if result.ok else min(every[task], RETRY_AFTER)
