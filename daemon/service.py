@@ -43,7 +43,7 @@ from mailweir.daemon.settings import HostPort, Settings
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
 from mailweir.daemon.upkeep import Upkeep
 from mailweir.daemon.verdict_log import VerdictLog
-from mailweir.store.memory import limit_malloc_arenas
+from mailweir.store.memory import limit_malloc_arenas, map_large_blocks
 
 log = logging.getLogger("mailweir.service")
 
@@ -478,6 +478,7 @@ def run_command(args: argparse.Namespace) -> int:
         return 2
     configure_logging(settings.log)
     limit_malloc_arenas()  # before asyncio.run starts any thread
+    map_large_blocks()
     return asyncio.run(_serve(settings, source))
 
 

@@ -1,5 +1,5 @@
-"""glibc allocator knobs (store/memory.py), checked in child processes: an arena cap holds for
-the whole process, so each case gets a fresh interpreter."""
+"""glibc allocator knobs (store/memory.py), checked in child processes: each holds for the whole
+process, so each case gets a fresh interpreter."""
 
 from __future__ import annotations
 
@@ -70,3 +70,50 @@ def test_limit_malloc_arenas_leaves_an_administrators_setting_alone() -> None:
     answer, heaps = _heaps("cap", MALLOC_ARENA_MAX="4")
     assert answer == "False"
     assert 2 < heaps <= 4
+
+
+# Forty 100 KB blocks held at once, then glibc's report gives how many blocks are mappings.
+MAPPED_CHILD = """
+import ctypes, os, sys, tempfile
+from mailweir.store.memory import map_large_blocks
+print(map_large_blocks() if sys.argv[1] == "map" else "-")
+held = [bytearray(100 * 1024) for _ in range(40)]
+libc = ctypes.CDLL(None)
+libc.fopen.restype = ctypes.c_void_p
+fd, path = tempfile.mkstemp()
+stream = ctypes.c_void_p(libc.fopen(path.encode(), b"w"))
+libc.malloc_info(0, stream)
+libc.fclose(stream)
+report = open(path).read()
+os.unlink(path)
+print(report.split('<total type="mmap" count="')[1].split('"')[0])
+"""
+
+
+def _mapped(mode: str, **env: str) -> tuple[str, int]:
+    environment = {k: v for k, v in os.environ.items() if k != "MALLOC_MMAP_THRESHOLD_"} | env
+    out = subprocess.run(
+        [sys.executable, "-c", MAPPED_CHILD, mode],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        env=environment,
+        check=True,
+    ).stdout.split()
+    return out[0], int(out[1])
+
+
+def test_map_large_blocks_gives_a_large_message_buffer_its_own_mapping() -> None:
+    # glibc's default threshold (128 KiB, from memory) keeps 100 KB blocks in the heap,
+    # which keeps their pages after they are freed; mapped ones go back when freed.  glibc
+    # still serves a large block from free heap space when it has some, so not every one is.
+    unmapped = _mapped("none")[1]
+    answer, mapped = _mapped("map")
+    assert answer == "True"
+    assert unmapped < 10 < 30 <= mapped
+
+
+def test_map_large_blocks_leaves_an_administrators_setting_alone() -> None:
+    answer, mapped = _mapped("map", MALLOC_MMAP_THRESHOLD_="1048576")
+    assert answer == "False"
+    assert mapped < 10
