@@ -93,7 +93,7 @@ def _add_learning_commands(sub: argparse._SubParsersAction[argparse.ArgumentPars
         "--bigrams",
         action=argparse.BooleanOptionalAction,
         default=None,
-        help="orthogonal sparse bigrams; fixed when a model is created",
+        help="word pairs (adjacent words) beside the words; fixed when a model is created",
     )
     train.add_argument("--method", help="scoring method to stamp on a new model")
     train.add_argument(

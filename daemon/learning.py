@@ -64,6 +64,7 @@ class Stamped(enum.Enum):
 STAMPED: Final = Stamped.MARGIN
 VERSION_KEY = "tokenizer_version"  # in the tokenizer stamp
 PAIR_HASHES_SINCE = 2  # bigram hashes mixed from word hashes (model/pairs.py)
+LEGACY_BIGRAM_WINDOW = 5  # the default window until tokenizer version 3's models
 
 
 class ModelMismatch(Exception):
@@ -91,6 +92,7 @@ def options_from_json(text: str) -> TokenizerOptions:
     values = json.loads(text)
     fields = {f.name for f in dataclasses.fields(TokenizerOptions)}
     known = {k: tuple(v) if isinstance(v, list) else v for k, v in values.items() if k in fields}
+    known.setdefault("bigram_window", LEGACY_BIGRAM_WINDOW)  # a stamp keeps its own window
     options = TokenizerOptions(**known)
     version = int(values.get(VERSION_KEY, 1))  # stamps before version 2 carried no version
     if options.bigrams and version < PAIR_HASHES_SINCE:

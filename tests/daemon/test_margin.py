@@ -307,6 +307,29 @@ def test_new_model_stamps_the_tokenizer_version(tmp_path: Path) -> None:
         opened.close()
 
 
+def test_new_bigram_model_pairs_adjacent_words_and_an_older_one_keeps_its_window(
+    tmp_path: Path,
+) -> None:
+    # bench/ACCURACY.md, "Bigram window": 2 replayed best; a model made with 5 stays at 5,
+    # stamped (version 2) or not (a stamp without the key predates the change of default).
+    new = str(tmp_path / "new.sqlite3")
+    open_model(new, bigrams=True).close()
+    stamped = str(tmp_path / "stamped5.sqlite3")
+    store = ModelStore.open(stamped)
+    store.set_meta("tokenizer", '{"bigrams": true, "bigram_window": 5, "tokenizer_version": 2}')
+    store.close()
+    unstamped = str(tmp_path / "unstamped.sqlite3")
+    store = ModelStore.open(unstamped)
+    store.set_meta("tokenizer", '{"bigrams": true, "tokenizer_version": 2}')
+    store.close()
+    windows = []
+    for target in (new, stamped, unstamped):
+        opened = open_model(target)
+        windows.append(opened.options.bigram_window)
+        opened.close()
+    assert windows == [2, 5, 5]
+
+
 def test_open_model_bigrams_fisher_combines_every_token(tmp_path: Path) -> None:
     # bench/ACCURACY.md: with bigrams the 25-token cap cost 3x in (1-AUC)%; words keep it.
     bigram = open_model(str(tmp_path / "osb.sqlite3"), bigrams=True)
