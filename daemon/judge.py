@@ -92,7 +92,7 @@ import multiprocessing
 import os
 import time
 from collections import Counter
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, Final, Literal
 
@@ -102,6 +102,7 @@ from mailweir.daemon.log_setup import tag_message
 from mailweir.daemon.settings import PolicySettings, Settings
 from mailweir.model.hashing import limit_digest_cache
 from mailweir.model.nb import NaiveBayes, Score
+from mailweir.model.token_texts import TokenTexts
 from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens_and_hashes
 from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
 
@@ -158,15 +159,16 @@ def band_for(probability: float, policy: PolicySettings) -> Literal["ham", "susp
 # -- CPU steps: module-level functions, so a process pool can run them too ------------------
 
 
-def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, list[str]]:
+def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, TokenTexts]:
     """Return the message's unique sorted hashes and one token text per hash (same order)."""
-    # Each word hashed once (through the digest cache); bigram hashes mixed from word hashes.
+    # Each word hashed once (through the digest cache); bigram hashes mixed from word hashes,
+    # and a bigram's text made only if it is named as evidence.
     words, aligned = tokens_and_hashes(raw, options)
     order = aligned.argsort(kind="stable")
     ordered = aligned[order]
     first = np.ones(len(ordered), dtype=np.bool_)  # the first word of each hash keeps it
     np.not_equal(ordered[1:], ordered[:-1], out=first[1:])
-    return ordered[first], [words[i] for i in order[first].tolist()]
+    return ordered[first], words.take(order[first])
 
 
 def score_step(
@@ -377,7 +379,7 @@ class Judge:
         return self._score_here(hashes, texts, min_trained, time.perf_counter() - started)
 
     def _score_here(
-        self, hashes: TokenHashes, texts: list[str], min_trained: int, parse_seconds: float
+        self, hashes: TokenHashes, texts: Sequence[str], min_trained: int, parse_seconds: float
     ) -> _Steps:
         """Look up and score in the calling worker thread (None score: the guard holds)."""
         started = time.perf_counter()
@@ -387,7 +389,7 @@ class Judge:
     def _scored(
         self,
         hashes: TokenHashes,
-        texts: list[str],
+        texts: Sequence[str],
         view: _ModelView,
         parse_seconds: float,
         started: float,
@@ -421,7 +423,7 @@ class Judge:
 
 
 def _evidence_text(
-    score: Score, hashes: TokenHashes, texts: list[str]
+    score: Score, hashes: TokenHashes, texts: Sequence[str]
 ) -> tuple[tuple[str, float], ...]:
     """Name each evidence hash by its token text, strongest first across both directions."""
     ranked = sorted(score.evidence, key=lambda e: (-abs(e.weight), e.token_hash))

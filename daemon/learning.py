@@ -37,6 +37,7 @@ from mailweir.daemon.margin import (
 from mailweir.daemon.sources import read_messages
 from mailweir.model.hashing import message_digest, sorted_unique
 from mailweir.model.nb import NaiveBayes, Score, make_scorer
+from mailweir.model.token_texts import TokenTexts
 from mailweir.model.tokenize import (
     DEFAULT_OPTIONS,
     TOKENIZER_VERSION,
@@ -174,13 +175,13 @@ def _tokenizer_options(store: ModelStore, bigrams: bool | None) -> TokenizerOpti
     return options
 
 
-def message_hashes(model: OpenModel, raw: bytes) -> tuple[TokenHashes, list[str]]:
+def message_hashes(model: OpenModel, raw: bytes) -> tuple[TokenHashes, TokenTexts]:
     """The message's sorted unique hashes, and its token texts (to name evidence)."""
     words, aligned = tokens_and_hashes(raw, model.options)
     return sorted_unique(aligned), words
 
 
-def score_message(model: OpenModel, raw: bytes, n_evidence: int = 8) -> tuple[Score, list[str]]:
+def score_message(model: OpenModel, raw: bytes, n_evidence: int = 8) -> tuple[Score, TokenTexts]:
     """Score one message with the stored counts; also return its token texts for explaining."""
     hashes, words = message_hashes(model, raw)
     counts = model.store.lookup(hashes)

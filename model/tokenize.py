@@ -49,6 +49,7 @@ from .html_text import parse_html
 from .mime import Limits, Part, Walk, walk
 from .normalize import clean_text
 from .pairs import osb_pair_hashes
+from .token_texts import TokenTexts
 from .types import OWN_HEADER_PREFIX, TokenHashes
 from .words import osb_pairs, split_words
 
@@ -178,37 +179,39 @@ def tokenize(raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS) -> TokenHa
 
 def tokens_and_hashes(
     raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS
-) -> tuple[list[str], TokenHashes]:
+) -> tuple[TokenTexts, TokenHashes]:
     """``tokens(raw, options)`` and the hash of each, aligned (for naming evidence).
 
     The same as ``token_hashes(tokens(raw, options))``, but bigram hashes come straight from
-    the word hashes (``pairs.py``) instead of being parsed back out of each pair's text.
+    the word hashes (``pairs.py``), and a bigram's text is made only when it is read
+    (``token_texts.py``): a judge reads the few it names.
 
     Returns
     -------
-    texts : list of str, length n <= options.max_tokens
+    texts : TokenTexts, length n <= options.max_tokens
+        A sequence equal to ``tokens(raw, options)``.
     hashes : TokenHashes, shape (n,)
         ``hashes[i]`` is ``token_hash(texts[i])``; not sorted, as ``tokens`` orders them.
     """
     found, sequences = _gather(raw, options)
-    texts = list(found)[: options.max_tokens]
-    hashes = [token_hashes(texts)]
-    room = options.max_tokens - len(texts)
-    if options.bigrams and room > 0:
-        pairs: dict[str, int] = {}
-        for words in sequences:
-            if len(pairs) >= room:
-                break
-            limit = options.max_tokens * 2
-            made = osb_pair_hashes(token_hashes(words), options.bigram_window)[:limit]
-            for text, value in zip(
-                osb_pairs(words, options.bigram_window)[:limit], made.tolist(), strict=True
-            ):
-                pairs.setdefault(text, value)
-        chosen = list(pairs.items())[:room]
-        texts += [text for text, _ in chosen]
-        hashes.append(np.array([value for _, value in chosen], dtype=np.int64))
-    return texts, np.concatenate(hashes)
+    singles = list(found)[: options.max_tokens]
+    hashes = token_hashes(singles)
+    room = options.max_tokens - len(singles)
+    if not (options.bigrams and room > 0 and sequences):
+        return TokenTexts(singles), hashes
+    limit = options.max_tokens * 2
+    made = [
+        osb_pair_hashes(token_hashes(words), options.bigram_window)[:limit] for words in sequences
+    ]
+    pairs = np.concatenate(made)
+    sizes = [len(each) for each in made]
+    part = np.repeat(np.arange(len(made), dtype=np.intp), sizes)
+    starts = np.repeat(np.cumsum([0, *sizes[:-1]]), sizes)
+    at = np.arange(len(pairs), dtype=np.intp) - starts  # place within its part's pairs
+    _, first = np.unique(pairs, return_index=True)
+    chosen = np.sort(first)[:room]  # the first ``room`` distinct pairs, as tokens adds them
+    texts = TokenTexts(singles, sequences, options.bigram_window, part[chosen], at[chosen])
+    return texts, np.concatenate([hashes, pairs[chosen]])
 
 
 def _pair_hashes(sequences: list[list[str]], window: int, room: int, per_part: int) -> TokenHashes:

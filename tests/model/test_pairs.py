@@ -156,6 +156,6 @@ def test_tokens_and_hashes_equal_hashing_the_texts() -> None:
         TokenizerOptions(bigrams=True, bigram_window=2),
     ):
         texts, hashes = tokens_and_hashes(raw, options)
-        assert texts == tokens(raw, options)
+        assert list(texts) == tokens(raw, options)
         assert hashes.tolist() == [token_hash(text) for text in texts]
         assert np.array_equal(token_hashes(texts), hashes)
