@@ -79,3 +79,19 @@ HINT_TEXT = st.text(st.sampled_from(list("ab1 0_.-!|é·5xZ\u00a0ß3@€~*\n")),
 def test_obfuscation_hints_find_what_their_plain_forms_find(text: str) -> None:
     assert bool(LEET_NEIGHBOUR.search(text)) == bool(PLAIN_LEET.search(text))
     assert bool(words._SEPARATED_HINT.search(text)) == bool(PLAIN_SEPARATED.search(text))
+
+
+# ASCII letters and every kind of character next to them, with a few beyond ASCII.
+WORD_TEXT = st.text(
+    st.sampled_from(list("aZq'’_09 -.\t\n\x7f\x00é日ß") + [chr(c) for c in range(32, 127)]),
+    max_size=40,
+)
+
+
+@settings(max_examples=3000, deadline=None)
+@given(WORD_TEXT)
+def test_ascii_word_pattern_finds_what_the_unicode_one_finds(text: str) -> None:
+    # The ASCII pattern runs only on ASCII text; over any text it must agree there.
+    assert words._words_in(text) == words._WORD.findall(text)
+    if text.isascii():
+        assert words._WORD_ASCII.findall(text) == words._WORD.findall(text)
