@@ -154,3 +154,16 @@ def test_spaced_runs_finds_what_finditer_finds(text: str) -> None:
     # Oracle: the plain left-to-right scan spaced_runs replaces.
     expected = [(m.start(), m.end()) for m in _SPACED.finditer(text)]
     assert [(m.start(), m.end()) for m in spaced_runs(text)] == expected
+
+
+@settings(max_examples=2000, deadline=None)
+@given(
+    st.text(alphabet="fre1Z9@$!|_ .-*+~\tab'x,\"(", max_size=120)
+    | st.lists(st.sampled_from(["f", "R", "3", "|", "ab", " ", "  ", ".", "-", "x_y", "\t"])).map(
+        "".join
+    )
+)
+def test_spaced_runs_of_ascii_text_find_what_the_unicode_pattern_finds(text: str) -> None:
+    # ASCII text takes the ASCII patterns; the Unicode pattern's own scan is the oracle.
+    expected = [(m.start(), m.end()) for m in _SPACED.finditer(text)]
+    assert [(m.start(), m.end()) for m in spaced_runs(text)] == expected
