@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import pytest
 from aiosmtplib import errors as smtp_errors
+from aiosmtplib.protocol import PERIOD_REGEX, normalize_message_line_endings
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from smtp_helpers import LOCAL, free_port, silent_server
 
 from mailweir.daemon import replies
@@ -12,6 +15,7 @@ from mailweir.daemon.relay import (
     MailParameters,
     NextHopSession,
     RelayTimeouts,
+    data_wire,
     error_for_answer,
     relay_errors,
 )
@@ -125,6 +129,22 @@ async def test_next_hop_session_resets_an_open_transaction_before_the_next(next_
     ]
 
 
+async def test_next_hop_session_data_refused_keeps_the_dialogue_in_step(next_hop):
+    # The next hop refuses DATA itself (no recipient was accepted): a permanent refusal with
+    # its own code, and the same connection then carries the next message.
+    session = client(next_hop.address)
+    await session.start("a@mail.example", MailParameters())
+    with pytest.raises(NextHopRejected) as refused:
+        await session.send(b"Subject: x\r\n\r\nx\r\n")
+    assert refused.value.reply.code == 503
+    await session.start("a@mail.example", MailParameters())
+    await session.add_recipient("b@harbourlane.example")
+    assert (await session.send(b"Subject: y\r\n\r\n.y\r\n")).code == 250
+    await session.close()
+    assert next_hop.connections == 1
+    assert [d.content for d in next_hop.deliveries] == [b"Subject: y\r\n\r\n.y\r\n"]
+
+
 async def test_next_hop_session_without_transaction_cannot_send():
     with pytest.raises(NextHopUnavailable):
         await client(HostPort(LOCAL, free_port())).send(b"x\r\n")
@@ -133,3 +153,18 @@ async def test_next_hop_session_without_transaction_cannot_send():
 def test_reply_text_with_undecodable_bytes_still_renders():
     text = b"Mailbox \xff full".decode("utf-8", "surrogateescape")
     assert str(replies.Reply(452, "4.2.2", text)) == "452 4.2.2 Mailbox ? full"
+
+
+# Lines of every kind a message may hold: dot lines, lone CR and LF, CRLF, bytes beyond ASCII.
+WIRE_BYTES = st.lists(
+    st.sampled_from([b".", b"..", b"x", b"Otis", b"\r\n", b"\n", b"\r", b" ", b"\xff", b".\r\n"]),
+    max_size=30,
+).map(b"".join)
+
+
+@settings(max_examples=3000, deadline=None)
+@given(WIRE_BYTES)
+def test_data_wire_is_what_aiosmtplib_sends(message: bytes) -> None:
+    # Oracle: aiosmtplib's own DATA transform (protocol.py, execute_data_command).
+    expected = PERIOD_REGEX.sub(b"..", normalize_message_line_endings(message)) + b".\r\n"
+    assert data_wire(message) == expected
