@@ -339,6 +339,7 @@ def cmd_stats(args: argparse.Namespace) -> int:
         round(stats.database_bytes / stats.tokens, 1) if stats.tokens else None
     )
     report["train_margin"] = margin.margin_text(model.margin)
+    report["token_kinds"] = learning.token_kinds(model.options)
     lines = [f"{key.replace('_', ' ')}: {value}" for key, value in report.items()]
     print_report(args, report, lines)
     return 0

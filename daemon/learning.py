@@ -135,6 +135,18 @@ def open_model(
         raise
 
 
+def token_kinds(options: TokenizerOptions) -> str:
+    """What a model's tokens are, in words ("words and header evidence", with any pairs)."""
+    if not options.bigrams:
+        return "words and header evidence"
+    if options.bigram_window == 2:
+        return "words, header evidence and adjacent word pairs"
+    return (
+        "words, header evidence and word pairs up to "
+        f"{options.bigram_window - 2} words apart (window {options.bigram_window})"
+    )
+
+
 def scorer_for(method: str, options: TokenizerOptions) -> NaiveBayes:
     """The scorer for a model: with bigrams, Fisher combines every non-neutral token.
 
@@ -377,6 +389,7 @@ __all__ = [
     "TrainResult",
     "open_model",
     "score_message",
+    "token_kinds",
     "train_from",
     "untrain_from",
 ]

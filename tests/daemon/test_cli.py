@@ -7,8 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from mailweir.daemon import cli, scenario
+from mailweir.daemon import cli, learning, scenario
 from mailweir.daemon.learning import ModelMismatch, open_model
+from mailweir.model.tokenize import TokenizerOptions
 
 
 def _write(folder: Path, messages: list[scenario.ScenarioMessage]) -> Path:
@@ -73,6 +74,23 @@ def test_untrain_restores_an_empty_model(
     _run(capsys, "untrain", str(ham), str(spam), "--db", db)
     stats = _run(capsys, "stats", "--db", db)
     assert (stats["tokens"], stats["ham_messages"], stats["spam_messages"]) == (0, 0, 0)
+
+
+def test_stats_names_the_kinds_of_token_the_model_counts(
+    tmp_path: Path, sorted_mail: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
+) -> None:
+    ham, _spam = sorted_mail
+    words, pairs = str(tmp_path / "words.sqlite3"), str(tmp_path / "pairs.sqlite3")
+    _run(capsys, "train", "--ham", str(ham), "--db", words)
+    _run(capsys, "train", "--ham", str(ham), "--db", pairs, "--bigrams")
+    assert _run(capsys, "stats", "--db", words)["token_kinds"] == "words and header evidence"
+    assert _run(capsys, "stats", "--db", pairs)["token_kinds"] == (
+        "words, header evidence and adjacent word pairs"
+    )
+    older = TokenizerOptions(bigrams=True, bigram_window=5)  # a bigram model made before window 2
+    assert learning.token_kinds(older) == (
+        "words, header evidence and word pairs up to 3 words apart (window 5)"
+    )
 
 
 def test_score_explains_with_token_text(
