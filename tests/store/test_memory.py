@@ -46,10 +46,12 @@ done.set()
 """
 
 
-def _heaps(mode: str, **env: str) -> tuple[str, int]:
-    environment = {k: v for k, v in os.environ.items() if k != "MALLOC_ARENA_MAX"} | env
+def _child(script: str, mode: str, variable: str, **env: str) -> tuple[str, int]:
+    """Run ``script`` in a fresh interpreter without the environment's own ``variable``
+    (plus ``env``); it prints what the knob returned, then a count."""
+    environment = {k: v for k, v in os.environ.items() if k != variable} | env
     out = subprocess.run(
-        [sys.executable, "-c", CHILD, mode],
+        [sys.executable, "-c", script, mode],
         capture_output=True,
         text=True,
         timeout=60,
@@ -57,6 +59,10 @@ def _heaps(mode: str, **env: str) -> tuple[str, int]:
         check=True,
     ).stdout.split()
     return out[0], int(out[1])
+
+
+def _heaps(mode: str, **env: str) -> tuple[str, int]:
+    return _child(CHILD, mode, "MALLOC_ARENA_MAX", **env)
 
 
 def test_limit_malloc_arenas_caps_the_heaps_threads_grow() -> None:
@@ -91,16 +97,7 @@ print(report.split('<total type="mmap" count="')[1].split('"')[0])
 
 
 def _mapped(mode: str, **env: str) -> tuple[str, int]:
-    environment = {k: v for k, v in os.environ.items() if k != "MALLOC_MMAP_THRESHOLD_"} | env
-    out = subprocess.run(
-        [sys.executable, "-c", MAPPED_CHILD, mode],
-        capture_output=True,
-        text=True,
-        timeout=60,
-        env=environment,
-        check=True,
-    ).stdout.split()
-    return out[0], int(out[1])
+    return _child(MAPPED_CHILD, mode, "MALLOC_MMAP_THRESHOLD_", **env)
 
 
 def test_map_large_blocks_gives_a_large_message_buffer_its_own_mapping() -> None:
