@@ -18,9 +18,27 @@ except (OSError, AttributeError):
 
 pytestmark = [pytest.mark.slow, pytest.mark.skipif(not GLIBC, reason="glibc's malloc only")]
 
-# Eight threads allocate at once, then glibc's own report (malloc_info, XML) counts its heaps.
-CHILD = """
-import ctypes, os, sys, tempfile, threading
+# glibc's own report of its heaps and mappings (malloc_info, XML), read in the child.
+MALLOC_REPORT = """
+import ctypes, os, sys, tempfile
+def malloc_report():
+    libc = ctypes.CDLL(None)
+    libc.fopen.restype = ctypes.c_void_p
+    fd, path = tempfile.mkstemp()
+    stream = ctypes.c_void_p(libc.fopen(path.encode(), b"w"))
+    libc.malloc_info(0, stream)
+    libc.fclose(stream)
+    with open(path) as report:
+        text = report.read()
+    os.unlink(path)
+    return text
+"""
+
+# Eight threads allocate at once, then the report counts glibc's heaps.
+CHILD = (
+    MALLOC_REPORT
+    + """
+import threading
 from mailweir.store.memory import limit_malloc_arenas
 print(limit_malloc_arenas() if sys.argv[1] == "cap" else "-")
 ready, done = threading.Barrier(9), threading.Event()
@@ -34,16 +52,10 @@ for thread in threads:
     thread.start()
 ready.wait()
 ready.wait()
-libc = ctypes.CDLL(None)
-libc.fopen.restype = ctypes.c_void_p
-fd, path = tempfile.mkstemp()
-stream = ctypes.c_void_p(libc.fopen(path.encode(), b"w"))
-libc.malloc_info(0, stream)
-libc.fclose(stream)
-print(open(path).read().count("<heap nr="))
-os.unlink(path)
+print(malloc_report().count("<heap nr="))
 done.set()
 """
+)
 
 
 def _child(script: str, mode: str, variable: str, **env: str) -> tuple[str, int]:
@@ -78,22 +90,16 @@ def test_limit_malloc_arenas_leaves_an_administrators_setting_alone() -> None:
     assert 2 < heaps <= 4
 
 
-# Forty 100 KB blocks held at once, then glibc's report gives how many blocks are mappings.
-MAPPED_CHILD = """
-import ctypes, os, sys, tempfile
+# Forty 100 KB blocks held at once, then the report gives how many blocks are mappings.
+MAPPED_CHILD = (
+    MALLOC_REPORT
+    + """
 from mailweir.store.memory import map_large_blocks
 print(map_large_blocks() if sys.argv[1] == "map" else "-")
 held = [bytearray(100 * 1024) for _ in range(40)]
-libc = ctypes.CDLL(None)
-libc.fopen.restype = ctypes.c_void_p
-fd, path = tempfile.mkstemp()
-stream = ctypes.c_void_p(libc.fopen(path.encode(), b"w"))
-libc.malloc_info(0, stream)
-libc.fclose(stream)
-report = open(path).read()
-os.unlink(path)
-print(report.split('<total type="mmap" count="')[1].split('"')[0])
+print(malloc_report().split('<total type="mmap" count="')[1].split('"')[0])
 """
+)
 
 
 def _mapped(mode: str, **env: str) -> tuple[str, int]:
