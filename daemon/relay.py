@@ -20,6 +20,7 @@ from dataclasses import dataclass
 
 import aiosmtplib
 from aiosmtplib import errors as smtp_errors
+from aiosmtplib.protocol import PERIOD_REGEX, normalize_message_line_endings
 
 from mailweir.daemon import replies, xforward
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
@@ -101,26 +102,21 @@ def relay_errors() -> Iterator[None]:
         raise NextHopUnavailable(str(exc), replies.NEXT_HOP_LOST) from exc
 
 
-_LINE_END = re.compile(rb"\r\n|\n|\r(?!\n)")
-_DOT_LINE = re.compile(rb"(?m)^\.")
-
-
 def data_wire(message: bytes) -> bytes:
     """``message`` as SMTP DATA carries it: each line ending CRLF, a line that starts with "."
     sent with one more (RFC 5321 section 4.5.2), then the lone dot.
 
-    The same bytes aiosmtplib's ``data`` sends, which rewrites every line ending and searches
-    every line start with regular expressions (31 µs for 4 KB, 0.74 ms for 100 KB).  A message
-    that arrived by SMTP needs neither step, and counting its CRs and LFs and looking for
-    "\n." tells so in a third of that.
+    aiosmtplib's ``data`` makes these bytes with its own two steps, which rewrite every line
+    ending and search every line start with regular expressions (31 µs for 4 KB, 0.74 ms for
+    100 KB).  A message that arrived by SMTP needs neither, and counting its CRs and LFs and
+    looking for "\n." tells so in a third of that; the steps run only when needed.
     """
     crlf = message.count(b"\r\n")
-    if message.count(b"\n") != crlf or message.count(b"\r") != crlf:
-        message = _LINE_END.sub(b"\r\n", message)
-    if not message.endswith(b"\r\n"):
-        message += b"\r\n"
+    lone = message.count(b"\n") != crlf or message.count(b"\r") != crlf  # a lone LF or CR
+    if lone or not message.endswith(b"\r\n"):
+        message = normalize_message_line_endings(message)
     if message.startswith(b".") or b"\n." in message:
-        message = _DOT_LINE.sub(b"..", message)
+        message = PERIOD_REGEX.sub(b"..", message)
     return message + b".\r\n"
 
 

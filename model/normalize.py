@@ -161,8 +161,8 @@ def spaced_runs(text: str) -> list[re.Match[str]]:
     overlap, so each is searched from one past the last).  Trying those starts in order, from
     the end of the previous run, finds what ``finditer`` finds.
     """
-    ascii = text.isascii()
-    hints, spaced = (_SPACED_HINT_ASCII, _SPACED_ASCII) if ascii else (_SPACED_HINT, _SPACED)
+    ascii_only = text.isascii()
+    hints, spaced = (_SPACED_HINT_ASCII, _SPACED_ASCII) if ascii_only else (_SPACED_HINT, _SPACED)
     starts: set[int] = set()
     at = 0
     while (hint := hints.search(text, at)) is not None:

@@ -33,6 +33,7 @@ from hashlib import blake2b
 from typing import Final
 
 import numpy as np
+import numpy.typing as npt
 
 from .charsets import decode_bytes
 from .domains import is_ip, registrable, text_hosts, url_host
@@ -173,7 +174,10 @@ def tokenize(raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS) -> TokenHa
     room = options.max_tokens - len(singles)
     parts = [hash_tokens(singles)]
     if room > 0 and sequences:
-        parts.append(_pair_hashes(sequences, options.bigram_window, room, options.max_tokens * 2))
+        pairs, chosen, _ = _first_pairs(
+            sequences, options.bigram_window, room, options.max_tokens * 2
+        )
+        parts.append(pairs[chosen])
     return sorted_unique(np.concatenate(parts))
 
 
@@ -199,30 +203,26 @@ def tokens_and_hashes(
     room = options.max_tokens - len(singles)
     if not (options.bigrams and room > 0 and sequences):
         return TokenTexts(singles), hashes
-    limit = options.max_tokens * 2
-    made = [
-        osb_pair_hashes(token_hashes(words), options.bigram_window)[:limit] for words in sequences
-    ]
-    pairs = np.concatenate(made)
-    sizes = [len(each) for each in made]
-    part = np.repeat(np.arange(len(made), dtype=np.intp), sizes)
-    starts = np.repeat(np.cumsum([0, *sizes[:-1]]), sizes)
-    at = np.arange(len(pairs), dtype=np.intp) - starts  # place within its part's pairs
-    _, first = np.unique(pairs, return_index=True)
-    chosen = np.sort(first)[:room]  # the first ``room`` distinct pairs, as tokens adds them
-    texts = TokenTexts(singles, sequences, options.bigram_window, part[chosen], at[chosen])
+    pairs, chosen, sizes = _first_pairs(
+        sequences, options.bigram_window, room, options.max_tokens * 2
+    )
+    ends = np.cumsum(sizes)
+    part = np.searchsorted(ends, chosen, side="right")  # the part each chosen pair is from
+    at = chosen - (ends - sizes)[part]  # and its place among that part's pairs
+    texts = TokenTexts(singles, sequences, options.bigram_window, part, at)
     return texts, np.concatenate([hashes, pairs[chosen]])
 
 
-def _pair_hashes(sequences: list[list[str]], window: int, room: int, per_part: int) -> TokenHashes:
-    """The first ``room`` distinct pair hashes in the order ``tokens`` adds pair strings."""
-    pairs = np.concatenate(
-        [osb_pair_hashes(token_hashes(words), window)[:per_part] for words in sequences]
-    )
-    distinct, first = np.unique(pairs, return_index=True)
-    if len(distinct) <= room:
-        return distinct
-    return pairs[np.sort(first)[:room]]
+def _first_pairs(
+    sequences: list[list[str]], window: int, room: int, per_part: int
+) -> tuple[TokenHashes, npt.NDArray[np.intp], npt.NDArray[np.intp]]:
+    """Every part's pair hashes in order (its first ``per_part``), the positions among them of
+    the first ``room`` distinct ones (the pairs ``tokens`` keeps), and each part's count."""
+    made = [osb_pair_hashes(token_hashes(words), window)[:per_part] for words in sequences]
+    pairs = np.concatenate(made)
+    _, first = np.unique(pairs, return_index=True)
+    sizes = np.array([len(each) for each in made], dtype=np.intp)
+    return pairs, np.sort(first)[:room], sizes
 
 
 def _gather(raw: bytes, options: TokenizerOptions) -> tuple[dict[str, None], list[list[str]]]:

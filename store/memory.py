@@ -15,10 +15,11 @@ DAEMON_MMAP_THRESHOLD = 64 * 1024
 
 
 @functools.cache
-def _malloc_trim() -> Callable[[int], int] | None:
+def _glibc(name: str) -> Callable[..., int] | None:
+    """glibc's function ``name`` (None elsewhere: nothing to call)."""
     try:  # the symbols the process already has: glibc's, on Linux
-        return ctypes.CDLL(None).malloc_trim  # type: ignore[no-any-return]
-    except (OSError, AttributeError):  # not glibc: nothing to call
+        return getattr(ctypes.CDLL(None), name)  # type: ignore[no-any-return]
+    except (OSError, AttributeError):
         return None
 
 
@@ -26,7 +27,7 @@ def release_free_memory() -> None:
     """glibc keeps the heap a bulk load grew (numpy's temporary arrays, the driver's rows)
     for later use, so the process stays as large as at its peak; ``malloc_trim(0)`` returns
     the free part.  Elsewhere this does nothing."""
-    trim = _malloc_trim()
+    trim = _glibc("malloc_trim")
     if trim is not None:
         trim(0)
 
@@ -58,10 +59,7 @@ def map_large_blocks(threshold: int = DAEMON_MMAP_THRESHOLD) -> bool:
 def _mallopt(variable: str, parameter: int, value: int) -> bool:
     """glibc's ``mallopt``, unless the environment already sets ``variable`` (False then, or
     when this is not glibc)."""
-    if os.environ.get(variable):
-        return False
-    try:
-        mallopt = ctypes.CDLL(None).mallopt
-    except (OSError, AttributeError):
+    mallopt = _glibc("mallopt")
+    if os.environ.get(variable) or mallopt is None:
         return False
     return bool(mallopt(parameter, value))
