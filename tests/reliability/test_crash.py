@@ -168,15 +168,24 @@ async def test_crash_sigkill_mid_transaction_loses_nothing(
     with daemon_process(config, log) as first:
         await wait_listening(smtp_port, first, log)
 
+        watching = False
+
         async def kill(sent: int) -> None:
-            """From a third of the way on, kill as soon as a transaction is open at the sink."""
-            nonlocal in_flight_at_kill
-            if sent < COUNT // 3 or first.poll() is not None:
+            """From a third of the way on, kill as soon as a transaction is open at the sink.
+
+            One client watches the sink (every millisecond, for at most 10 s) while the others
+            go on sending, so the kill waits for a transaction instead of hoping to meet one."""
+            nonlocal in_flight_at_kill, watching
+            if sent < COUNT // 3 or watching or first.poll() is not None:
                 return
-            in_flight_at_kill = sum(1 for p in sink.protocols if p.envelope.rcpt_tos)
-            if in_flight_at_kill or sent >= COUNT // 2:
-                os.kill(first.pid, signal.SIGKILL)
-                first.wait(10)
+            watching = True
+            for _ in range(10_000):
+                in_flight_at_kill = sum(1 for p in sink.protocols if p.envelope.rcpt_tos)
+                if in_flight_at_kill:
+                    break
+                await asyncio.sleep(0.001)
+            os.kill(first.pid, signal.SIGKILL)
+            first.wait(10)
 
         await upstream(smtp_port, messages, ledger, clients=CLIENTS, timeout=20, between=kill)
     assert first.returncode == -signal.SIGKILL
