@@ -35,6 +35,7 @@ from mailweir.daemon.feedback import FeedbackGate, FeedbackIntake
 from mailweir.daemon.http_side import FeedbackHandler
 from mailweir.daemon.judge import INLINE_BELOW, ON_LOOP_BELOW, Judge, make_executor
 from mailweir.daemon.log_setup import configure_logging
+from mailweir.daemon.memory_return import ReturnFreeMemory
 from mailweir.daemon.metrics import Metrics
 from mailweir.daemon.observing import Observing
 from mailweir.daemon.preload import KeepPreloaded
@@ -62,6 +63,7 @@ class Service:
         self.verdict_log: VerdictLog | None = None
         self.upkeep: Upkeep | None = None
         self.preload: KeepPreloaded | None = None
+        self.memory_return: ReturnFreeMemory | None = None
         self.quarantine: Quarantine | None = None
         self.digests: DigestSchedule | None = None
         self._quarantine_collector: QuarantineCollector | None = None
@@ -282,6 +284,9 @@ class Service:
         if model.preload:
             self.preload = KeepPreloaded(self.store)
             self.preload.start()
+        judge = self.judge
+        self.memory_return = ReturnFreeMemory(lambda: sum(judge.counts.values()))
+        self.memory_return.start()
         intake = FeedbackIntake(
             self.store,
             self.settings.feedback,
@@ -316,6 +321,9 @@ class Service:
         if self.preload is not None:
             await self.preload.stop()  # likewise
             self.preload = None
+        if self.memory_return is not None:
+            await self.memory_return.stop()
+            self.memory_return = None
         if self.verdict_log is not None:
             await self.verdict_log.close()
             self.verdict_log = None
