@@ -76,6 +76,27 @@ _SPACED_ASCII: Final = re.compile(
 _SPACED_HINT_ASCII: Final = re.compile(
     r"[ \t.\-_*+~]" + _UNIT_ASCII + r"[ \t.\-_*+~]{1,3}" + _UNIT_ASCII + r"[ \t.\-_*+~]"
 )
+# The ASCII hint searched faster: the text's bytes coded a byte each, separators as " ", units
+# as "u", anything else as "x", where the hint is the literal run " u" + " "{1,3} + "u ".  The
+# engine finds a literal prefix without entering its matcher at every separator, which the
+# character-set form did at each of a text's spaces (spaced_runs: 29 against 55 µs for the
+# development corpus's 4 KB mail).
+_SEPARATORS_ASCII: Final = b" \t.-_*+~"
+_UNITS_ASCII: Final = b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789@$!|"
+
+
+def _hint_code() -> bytes:
+    """The translation table of the coded hint: every byte to " ", "u" or "x"."""
+    table = bytearray(b"x" * 256)
+    for byte in _SEPARATORS_ASCII:
+        table[byte] = ord(" ")
+    for byte in _UNITS_ASCII:
+        table[byte] = ord("u")
+    return bytes(table)
+
+
+_HINT_CODE: Final = _hint_code()
+_SPACED_HINT_CODED: Final = re.compile(rb" u {1,3}u ")
 
 
 def clean_text(text: str) -> tuple[str, bool]:
@@ -161,11 +182,14 @@ def spaced_runs(text: str) -> list[re.Match[str]]:
     overlap, so each is searched from one past the last).  Trying those starts in order, from
     the end of the previous run, finds what ``finditer`` finds.
     """
-    ascii_only = text.isascii()
-    hints, spaced = (_SPACED_HINT_ASCII, _SPACED_ASCII) if ascii_only else (_SPACED_HINT, _SPACED)
+    if text.isascii():
+        hints, spaced = _SPACED_HINT_CODED, _SPACED_ASCII
+        searched: str | bytes = text.encode("ascii").translate(_HINT_CODE)  # same positions
+    else:
+        hints, spaced, searched = _SPACED_HINT, _SPACED, text
     starts: set[int] = set()
     at = 0
-    while (hint := hints.search(text, at)) is not None:
+    while (hint := hints.search(searched, at)) is not None:  # type: ignore[call-overload]
         at = hint.start() + 1
         starts.update(range(max(0, at - 4), at - 1))
     runs: list[re.Match[str]] = []

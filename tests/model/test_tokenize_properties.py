@@ -6,6 +6,7 @@ writer) from random trees: boundaries, nesting, transfer encodings and charsets.
 
 from __future__ import annotations
 
+import re
 from email.message import EmailMessage, Message
 from email.mime.multipart import MIMEMultipart
 from email.mime.text import MIMEText
@@ -15,7 +16,15 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from mailweir.model.hashing import hash_tokens
-from mailweir.model.normalize import _SPACED, _SPACED_HINT, spaced_runs, spaced_words
+from mailweir.model.normalize import (
+    _HINT_CODE,
+    _SPACED,
+    _SPACED_HINT,
+    _SPACED_HINT_ASCII,
+    _SPACED_HINT_CODED,
+    spaced_runs,
+    spaced_words,
+)
 from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens
 
 SMALL = TokenizerOptions(max_tokens=50, max_parts=6, max_depth=3, max_part_bytes=2000)
@@ -157,3 +166,24 @@ def test_spaced_runs_finds_what_finditer_finds(text: str) -> None:
     # for ASCII text, which spaced_runs searches with ASCII patterns).
     expected = [(m.start(), m.end()) for m in _SPACED.finditer(text)]
     assert [(m.start(), m.end()) for m in spaced_runs(text)] == expected
+
+
+def _hint_starts(pattern: re.Pattern[str] | re.Pattern[bytes], searched: str | bytes) -> list[int]:
+    """Where spaced_runs meets its hints: each searched from one past the last."""
+    starts, at = [], 0
+    while (hint := pattern.search(searched, at)) is not None:  # type: ignore[call-overload]
+        starts.append(hint.start())
+        at = hint.start() + 1
+    return starts
+
+
+@settings(max_examples=3000, deadline=None)
+@given(
+    st.text(st.sampled_from([chr(c) for c in range(128)]), max_size=60)
+    | st.lists(st.sampled_from([*SPACED_PIECES, "u", "x", "$", "!", "~", "\n", "'"])).map("".join)
+)
+def test_coded_hint_finds_what_the_ascii_hint_finds(text: str) -> None:
+    # spaced_runs searches ASCII text coded a byte each (separators " ", units "u"); the
+    # character-set hint over the text itself is the oracle.
+    coded = text.encode("ascii").translate(_HINT_CODE)
+    assert _hint_starts(_SPACED_HINT_CODED, coded) == _hint_starts(_SPACED_HINT_ASCII, text)
