@@ -34,6 +34,31 @@ _SIGNS: Final = "$€£¥"
 _CURRENCY_WORDS: Final = frozenset(word for word in _CURRENCY if word.isalpha())
 _NUMBER_THEN_WORD: Final = re.compile(r"\d\s?(?:usd|eur|gbp)")
 _MONEY_START: Final = re.compile(r"[$€£¥\d]\d*")  # a sign, or a run of digits from its first
+
+
+def _money_code() -> bytes:
+    """``_money_places``' translation table (ASCII; whitespace as ``str.isspace`` has it, as
+    ``\\s`` does in a str pattern)."""
+    table = bytearray(b"#" * 256)
+    for byte in range(128):
+        char = chr(byte)
+        if char.isdigit():
+            table[byte] = ord("9")
+        elif char in ".,":
+            table[byte] = ord(".")
+        elif char.isspace():
+            table[byte] = ord(" ")
+        elif char.isalpha() or char in "_$":
+            table[byte] = byte
+    return bytes(table)
+
+
+_MONEY_CODE: Final = _money_code()
+# A sign, or a digit whose run is followed by a sign or currency word: ``_MONEY`` in the coded
+# text, without its look-behind and word boundaries (so it finds a few places more, never fewer).
+# Two searches, each from a literal the engine skips to; as one alternation it tried every byte.
+_SIGN_PLACE: Final = re.compile(rb"\$")
+_DIGIT_PLACE: Final = re.compile(rb"9(?=[9.]* ?(?:\$|usd|eur|gbp))")
 # Cheap tests that decide whether the slower obfuscation checks run at all.
 _LEET_HINT: Final = LEET_NEIGHBOUR
 # "\b\w[sep]\w[sep]\w[sep]\w\b", written to start at the first separator (skipped to in C)
@@ -71,13 +96,49 @@ def _money_matches(text: str) -> list[tuple[str, str, str, str]]:
     ``_MONEY`` starts with a look-behind, so ``findall`` tries both branches at every
     character (about 0.3 µs each; "eur" inside "amateur" sent a fifth of the development
     corpus's messages through it).  A match holds a currency sign, or a digit followed by a
-    currency word; without either there is none.  Otherwise a match can only start at a sign
-    or at the first digit of a run (a later digit follows a word character, which the
-    look-behind refuses), so ``match`` is tried only there, and scanning resumes after each
-    match as ``findall`` does.
+    currency word; without either there is none.  Otherwise a match starts at a sign, or at a
+    digit whose run of digits, "." and "," is followed (after at most one space) by a sign or
+    a currency word.  In ASCII text (nearly all mail) ``match`` is tried only at those places
+    (``_money_places``), elsewhere at every sign and run of digits (``_money_scan``), in
+    order, and scanning resumes after each match as ``findall`` does.
     """
     if not any(sign in text for sign in _SIGNS) and not _NUMBER_THEN_WORD.search(text):
         return []
+    if not text.isascii():
+        return _money_scan(text)
+    found: list[tuple[str, str, str, str]] = []
+    match = _MONEY.match
+    at = 0
+    for start in _money_places(text):
+        if start < at:
+            continue
+        amount = match(text, start)
+        if amount is not None:
+            found.append(amount.groups(default=""))  # type: ignore[arg-type]
+            at = amount.end()
+    return found
+
+
+def _money_places(text: str) -> list[int]:
+    """Every place in ASCII *text* where ``_MONEY`` can match, in order (and a few where it
+    cannot).
+
+    The text is searched coded a byte each: digits as "9", "." and "," as ".", whitespace as
+    " ", letters, "_" and "$" as themselves, anything else as "#".  There the places are the
+    literals "$" and "9", which the engine skips to, a digit followed by its run, an optional
+    space and a sign or currency word.  For the development corpus's 4 KB mail that holds an
+    amount, ``_money_matches`` takes 28 µs this way against 86-90 with a ``match`` at every
+    sign and run of digits (``_money_scan``; about 46 runs a message).
+    """
+    coded = text.encode("ascii").translate(_MONEY_CODE)
+    places = [place.start() for place in _SIGN_PLACE.finditer(coded)]
+    places.extend(place.start() for place in _DIGIT_PLACE.finditer(coded))
+    places.sort()
+    return places
+
+
+def _money_scan(text: str) -> list[tuple[str, str, str, str]]:
+    """``_MONEY.findall(text)`` for any text: ``match`` at each sign and each run of digits."""
     found: list[tuple[str, str, str, str]] = []
     search, match = _MONEY_START.search, _MONEY.match
     at = 0

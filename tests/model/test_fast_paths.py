@@ -95,3 +95,21 @@ def test_ascii_word_pattern_finds_what_the_unicode_one_finds(text: str) -> None:
     assert words._words_in(text) == words._WORD.findall(text)
     if text.isascii():
         assert words._WORD_ASCII.findall(text) == words._WORD.findall(text)
+
+
+# Amount-shaped pieces and what sits around them, ASCII and not (whitespace of every kind
+# that \s matches, separators, signs, currency words, digits of other scripts).
+MONEY_PIECES = [
+    *["$", "€", "£", "¥", "usd", "eur", "gbp", "usda", "5", "250", "1.200,00", "12,5", "0"],
+    *[" ", "  ", "\t", "\n", "\x1c", "\u00a0", ".", ",", "-", "_", "a", "x9", "٣", "fee"],
+]
+
+
+@settings(max_examples=3000, deadline=None)
+@given(
+    st.lists(st.sampled_from(MONEY_PIECES), max_size=16).map("".join)
+    | st.text(st.sampled_from(list("$€9 1.,u sdeg_x\t\x1fa")), max_size=30)
+)
+def test_money_matches_are_what_findall_finds(text: str) -> None:
+    # Oracle: the plain scan of the pattern that _money_matches replaces.
+    assert words._money_matches(text) == words._MONEY.findall(text)
