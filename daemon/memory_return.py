@@ -1,11 +1,11 @@
 """Returning what a peak of mail left free to the operating system, a few seconds after it.
 
 glibc keeps freed memory for the process's next allocations and gives back on its own only the
-top end of its heap, so blocks freed beneath one still in use stay resident: in ``bench/bench_relay.py``
-100 KB mail after 4 KB mail grew the heap by 13 MB, and it stayed after the load.  ``malloc_trim(0)``
-hands back every whole free page.  It costs about 1 ms of CPU for the daemon's heap (6 ms at
-most after 32 connections of 100 KB mail), so it runs in a thread, every ``RETURN_EVERY``
-seconds while mail comes and never while none does.
+top end of its heap, so blocks freed beneath one still in use stay resident: in
+``bench/bench_relay.py`` 100 KB mail after 4 KB mail grew the heap by 13 MB, and it stayed after
+the load.  ``malloc_trim(0)`` hands back every whole free page.  It costs about 1 ms of CPU for
+the daemon's heap (6 ms at most after 32 connections of 100 KB mail), so it runs in a thread,
+every ``RETURN_EVERY`` seconds while mail comes and never while none does.
 
 ``bench/bench_relay.py``, 2 cores, 2026-12-03 01:51-02:05 UTC, two full runs each: 107-117 MB
 PSS under the 100 KB load that follows the 4 KB load against 112-121 without (the budget is

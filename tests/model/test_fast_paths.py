@@ -13,8 +13,8 @@ from mailweir.model import words
 from mailweir.model.fisher import RobinsonFisher
 from mailweir.model.hashing import hash_tokens, token_hash, token_hashes
 from mailweir.model.nb_base import NaiveBayes, posterior_spam
+from mailweir.model.normalize import _INVISIBLE_CHARS, _INVISIBLE_RANGES, LEET_NEIGHBOUR
 from mailweir.model.normalize import _LEET_CHARS as LEET_CHARS
-from mailweir.model.normalize import LEET_NEIGHBOUR
 from mailweir.model.types import Vocabulary
 from mailweir.model.words import money_tokens
 
@@ -113,3 +113,11 @@ MONEY_PIECES = [
 def test_money_matches_are_what_findall_finds(text: str) -> None:
     # Oracle: the plain scan of the pattern that _money_matches replaces.
     assert words._money_matches(text) == words._MONEY.findall(text)
+
+
+def test_invisible_character_set_is_exactly_the_ranges() -> None:
+    # Every code point once: the regular-expression set clean_text deletes with must delete
+    # what a translation table of the listed ranges deletes, and nothing else.
+    every = "".join(map(chr, range(0x110000)))
+    table = {cp: None for lo, hi in _INVISIBLE_RANGES for cp in range(lo, hi + 1)}
+    assert _INVISIBLE_CHARS.sub("", every) == every.translate(table)
