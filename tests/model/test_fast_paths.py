@@ -102,13 +102,14 @@ def test_ascii_word_pattern_finds_what_the_unicode_one_finds(text: str) -> None:
 MONEY_PIECES = [
     *["$", "€", "£", "¥", "usd", "eur", "gbp", "usda", "5", "250", "1.200,00", "12,5", "0"],
     *[" ", "  ", "\t", "\n", "\x1c", "\u00a0", ".", ",", "-", "_", "a", "x9", "٣", "fee"],
+    *["?", "\u2009", "—", "١٢", "€5", "5\u00a0usd", "٣,٥"],
 ]
 
 
 @settings(max_examples=3000, deadline=None)
 @given(
     st.lists(st.sampled_from(MONEY_PIECES), max_size=16).map("".join)
-    | st.text(st.sampled_from(list("$€9 1.,u sdeg_x\t\x1fa")), max_size=30)
+    | st.text(st.sampled_from(list("$€£9 1.,u sdeg_x\t\x1fa?٣\u00a0—")), max_size=30)
 )
 def test_money_matches_are_what_findall_finds(text: str) -> None:
     # Oracle: the plain scan of the pattern that _money_matches replaces.
