@@ -12,7 +12,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Final
 
-from .normalize import LEET_NEIGHBOUR, mixed_chunks, spaced_words
+from .normalize import LEET_NEIGHBOUR, coding_table, mixed_chunks, spaced_words
 
 MIN_WORD: Final = 3
 MAX_WORD: Final = 20
@@ -36,24 +36,15 @@ _NUMBER_THEN_WORD: Final = re.compile(r"\d\s?(?:usd|eur|gbp)")
 _MONEY_START: Final = re.compile(r"[$€£¥\d]\d*")  # a sign, or a run of digits from its first
 
 
-def _money_code() -> bytes:
-    """``_money_places``' translation table (ASCII; whitespace as ``str.isspace`` has it, as
-    ``\\s`` does in a str pattern)."""
-    table = bytearray(b"#" * 256)
-    for byte in range(128):
-        char = chr(byte)
-        if char.isdigit():
-            table[byte] = ord("9")
-        elif char in ".,":
-            table[byte] = ord(".")
-        elif char.isspace():
-            table[byte] = ord(" ")
-        elif char.isalpha() or char in "_$":
-            table[byte] = byte
-    return bytes(table)
-
-
-_MONEY_CODE: Final = _money_code()
+# ``_money_places``' coding: digits as "9", "." and "," as ".", whitespace as " " (as ``\\s``
+# takes it in a str pattern: ``str.isspace``), letters, "_" and "$" as themselves.
+_MONEY_CODE: Final = coding_table(
+    "#",
+    dict.fromkeys("0123456789", "9")
+    | dict.fromkeys(".,", ".")
+    | dict.fromkeys((chr(byte) for byte in range(128) if chr(byte).isspace()), " ")
+    | {char: char for char in map(chr, range(128)) if char.isalpha() or char in "_$"},
+)
 # A sign, or a digit whose run is followed by a sign or currency word: ``_MONEY`` in the coded
 # text, without its look-behind and word boundaries (so it finds a few places more, never fewer).
 # Two searches, each from a literal the engine skips to; as one alternation it tried every byte.

@@ -20,8 +20,8 @@ from mailweir.model.normalize import (
     _HINT_CODE,
     _SPACED,
     _SPACED_HINT,
-    _SPACED_HINT_ASCII,
     _SPACED_HINT_CODED,
+    _UNIT_ASCII,
     spaced_runs,
     spaced_words,
 )
@@ -168,6 +168,12 @@ def test_spaced_runs_finds_what_finditer_finds(text: str) -> None:
     assert [(m.start(), m.end()) for m in spaced_runs(text)] == expected
 
 
+# The hint's character-set form for ASCII text, as spaced_runs first searched it.
+PLAIN_ASCII_HINT = re.compile(
+    r"[ \t.\-_*+~]" + _UNIT_ASCII + r"[ \t.\-_*+~]{1,3}" + _UNIT_ASCII + r"[ \t.\-_*+~]"
+)
+
+
 def _hint_starts(pattern: re.Pattern[str] | re.Pattern[bytes], searched: str | bytes) -> list[int]:
     """Where spaced_runs meets its hints: each searched from one past the last."""
     starts, at = [], 0
@@ -186,4 +192,4 @@ def test_coded_hint_finds_what_the_ascii_hint_finds(text: str) -> None:
     # spaced_runs searches ASCII text coded a byte each (separators " ", units "u"); the
     # character-set hint over the text itself is the oracle.
     coded = text.encode("ascii").translate(_HINT_CODE)
-    assert _hint_starts(_SPACED_HINT_CODED, coded) == _hint_starts(_SPACED_HINT_ASCII, text)
+    assert _hint_starts(_SPACED_HINT_CODED, coded) == _hint_starts(PLAIN_ASCII_HINT, text)
