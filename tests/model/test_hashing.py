@@ -37,6 +37,23 @@ def test_token_hash_matches_blake2b_definition() -> None:
         assert token_hash(token) == int.from_bytes(digest, "little", signed=True)
 
 
+def _hashlib_oracle(token: str) -> int:
+    digest = hashlib.blake2b(token.encode("utf-8", "surrogatepass"), digest_size=8).digest()
+    return int.from_bytes(digest, "little", signed=True)
+
+
+@given(st.lists(st.text(st.characters(), max_size=30), max_size=40))
+def test_token_hashes_match_hashlib_for_any_text(tokens: list[str]) -> None:
+    # Oracle: hashlib's BLAKE2b made afresh for each token.  The cached path copies a blank
+    # state instead of constructing one; lone surrogates (st.characters draws them) must hash
+    # as their surrogatepass bytes, and the blank state must stay blank after every use.
+    expected = [_hashlib_oracle(token) for token in tokens]
+    assert [token_hash(token) for token in tokens] == expected
+    assert token_hashes(tokens).tolist() == expected  # misses, then staged or cached hits
+    assert token_hashes(tokens).tolist() == expected
+    assert hashing._BLANK_STATE.digest() == hashlib.blake2b(b"", digest_size=8).digest()
+
+
 def test_token_hash_same_in_another_process() -> None:
     code = "from mailweir.model.hashing import token_hash; print(token_hash('vaccine'))"
     for seed in ("1", "2"):
