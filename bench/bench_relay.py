@@ -22,6 +22,9 @@ corpus): the daemon has to ask the database about those, as it would in service.
 
     python bench/bench_relay.py                          # a few minutes
     python bench/bench_relay.py --messages 4000 --large-messages 800 --rounds 2
+    python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9   # the target's spread
+
+With more than one round, a last table gives each pair's median and range over the rounds.
 
 Everything listens on 127.0.0.1; counts are bounded.
 """
@@ -221,6 +224,7 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
         f"{'cpu ms':>8} {'others':>8} {'RSS MB':>6} {'PSS MB':>6}"
     )
     salt = 0  # each run's new words are new to the daemon too
+    pairs: dict[tuple[str, int], list[tuple[Figures, Figures]]] = {}
     for size, count in ((4096, args.messages), (100 * 1024, args.large_messages)):
         label = f"{size // 1024}KB"
         if label not in args.sizes:
@@ -239,6 +243,26 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
                 bare = _measure("bare", bare_pid, bare_port, fresh, clients, label)
                 mine = _measure("mailweir", pid, port, fresh, clients, label)
                 _print(bare, mine)
+                pairs.setdefault((label, clients), []).append((bare, mine))
+    if args.rounds > 1:
+        _summarize(pairs)
+
+
+def _summarize(pairs: dict[tuple[str, int], list[tuple[Figures, Figures]]]) -> None:
+    """Median and range over the rounds of each pair: one round's ratio moves with the
+    machine (other tenants of the processor's caches), so a target is judged on the spread."""
+    print("over the rounds: median [least-most] of mailweir / bare")
+    print(f"{'size':>6} {'cli':>3} {'msg/s':>18} {'cpu ms':>18} {'added p99 ms':>20}")
+    for (label, clients), runs in pairs.items():
+        rate = [mine.rate / bare.rate for bare, mine in runs]
+        cpu = [mine.cpu_ms / bare.cpu_ms for bare, mine in runs]
+        added = [mine.p99_ms - bare.p99_ms for bare, mine in runs]
+        columns = f"{_spread(rate):>18} {_spread(cpu):>18} {_spread(added):>20}"
+        print(f"{label:>6} {clients:>3} {columns}")
+
+
+def _spread(values: list[float]) -> str:
+    return f"{statistics.median(values):.2f} [{min(values):.2f}-{max(values):.2f}]"
 
 
 if __name__ == "__main__":
