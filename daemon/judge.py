@@ -431,7 +431,7 @@ def _evidence_text(
         return tuple((_unnamed(item.token_hash), float(item.weight)) for item in ranked)
     wanted = np.array([item.token_hash for item in ranked], dtype=np.int64)
     # One search for all of them: a call per item cost more than the rest of this step.
-    at = np.minimum(np.searchsorted(hashes, wanted), len(hashes) - 1).tolist()
+    at = np.minimum(hashes.searchsorted(wanted), len(hashes) - 1).tolist()
     held = hashes[at].tolist()
     return tuple(
         (
