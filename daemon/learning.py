@@ -265,6 +265,11 @@ def train_from(
     summary: Counter[str] = Counter()
     failures: Counter[str] = Counter()
     pending = PendingCounts(model.store) if model.margin is not None else None
+    if pending is not None and not model.store.complete:
+        # Deciding by the margin reads each batch's unseen tokens from the database; with
+        # every count in memory (a model within the count cache's limit) it reads none, and
+        # the store's own writes keep memory complete.  False (too big) reads as before.
+        model.store.preload()
     chunks = _batches(iter_sources(targets, failures))
     wanted = default_workers() if workers is None else workers
     for chunk, hashed in tokenized_batches(chunks, model.options, wanted):

@@ -242,6 +242,45 @@ def test_train_from_batched_equals_one_message_at_a_time(
         single.close()
 
 
+def test_margin_training_holds_every_count_in_memory_and_trains_the_same(
+    tmp_path: Path, no_warmup: None
+) -> None:
+    # A model within the count cache's limit is preloaded, so deciding by the margin reads
+    # nothing from the database; one too big for it (cache_tokens=8) reads as before.  Both
+    # must train the same messages into the same counts.
+    plan = [
+        (HAM, write(tmp_path / "h", HAM_LINES, 0, 12, "priya@harbourlane.example")),
+        (SPAM, write(tmp_path / "s", SPAM_LINES, 50, 12, "offers@prizes.example")),
+        (HAM, write(tmp_path / "h2", HAM_LINES, 100, 6, "maren@harbourlane.example")),
+    ]
+    roomy = open_model(str(tmp_path / "a.sqlite3"), margin=DEFAULT_TRAIN_MARGIN)
+    cramped = open_model(str(tmp_path / "b.sqlite3"), margin=DEFAULT_TRAIN_MARGIN, cache_tokens=8)
+    try:
+        summaries = []
+        for model in (roomy, cramped):
+            summaries.append(
+                [
+                    dict(
+                        train_from(
+                            model, [str(p) for p in paths], label, source="t", progress=quiet()
+                        )
+                    )
+                    for label, paths in plan
+                ]
+            )
+        assert summaries[0] == summaries[1]
+        assert any(part.get("confident") for part in summaries[0])  # the margin skipped some
+        assert roomy.store.complete and not cramped.store.complete
+        every = np.unique(
+            np.concatenate([tokenize(p.read_bytes(), roomy.options) for _, ps in plan for p in ps])
+        )
+        assert (roomy.store.lookup(every) == cramped.store.lookup(every)).all()
+        assert roomy.store.class_count().tolist() == cramped.store.class_count().tolist()
+    finally:
+        roomy.close()
+        cramped.close()
+
+
 # -- corrections -------------------------------------------------------------------------------
 
 
