@@ -40,12 +40,12 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import bench_mail
 import proc_cpu
 
-from mailweir.daemon.judge import _NO_VOCABULARY, N_EVIDENCE, _evidence_text, tokenize_step
+from mailweir.daemon.judge import N_EVIDENCE, _evidence_text, tokenize_step
 from mailweir.daemon.sources import read_corpus
 from mailweir.model.hashing import message_digest
 from mailweir.model.nb import NaiveBayes, make_scorer
 from mailweir.model.tokenize import DEFAULT_OPTIONS, tokens
-from mailweir.model.types import HAM, SPAM
+from mailweir.model.types import HAM, SPAM, UNREAD_VOCABULARY
 from mailweir.store import ModelStore
 
 DEV_CORPUS = Path(__file__).resolve().parents[2] / "shared/corpora/dev/enron-spam-dev.tar.gz"
@@ -74,7 +74,7 @@ def _whole_path(store: ModelStore, scorer: NaiveBayes, raw: bytes) -> None:
     else:
         totals, counts = cached
     # The judge makes no vocabulary summary for a method that never reads it (Fisher).
-    vocabulary = store.vocabulary() if scorer.uses_vocabulary else _NO_VOCABULARY
+    vocabulary = store.vocabulary() if scorer.uses_vocabulary else UNREAD_VOCABULARY
     score = scorer.score(hashes, counts, totals, vocabulary, N_EVIDENCE)
     _evidence_text(score, hashes, texts)
 

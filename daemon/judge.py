@@ -94,7 +94,7 @@ import time
 from collections import Counter
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any, Final, Literal
+from typing import Any, Literal
 
 import numpy as np
 
@@ -104,7 +104,13 @@ from mailweir.model.hashing import limit_digest_cache
 from mailweir.model.nb import NaiveBayes, Score
 from mailweir.model.token_texts import TokenTexts
 from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens_and_hashes
-from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
+from mailweir.model.types import (
+    UNREAD_VOCABULARY,
+    ClassCounts,
+    TokenCounts,
+    TokenHashes,
+    Vocabulary,
+)
 
 log = logging.getLogger("mailweir.judge")
 
@@ -204,10 +210,6 @@ class _ModelView:
     class_count: ClassCounts
     counts: TokenCounts | None  # None when the cold-start guard holds
     vocabulary: Vocabulary | None
-
-
-_NO_VOCABULARY: Final = Vocabulary.from_token_counts(np.zeros((0, 2), dtype=np.int64))
-"""Handed to a scorer that declares it does not use the vocabulary summary."""
 
 
 @dataclass(frozen=True)
@@ -414,7 +416,7 @@ class Judge:
             return _ModelView(class_count, None, None)
         # Fisher reads only token and class counts: no vocabulary summary (its snapshot costs
         # time per message and, made once in a thread, memory the allocator keeps).
-        vocabulary = self._store.vocabulary() if self.scorer.uses_vocabulary else _NO_VOCABULARY
+        vocabulary = self._store.vocabulary() if self.scorer.uses_vocabulary else UNREAD_VOCABULARY
         return _ModelView(class_count, counts_of(), vocabulary)
 
     def _read_model(self, hashes: TokenHashes, min_trained: int) -> _ModelView:

@@ -22,7 +22,14 @@ import numpy.typing as npt
 
 from mailweir.daemon.settings import PolicySettings
 from mailweir.model.nb import NaiveBayes
-from mailweir.model.types import SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
+from mailweir.model.types import (
+    SPAM,
+    UNREAD_VOCABULARY,
+    ClassCounts,
+    TokenCounts,
+    TokenHashes,
+    Vocabulary,
+)
 from mailweir.store import ModelStore
 from mailweir.store.vocab import VocabularyTracker
 
@@ -169,12 +176,9 @@ class PendingCounts:
     def probability(self, scorer: NaiveBayes, hashes: TokenHashes) -> tuple[float, TokenCounts]:
         """The spam probability of a message's tokens now, and the counts it was scored on."""
         counts = self.lookup(hashes)
-        if scorer.uses_vocabulary:
-            vocabulary = self.vocabulary()
-        else:  # the store's summary only stands in: this scorer's result does not depend on it
-            if self._base is None:
-                self._base = self._store.vocabulary()
-            vocabulary = self._base
+        # A scorer that never reads the summary gets the empty one: the store's would cost a
+        # read of every trained token's old counts with each batch written.
+        vocabulary = self.vocabulary() if scorer.uses_vocabulary else UNREAD_VOCABULARY
         return scorer.spam_probability(counts, self.class_count(), vocabulary), counts
 
     def add(self, hashes: TokenHashes, counts: TokenCounts, label: int, digest: bytes) -> None:

@@ -55,6 +55,12 @@ class Vocabulary:
         return Vocabulary(len(counts), counts.sum(axis=0), histogram.astype(np.int64))
 
 
+UNREAD_VOCABULARY: Final = Vocabulary.from_token_counts(np.zeros((0, 2), dtype=np.int64))
+"""The empty summary, handed to a scorer that declares it never reads one
+(``NaiveBayes.uses_vocabulary`` False): asking the store for its summary would make it keep
+one up to date through every write, reading each trained token's old counts."""
+
+
 OWN_HEADER_PREFIX: Final = "mailweir-"
 """Lower-case name prefix of every header field mailweir adds.  The tokenizer never reads such
 fields and the daemon strips incoming ones, so a sender cannot forge a verdict."""

@@ -281,6 +281,27 @@ def test_margin_training_holds_every_count_in_memory_and_trains_the_same(
         cramped.close()
 
 
+def test_margin_training_never_asks_for_a_summary_its_scorer_does_not_read(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, no_warmup: None
+) -> None:
+    # Fisher reads token and class counts only.  Asking the store for its vocabulary summary
+    # would make it keep one through every write, reading each trained token's old counts.
+    model = open_model(str(tmp_path / "m.sqlite3"), method="fisher")
+    assert not model.scorer.uses_vocabulary
+
+    def refuse() -> None:
+        raise AssertionError("the store's vocabulary summary was asked for")
+
+    monkeypatch.setattr(model.store, "vocabulary", refuse)
+    try:
+        for label, lines, start in ((HAM, HAM_LINES, 0), (SPAM, SPAM_LINES, 50)):
+            paths = write(tmp_path / str(start), lines, start, 8, "priya@harbourlane.example")
+            train_from(model, [str(p) for p in paths], label, source="t", progress=quiet())
+        assert model.store.class_count().sum() > 0
+    finally:
+        model.close()
+
+
 # -- corrections -------------------------------------------------------------------------------
 
 
