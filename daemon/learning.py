@@ -268,7 +268,8 @@ def train_from(
     if pending is not None and not model.store.complete:
         # Deciding by the margin reads each batch's unseen tokens from the database; with
         # every count in memory (a model within the count cache's limit) it reads none, and
-        # the store's own writes keep memory complete.  False (too big) reads as before.
+        # the store's own writes keep memory complete.  A model too big for it is not
+        # preloaded (False), and lookups read the database as before.
         model.store.preload()
     chunks = _batches(iter_sources(targets, failures))
     wanted = default_workers() if workers is None else workers

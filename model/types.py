@@ -57,8 +57,8 @@ class Vocabulary:
 
 UNREAD_VOCABULARY: Final = Vocabulary.from_token_counts(np.zeros((0, 2), dtype=np.int64))
 """The empty summary, handed to a scorer that declares it never reads one
-(``NaiveBayes.uses_vocabulary`` False): asking the store for its summary would make it keep
-one up to date through every write, reading each trained token's old counts."""
+(``NaiveBayes.uses_vocabulary`` False) instead of the model's real one, which costs whoever
+keeps it up to date a read of every trained token's old counts."""
 
 
 OWN_HEADER_PREFIX: Final = "mailweir-"
