@@ -192,6 +192,22 @@ def test_tokens_sender_and_reply_to() -> None:
     assert "rt:same" in same
 
 
+def test_tokens_sender_memo_leaves_each_message_its_own_message_id() -> None:
+    # The From and Reply-To tokens are memoised by those two fields; the Message-ID token,
+    # second in order, is each message's own.
+    def sent(message_id: str) -> list[str]:
+        head = HEAD.replace("Message-ID: <t1@harbourlane.example>\r\n", message_id)
+        return tokens(f"{head}Subject: Rota\r\n\r\nThe weekend rota is up.\r\n".encode())
+
+    a = sent("Message-ID: <a1@harbourlane.example>\r\n")
+    b = sent("Message-ID: <b2@bulk-mailer.example>\r\n")
+    c = sent("")
+    assert a[a.index("from:dom:harbourlane.example") + 1] == "mid:from-domain"
+    assert b[b.index("from:dom:harbourlane.example") + 1] == "mid:dom:bulk-mailer.example"
+    assert c[c.index("from:dom:harbourlane.example") + 1] == "mid:none"
+    assert [t for t in a if not t.startswith("mid:")] == [t for t in b if not t.startswith("mid:")]
+
+
 def test_tokens_mailer_and_field_names() -> None:
     found = set(tokens(plain("hi", extra="X-Mailer: Microsoft Outlook 16.0\r\n")))
     assert {"hdr:mailer:microsoft", "hdr:field:x-mailer", "hdr:field:subject"} <= found
