@@ -18,6 +18,7 @@ import argparse
 import asyncio
 import dataclasses
 import functools
+import gc
 import logging
 import os
 import signal
@@ -490,6 +491,20 @@ def run_command(args: argparse.Namespace) -> int:
     return asyncio.run(_serve(settings, source))
 
 
+def freeze_startup_objects() -> int:
+    """Move what exists once the daemon serves (modules, settings, the parts' objects) out of
+    the cyclic garbage collector's reach; return how many objects that is.
+
+    A full collection walks every tracked object, so with the whole program in the heap each
+    one held the event loop for 25-32 ms (measured under the relay bench's load), enough to
+    push a round's p99 up by 20-30 ms; after it, 2-2.4 ms.  Objects made after this are
+    collected as before.  Garbage is collected first, so none of it is kept for good; what
+    of the startup's objects a reload later drops (the old settings) stays, a few kilobytes."""
+    gc.collect()
+    gc.freeze()
+    return gc.get_freeze_count()
+
+
 async def _serve(settings: Settings, source: ConfigSource) -> int:
     service = Service(settings, source)
     # Handlers first: a SIGTERM that arrives while the HTTP side is still starting (the SMTP
@@ -505,6 +520,7 @@ async def _serve(settings: Settings, source: ConfigSource) -> int:
         service.remove_signal_handlers()
         log.exception("mailweir could not start: %s", exc)
         return 1
+    freeze_startup_objects()
     await service.wait_for_stop()
     await service.shutdown()
     return 0

@@ -6,6 +6,7 @@ import argparse
 import asyncio
 import concurrent.futures
 import dataclasses
+import gc
 import logging
 import multiprocessing
 import os
@@ -14,6 +15,7 @@ import smtplib
 import socket
 import threading
 import time
+import weakref
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
@@ -412,6 +414,10 @@ def test_run_command_serves_until_sigterm(
                 time.sleep(0.01)
         os.kill(os.getpid(), signal.SIGTERM)
 
+    # Freezing is checked on its own below; here, that serving does it once (not the test
+    # process's objects, which pytest goes on making garbage of).
+    frozen: list[bool] = []
+    monkeypatch.setattr(service_module, "freeze_startup_objects", lambda: frozen.append(True))
     stopper = threading.Thread(target=stop_when_listening)
     stopper.start()
     try:
@@ -420,8 +426,30 @@ def test_run_command_serves_until_sigterm(
     finally:
         stopper.join()
         logger.setLevel(logging.NOTSET)
+    assert frozen == [True]
     assert (tmp_path / "model.sqlite3").exists()
     assert port_is_free(port)
+
+
+class _Node:
+    ref: object = None
+
+
+def test_freeze_startup_objects_collects_garbage_then_keeps_the_rest_out_of_collections() -> None:
+    garbage = _Node()
+    garbage.ref = garbage  # a cycle nothing else holds: only the collector frees it
+    gone = weakref.ref(garbage)
+    del garbage
+    kept = _Node()
+    kept.ref = kept
+    try:
+        count = service_module.freeze_startup_objects()
+        assert gone() is None  # collected first, not frozen for good
+        assert count == gc.get_freeze_count() > 0
+        assert not any(o is kept for o in gc.get_objects())  # no generation walks it now
+    finally:
+        gc.unfreeze()
+    assert any(o is kept for o in gc.get_objects())
 
 
 @pytest.fixture
