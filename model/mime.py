@@ -176,7 +176,10 @@ def parse_entity(raw: bytes, depth: int, ignored: tuple[str, ...]) -> Part:
     for match in _FIELD.finditer(raw, start, end):
         name = match.group(1).decode("ascii").lower()
         if not name.startswith(ignored):
-            fields.append((name, _FOLD.sub(b"", match.group(2)).strip()))
+            value = match.group(2)
+            if b"\n" in value:  # folded: most fields are not, and the test costs far less
+                value = _FOLD.sub(b"", value)
+            fields.append((name, value.strip()))
             if len(fields) >= MAX_FIELDS:
                 break
     if raw.startswith(b"\r\n", end):
