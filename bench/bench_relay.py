@@ -18,7 +18,9 @@ the daemon (the count cache then holds their tokens), and each run with a short 
 measured run then sends them with a last line of ``--new-words`` (6) words never seen before,
 new for every run, as real mail brings (about 6 of 110 tokens per message on the development
 corpus): the daemon has to ask the database about those, as it would in service.  With
-``--new-words 0`` every count is in memory, the best case.
+``--new-words 0`` every count is in memory, the best case.  ``--bare-data wire`` has the bare
+relay send DATA as mailweir does (``relay_parts.py``), so that the two differ by the judging
+alone; by default it uses aiosmtplib's ``data``, as the simplest relay would.
 
     python bench/bench_relay.py                          # a few minutes
     python bench/bench_relay.py --messages 4000 --large-messages 800 --rounds 2
@@ -190,6 +192,12 @@ def main() -> None:
     parser.add_argument(
         "--new-words", type=int, default=6, help="never-seen words per measured message (0: none)"
     )
+    parser.add_argument(
+        "--bare-data",
+        choices=["library", "wire"],
+        default="library",
+        help="how the bare relay sends DATA: aiosmtplib's data, or as mailweir does",
+    )
     args = parser.parse_args()
     model = bench_mail.build_model(args.min_tokens)
     with tempfile.TemporaryDirectory(prefix="mailweir-bench-relay-") as tmp, ExitStack() as stop:
@@ -198,8 +206,9 @@ def main() -> None:
         # Each process is stopped however the run ends, a later one failing to start included.
         sink, sink_port = _start([*here, "sink", str(folder / "sink")], folder / "sink")
         stop.callback(_stop, sink)
+        wire = ["--wire"] if args.bare_data == "wire" else []
         bare, bare_port = _start(
-            [*here, "bare", f"{LOCAL}:{sink_port}", str(folder / "bare")], folder / "bare"
+            [*here, "bare", f"{LOCAL}:{sink_port}", str(folder / "bare"), *wire], folder / "bare"
         )
         stop.callback(_stop, bare)
         port = _free_port()
@@ -217,7 +226,7 @@ def _stop(process: subprocess.Popen[bytes]) -> None:
 def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port: int) -> None:
     print(
         f"cores {os.cpu_count()}, load average {os.getloadavg()[0]:.2f} at start, "
-        f"{args.new_words} new words per message"
+        f"{args.new_words} new words per message, the bare relay's DATA by {args.bare_data}"
     )
     print(
         f"{'size':>6} {'cli':>3} {'server':<8} {'msg/s':>8} {'p50 ms':>8} {'p99 ms':>8} "

@@ -2,11 +2,16 @@
 
     python bench/relay_parts.py sink PORT_FILE          # aiosmtpd sink: 250 for every message
     python bench/relay_parts.py bare NEXT_HOP PORT_FILE # bare aiosmtpd relay to NEXT_HOP
+    python bench/relay_parts.py bare NEXT_HOP PORT_FILE --wire   # DATA sent as mailweir does
 
 The bare relay is built the way mailweir relays (daemon/relay.py, daemon/smtp.py): aiosmtpd
 with ``decode_data=False`` in front, one aiosmtplib client per upstream connection kept across
 its transactions, MAIL FROM at the first RCPT, each RCPT answered with the next hop's reply,
-and 250 only after the next hop accepted the DATA.  It only leaves out the judging.
+and 250 only after the next hop accepted the DATA.  It only leaves out the judging.  By
+default it sends the message with aiosmtplib's ``data``, as the simplest relay would; with
+``--wire`` it sends DATA the way mailweir does (``daemon/relay.py`` ``data_wire``, which skips
+aiosmtplib's rewriting of line endings and leading dots when a message needs neither), so the
+two relays differ by the judging alone.
 
 Each server writes its port to PORT_FILE once it listens, and runs until SIGTERM.
 """
@@ -23,6 +28,8 @@ from pathlib import Path
 import aiosmtplib
 from aiosmtpd.smtp import SMTP, Envelope, Session
 
+from mailweir.daemon.relay import data_wire
+
 LOCAL = "127.0.0.1"
 SENDER = "orders@vetsupply.example"
 RECIPIENT = "maren.okafor@harbourlane.example"
@@ -36,8 +43,9 @@ class SinkHandler:
 class RelayHandler:
     """Lock-step relay without judging; the next-hop client lives on the session."""
 
-    def __init__(self, host: str, port: int) -> None:
+    def __init__(self, host: str, port: int, wire: bool = False) -> None:
         self.host, self.port = host, port
+        self.wire = wire
 
     async def handle_RCPT(
         self, server: SMTP, session: Session, envelope: Envelope, address: str, options: list[str]
@@ -57,7 +65,14 @@ class RelayHandler:
 
     async def handle_DATA(self, server: SMTP, session: Session, envelope: Envelope) -> str:
         client: aiosmtplib.SMTP = session.next_hop  # type: ignore[attr-defined]
-        answer = await client.data(envelope.original_content or b"")
+        if not self.wire:
+            answer = await client.data(envelope.original_content or b"")
+            return f"{answer.code} {answer.message}"
+        start = await client.execute_command(b"DATA")
+        if start.code != 354 or client.protocol is None:
+            return f"{start.code} {start.message}"
+        client.protocol.write(data_wire(envelope.original_content or b""))
+        answer = await client.protocol.read_response(timeout=60)
         return f"{answer.code} {answer.message}"
 
     async def handle_QUIT(self, server: SMTP, session: Session, envelope: Envelope) -> str:
@@ -147,7 +162,8 @@ def main(argv: list[str]) -> None:
         asyncio.run(serve(SinkHandler(), Path(argv[1])))
     elif argv[0] == "bare":
         host, _, port = argv[1].rpartition(":")
-        asyncio.run(serve(RelayHandler(host, int(port)), Path(argv[2])))
+        wire = argv[3:] == ["--wire"]
+        asyncio.run(serve(RelayHandler(host, int(port), wire), Path(argv[2])))
     else:
         raise SystemExit(__doc__)
 
