@@ -29,10 +29,10 @@ MAX_HOST: Final = 253
 
 # Hosts repeat from message to message (a site's own domain, its correspondents, their relays):
 # a bounded memo answers those from a dict.
-_MEMO: Final = 4096
+MEMO_ENTRIES: Final = 4096
 
 
-@functools.lru_cache(maxsize=_MEMO)
+@functools.lru_cache(maxsize=MEMO_ENTRIES)
 def clean_host(host: str) -> str:
     """Lower-case a host, drop user info, port, brackets and a trailing dot; "" if unusable."""
     host = host.rpartition("@")[2].strip().lower()
@@ -69,7 +69,7 @@ def is_ip(host: str) -> bool:
     return bool(_IPV4.fullmatch(host)) or ":" in host
 
 
-@functools.lru_cache(maxsize=_MEMO)
+@functools.lru_cache(maxsize=MEMO_ENTRIES)
 def registrable(host: str) -> str:
     """The registrable domain of a cleaned host (see module docstring); IPs stay whole."""
     if is_ip(host):

@@ -12,7 +12,7 @@ import re
 from typing import Final
 
 from .charsets import decode_header_value
-from .domains import address_domain, clean_host, is_ip, registrable
+from .domains import MEMO_ENTRIES, address_domain, clean_host, is_ip, registrable
 from .mime import MAX_FIELD_BYTES, Part
 from .normalize import clean_text
 from .words import split_words
@@ -41,7 +41,6 @@ MAX_COMMENT_DEPTH: Final = 8  # nesting undone; deeper is junk, and each level i
 _ID_DOMAIN: Final = re.compile(r"@([^\s<>@\[\]]{1,255})")  # msg-id, RFC 5322 section 3.6.4
 _LIST_ID: Final = re.compile(r"<([^<>\s]{1,255})>")  # RFC 2919: "phrase <label.namespace>"
 _PRECEDENCE: Final = frozenset({"bulk", "list", "junk"})  # common practice, no source
-_SENDER_MEMO: Final = 4096
 
 
 def bucket(count: int) -> str:
@@ -101,7 +100,7 @@ def sender_tokens(top: Part) -> list[str]:
 # Senders repeat from message to message (a site's correspondents, its lists), and these
 # tokens depend on the two fields alone: a bounded memo answers those from a dict
 # (``sender_tokens`` 4.1 against 11.3 µs a message for the relay bench's mail, 15 senders).
-@functools.lru_cache(maxsize=_SENDER_MEMO)
+@functools.lru_cache(maxsize=MEMO_ENTRIES)
 def _from_and_reply(from_text: str, reply_text: str) -> tuple[str, str, tuple[str, ...]]:
     """The From domain, its token, and the tokens of the display name and of Reply-To."""
     name, address = split_address(from_text)
