@@ -88,10 +88,10 @@ def _free_port() -> int:
 
 
 def _start(
-    argv: list[str], port_file: Path | None, port: int | None = None
+    argv: list[str], port_file: Path | None, port: int | None = None, wait: float = 60
 ) -> tuple[subprocess.Popen[bytes], int]:
     process = subprocess.Popen(argv, stdin=subprocess.DEVNULL)
-    deadline = time.monotonic() + 60
+    deadline = time.monotonic() + wait
     while time.monotonic() < deadline:
         if process.poll() is not None:
             raise SystemExit(f"{argv[:3]} exited with {process.returncode}")

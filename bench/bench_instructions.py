@@ -1,0 +1,200 @@
+"""Instructions per message, counted by callgrind: figures that other load cannot move.
+
+The time a message costs moves with the other tenants of the machine (up to 2x within minutes
+here), so a change of a few per cent cannot be seen in one run of ``bench_relay.py``.
+callgrind counts the instructions a process executes instead: the same code on the same input
+gives the same count to a few parts in ten thousand, whatever else the machine does.  An
+instruction is not a fixed time (a cache miss costs more than an add), so these counts sit
+beside the CPU times of ``bench_relay.py``, never in place of them; and they count the
+process's own (user-space) instructions only, not the kernel's work for its system calls.
+
+Two measurements:
+
+``relay`` (the default): the bare relay and the daemon of ``bench_relay.py`` (the same sink,
+model of at least 500,000 tokens, configuration, messages and new words), each started under
+callgrind with counting off.  The daemon first takes one unmeasured pass of the messages, each
+server a warm-up; then counting is switched on (``callgrind_control``), the measured messages
+are sent, counting is switched off, and the counts are dumped: every thread of the server is
+in them (the judge's, the database's).  Prints instructions per message and the ratio.
+
+``scoring``: the scoring path alone in this process, as ``bench_scoring.py`` measures it
+(parse, tokenize, look up, score, name the evidence) over the same generated messages with
+their new words: instructions per message, for comparing two versions of the model code.
+
+    python bench/bench_instructions.py                    # about three minutes
+    python bench/bench_instructions.py scoring            # about a minute
+    python bench/bench_instructions.py --messages 400 --clients 1 8
+
+Needs valgrind (Debian's package).  Everything listens on 127.0.0.1; counts are bounded.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import functools
+import os
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+from collections.abc import Callable
+from contextlib import ExitStack
+from pathlib import Path
+from typing import TypeVar
+
+BENCH = Path(__file__).resolve().parent
+sys.path.insert(0, str(BENCH))
+
+import bench_mail  # noqa: E402
+from bench_relay import MAILWEIR, PYTHON, _free_port, _mailweir_config, _start, _stop  # noqa: E402
+from relay_parts import LOCAL, push  # noqa: E402
+
+# A server under callgrind runs tens of times slower; imports and the model's preload too.
+START_WAIT = 900.0
+T = TypeVar("T")
+_TOTALS = re.compile(rb"^totals: (\d+)", re.MULTILINE)  # "summary:" there reads 0
+
+
+def callgrind(out: Path, argv: list[str]) -> list[str]:
+    """*argv* under callgrind, counting nothing until switched on; dumps go to ``out.<pid>.<n>``."""
+    return [
+        "valgrind",
+        "--tool=callgrind",
+        "--instr-atstart=no",
+        f"--callgrind-out-file={out}.%p",
+        *argv,
+    ]
+
+
+def _control(pid: int, *flags: str) -> None:
+    subprocess.run(["callgrind_control", *flags, str(pid)], check=True, capture_output=True)
+
+
+def counted(pid: int, out: Path, window: int, send: Callable[[], T]) -> tuple[int, T]:
+    """Run ``send()`` with counting on in process *pid*, its *window*-th measurement; return
+    the instructions counted and what ``send`` returned."""
+    _control(pid, "-i", "on")
+    try:
+        sent = send()
+    finally:
+        _control(pid, "-i", "off")
+    _control(pid, "-d")  # written to out.<pid>.<window>, and the counts start again from zero
+    dump = Path(f"{out}.{pid}.{window}")
+    found = _TOTALS.search(dump.read_bytes())
+    if found is None:
+        raise SystemExit(f"no totals in {dump}")
+    return int(found.group(1)), sent
+
+
+def relay(args: argparse.Namespace) -> None:
+    model = bench_mail.build_model(args.min_tokens)
+    messages = [bench_mail.message(i, args.size, seed=7) for i in range(args.messages)]
+    print(
+        f"{args.messages} messages of {args.size // 1024} KB, {args.new_words} new words each; "
+        "user-space instructions per message, counted by callgrind"
+    )
+    print(f"{'cli':>3} {'bare':>12} {'mailweir':>12} {'ratio':>7}")
+    with tempfile.TemporaryDirectory(prefix="mailweir-bench-instr-") as tmp, ExitStack() as stop:
+        folder = Path(tmp)
+        here = [PYTHON, str(BENCH / "relay_parts.py")]
+        sink, sink_port = _start([*here, "sink", str(folder / "sink")], folder / "sink")
+        stop.callback(_stop, sink)
+        bare_argv = [*here, "bare", f"{LOCAL}:{sink_port}", str(folder / "bare"), "--wire"]
+        bare, bare_port = _start(callgrind(folder / "bare", bare_argv), folder / "bare", None)
+        stop.callback(_stop, bare)
+        port = _free_port()
+        config = _mailweir_config(folder, model, sink_port, port)
+        daemon_argv = [PYTHON, MAILWEIR, "run", "--config", str(config)]
+        daemon, _ = _start(callgrind(folder / "mailweir", daemon_argv), None, port, START_WAIT)
+        stop.callback(_stop, daemon)
+        asyncio.run(push(port, messages, 8))  # the count cache then holds their tokens
+        servers = {"bare": (bare.pid, bare_port), "mailweir": (daemon.pid, port)}
+        for window, clients in enumerate(args.clients, start=1):
+            fresh = [
+                bench_mail.with_new_words(raw, i, args.new_words, window)
+                for i, raw in enumerate(messages)
+            ]
+            per_message = {}
+            for name, (pid, server_port) in servers.items():
+                asyncio.run(push(server_port, messages[: clients * 4], clients))  # warm-up
+                send = functools.partial(asyncio.run, push(server_port, fresh, clients))
+                total, results = counted(pid, folder / name, window, send)
+                if results.failures:
+                    raise SystemExit(f"{name}: {len(results.failures)} messages refused")
+                per_message[name] = total / len(fresh)
+            bare_count, ours = per_message["bare"], per_message["mailweir"]
+            print(f"{clients:>3} {bare_count:>12,.0f} {ours:>12,.0f} {ours / bare_count:>7.3f}")
+
+
+def scoring(args: argparse.Namespace) -> None:
+    """Re-run this script under callgrind, measuring the scoring path in that process."""
+    with tempfile.TemporaryDirectory(prefix="mailweir-bench-instr-") as tmp:
+        out = Path(tmp) / "scoring"
+        argv = [PYTHON, __file__, "scoring-child", "--messages", str(args.messages)]
+        argv += ["--size", str(args.size), "--new-words", str(args.new_words)]
+        argv += ["--min-tokens", str(args.min_tokens), "--out", str(out)]
+        child = subprocess.run(callgrind(out, argv), stderr=subprocess.PIPE)
+        if child.returncode:
+            sys.stderr.buffer.write(child.stderr)
+            raise SystemExit(f"the measured process exited with {child.returncode}")
+
+
+def scoring_child(args: argparse.Namespace) -> None:
+    import bench_scoring
+
+    from mailweir.model.nb import make_scorer
+    from mailweir.store import ModelStore
+
+    model = bench_mail.build_model(args.min_tokens)
+    with tempfile.TemporaryDirectory(prefix="mailweir-bench-instr-") as tmp:
+        path = Path(tmp) / "model.sqlite3"
+        shutil.copyfile(model, path)
+        store = ModelStore.open(str(path))
+        if not store.preload():
+            raise SystemExit("the model does not fit the count cache")
+        scorer = make_scorer("fisher")
+        messages = [bench_mail.message(i, args.size, seed=7) for i in range(args.messages)]
+        for raw in messages:  # as in the relay: the digest and count caches hold their words
+            bench_scoring._whole_path(store, scorer, raw)
+        fresh = [
+            bench_mail.with_new_words(raw, i, args.new_words, 1) for i, raw in enumerate(messages)
+        ]
+
+        def send() -> None:
+            for raw in fresh:
+                bench_scoring._whole_path(store, scorer, raw)
+
+        total, _ = counted(os.getpid(), args.out, 1, send)
+        store.close()
+    print(
+        f"scoring path, {args.messages} messages of {args.size // 1024} KB, "
+        f"{args.new_words} new words each: {total / len(fresh):,.0f} instructions per message"
+    )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("what", nargs="?", choices=["relay", "scoring", "scoring-child"])
+    parser.add_argument("--messages", type=int, default=200, help="measured messages per run")
+    parser.add_argument("--size", type=int, default=4096, help="message size in bytes")
+    parser.add_argument("--clients", type=int, nargs="+", default=[8])
+    parser.add_argument("--min-tokens", type=int, default=500_000, help="model size")
+    parser.add_argument("--new-words", type=int, default=6, help="never-seen words per message")
+    parser.add_argument("--out", type=Path, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.what != "scoring-child" and not (
+        shutil.which("valgrind") and shutil.which("callgrind_control")
+    ):
+        raise SystemExit("needs valgrind (Debian: apt-get install valgrind)")
+    if args.what == "scoring":
+        scoring(args)
+    elif args.what == "scoring-child":
+        scoring_child(args)
+    else:
+        relay(args)
+
+
+if __name__ == "__main__":
+    main()
