@@ -24,6 +24,7 @@ their new words: instructions per message, for comparing two versions of the mod
     python bench/bench_instructions.py                    # about three minutes
     python bench/bench_instructions.py scoring            # about a minute
     python bench/bench_instructions.py --messages 400 --clients 1 8
+    python bench/bench_instructions.py --keep /tmp/dumps   # then: callgrind_annotate FILE
 
 Needs valgrind (Debian's package).  Everything listens on 127.0.0.1; counts are bounded.
 """
@@ -88,6 +89,16 @@ def counted(pid: int, out: Path, window: int, send: Callable[[], T]) -> tuple[in
     return int(found.group(1)), sent
 
 
+def _keep(folder: Path, keep: Path | None) -> None:
+    """Copy the measured windows' dumps (``<name>.<pid>.<n>``) to *keep*."""
+    if keep is None:
+        return
+    keep.mkdir(parents=True, exist_ok=True)
+    for dump in folder.glob("*.*.*"):
+        if dump.suffix[1:].isdigit():
+            shutil.copy(dump, keep / dump.name)
+
+
 def relay(args: argparse.Namespace) -> None:
     model = bench_mail.build_model(args.min_tokens)
     messages = [bench_mail.message(i, args.size, seed=7) for i in range(args.messages)]
@@ -126,6 +137,7 @@ def relay(args: argparse.Namespace) -> None:
                 per_message[name] = total / len(fresh)
             bare_count, ours = per_message["bare"], per_message["mailweir"]
             print(f"{clients:>3} {bare_count:>12,.0f} {ours:>12,.0f} {ours / bare_count:>7.3f}")
+        _keep(folder, args.keep)
 
 
 def scoring(args: argparse.Namespace) -> None:
@@ -139,6 +151,7 @@ def scoring(args: argparse.Namespace) -> None:
         if child.returncode:
             sys.stderr.buffer.write(child.stderr)
             raise SystemExit(f"the measured process exited with {child.returncode}")
+        _keep(Path(tmp), args.keep)
 
 
 def scoring_child(args: argparse.Namespace) -> None:
@@ -182,6 +195,9 @@ def main() -> None:
     parser.add_argument("--clients", type=int, nargs="+", default=[8])
     parser.add_argument("--min-tokens", type=int, default=500_000, help="model size")
     parser.add_argument("--new-words", type=int, default=6, help="never-seen words per message")
+    parser.add_argument(
+        "--keep", type=Path, help="copy callgrind's files here, for callgrind_annotate"
+    )
     parser.add_argument("--out", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.what != "scoring-child" and not (

@@ -170,9 +170,17 @@ def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, T
     # Each word hashed once (through the digest cache); bigram hashes mixed from word hashes,
     # and a bigram's text made only if it is named as evidence.
     words, aligned = tokens_and_hashes(raw, options)
+    # Distinct texts have distinct hashes but for a BLAKE2b collision, and distinct keys sort
+    # the same way whatever the method: the plain sort serves, and the stable one (the first
+    # text of a repeated hash keeps it) runs only when a hash repeats.  Half the instructions
+    # of always sorting stably (15 against 30 thousand for a 4 KB message's 216 hashes).
+    order = aligned.argsort()
+    ordered = aligned[order]
+    if not (ordered[1:] == ordered[:-1]).any():
+        return ordered, words.take(order)
     order = aligned.argsort(kind="stable")
     ordered = aligned[order]
-    first = np.ones(len(ordered), dtype=np.bool_)  # the first word of each hash keeps it
+    first = np.ones(len(ordered), dtype=np.bool_)
     np.not_equal(ordered[1:], ordered[:-1], out=first[1:])
     return ordered[first], words.take(order[first])
 

@@ -210,8 +210,12 @@ class CountCache:
         """
         rows = self._table.take(bucket, axis=0).T.copy()
         match = rows[:_BUCKET] == hashes
-        packed = rows[_BUCKET:].sum(axis=0, where=match)  # at most one match per column
-        return match.any(axis=0), packed
+        # At most one match per column.  Zeroing the others and summing runs numpy's plain
+        # loops, where ``sum(where=match)`` took its masked one (95 against 103 thousand
+        # instructions for 216 hashes).
+        counts = rows[_BUCKET:]
+        counts *= match
+        return match.any(axis=0), counts.sum(axis=0)
 
     def _follow(self, key: int, bucket: int) -> tuple[int, bool]:
         """Packed counts of *key*, searched for past its spilled home *bucket*, and whether

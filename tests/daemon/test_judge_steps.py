@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import numpy as np
+import pytest
+
+from mailweir.daemon import judge
 from mailweir.daemon.judge import tokenize_step
 from mailweir.model.hashing import token_hash
 from mailweir.model.tokenize import DEFAULT_OPTIONS, tokenize
@@ -24,3 +28,21 @@ def test_tokenize_step_empty_message() -> None:
     hashes, texts = tokenize_step(b"", DEFAULT_OPTIONS)
     assert len(hashes) == len(texts)
     assert [token_hash(text) for text in texts] == hashes.tolist()
+
+
+def test_tokenize_step_names_a_repeated_hash_by_its_first_text(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Two texts sharing a hash (a BLAKE2b collision, simulated): the hash is kept once, named
+    # by the text the tokenizer met first, wherever the sort puts the two.
+    texts = ["zeta", "alpha", "beta", "gamma", "delta", "omega"]
+    aligned = np.array([7, 3, 9, 3, 1, 3], dtype=np.int64)
+
+    class Texts(list[str]):
+        def take(self, indices: np.ndarray) -> list[str]:
+            return [self[i] for i in indices.tolist()]
+
+    monkeypatch.setattr(judge, "tokens_and_hashes", lambda raw, options: (Texts(texts), aligned))
+    hashes, named = tokenize_step(b"", DEFAULT_OPTIONS)
+    assert hashes.tolist() == [1, 3, 7, 9]
+    assert named == ["delta", "alpha", "zeta", "beta"]
