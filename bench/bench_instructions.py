@@ -2,8 +2,9 @@
 
 The time a message costs moves with the other tenants of the machine (up to 2x within minutes
 here), so a change of a few per cent cannot be seen in one run of ``bench_relay.py``.
-callgrind counts the instructions a process executes instead: the same code on the same input
-gives the same count to a few parts in ten thousand, whatever else the machine does.  An
+callgrind counts the instructions a process executes instead: two runs of the same code on
+the same input agree to about 0.1% (the relay pair) and 0.2% (the scoring path, whose digest
+cache follows the per-process hash seed), whatever else the machine does.  An
 instruction is not a fixed time (a cache miss costs more than an add), so these counts sit
 beside the CPU times of ``bench_relay.py``, never in place of them; and they count the
 process's own (user-space) instructions only, not the kernel's work for its system calls.
@@ -13,18 +14,22 @@ Two measurements:
 ``relay`` (the default): the bare relay and the daemon of ``bench_relay.py`` (the same sink,
 model of at least 500,000 tokens, configuration, messages and new words), each started under
 callgrind with counting off.  The daemon first takes one unmeasured pass of the messages, each
-server a warm-up; then counting is switched on (``callgrind_control``), the measured messages
-are sent, counting is switched off, and the counts are dumped: every thread of the server is
-in them (the judge's, the database's).  Prints instructions per message and the ratio.
+server a warm-up of 50 messages with new words of their own; then counting is switched on
+(``callgrind_control``), the measured messages are sent, counting is switched off, and the
+counts are dumped: every thread of the server is in them (the judge's, the database's).
+Prints instructions per message and the ratio.  The daemon's work by the clock is scaled to
+callgrind's slowdown (``SLOWDOWN``): a new periodic task in the daemon needs the same here, or
+it lands about a hundred times as often per message as at full speed.
 
 ``scoring``: the scoring path alone in this process, as ``bench_scoring.py`` measures it
 (parse, tokenize, look up, score, name the evidence) over the same generated messages with
 their new words: instructions per message, for comparing two versions of the model code.
 
-    python bench/bench_instructions.py                    # about three minutes
-    python bench/bench_instructions.py scoring            # about a minute
+    python bench/bench_instructions.py                    # about a minute
+    python bench/bench_instructions.py scoring            # about 20 seconds
     python bench/bench_instructions.py --messages 400 --clients 1 8
     python bench/bench_instructions.py --keep /tmp/dumps   # then: callgrind_annotate FILE
+    python bench/bench_instructions.py --cache-sim         # and last-level cache misses
 
 Needs valgrind (Debian's package).  Everything listens on 127.0.0.1; counts are bounded.
 """
@@ -49,21 +54,53 @@ BENCH = Path(__file__).resolve().parent
 sys.path.insert(0, str(BENCH))
 
 import bench_mail  # noqa: E402
-from bench_relay import MAILWEIR, PYTHON, _free_port, _mailweir_config, _start, _stop  # noqa: E402
+from bench_relay import PYTHON, _free_port, _mailweir_config, _start, _stop  # noqa: E402
 from relay_parts import LOCAL, push  # noqa: E402
 
 # A server under callgrind runs tens of times slower; imports and the model's preload too.
 START_WAIT = 900.0
+# The daemon's work that comes by the clock would land about SLOWDOWN times as often per
+# message as at full speed: the count memory's freshness check (due every 5 s of wall time)
+# and the return of free memory (every 5 s while mail comes) get intervals that much longer,
+# and the verdict log, which writes its queue every 0.5 s (about 325 rows a batch at full
+# speed, 2-5 under callgrind), writes every VERDICT_BATCH rows instead, so each window holds
+# the same writes in every run.
+SLOWDOWN = 100
+VERDICT_BATCH = 100
+_SLOW_DAEMON = f"""
+import sys
+from mailweir.daemon import memory_return, verdict_log
+from mailweir.daemon.entry import main
+
+def stretched(init, **defaults):
+    def __init__(self, *args, **kwargs):
+        init(self, *args, **(defaults | kwargs))
+    return __init__
+
+memory_return.ReturnFreeMemory.__init__ = stretched(
+    memory_return.ReturnFreeMemory.__init__, every=memory_return.RETURN_EVERY * {SLOWDOWN}
+)
+verdict_log.VerdictLog.__init__ = stretched(
+    verdict_log.VerdictLog.__init__, batch_size={VERDICT_BATCH}
+)
+sys.argv[0] = "mailweir"
+main()
+"""
 T = TypeVar("T")
-_TOTALS = re.compile(rb"^totals: (\d+)", re.MULTILINE)  # "summary:" there reads 0
+# A dump names its events, then gives their totals in that order ("summary:" there reads 0).
+_EVENTS = re.compile(rb"^events: (.+)$", re.MULTILINE)
+_TOTALS = re.compile(rb"^totals: (.+)$", re.MULTILINE)
 
 
-def callgrind(out: Path, argv: list[str]) -> list[str]:
-    """*argv* under callgrind, counting nothing until switched on; dumps go to ``out.<pid>.<n>``."""
+def callgrind(out: Path, argv: list[str], cache_sim: bool = False) -> list[str]:
+    """*argv* under callgrind, counting nothing until switched on; dumps go to ``out.<pid>.<n>``.
+    With *cache_sim*, callgrind also simulates the caches (the last level sized as this
+    machine's) and counts their misses."""
     return [
         "valgrind",
         "--tool=callgrind",
         "--instr-atstart=no",
+        *(["--cache-sim=yes"] if cache_sim else []),
         f"--callgrind-out-file={out}.%p",
         *argv,
     ]
@@ -73,9 +110,10 @@ def _control(pid: int, *flags: str) -> None:
     subprocess.run(["callgrind_control", *flags, str(pid)], check=True, capture_output=True)
 
 
-def counted(pid: int, out: Path, window: int, send: Callable[[], T]) -> tuple[int, T]:
+def counted(pid: int, out: Path, window: int, send: Callable[[], T]) -> tuple[dict[str, int], T]:
     """Run ``send()`` with counting on in process *pid*, its *window*-th measurement; return
-    the instructions counted and what ``send`` returned."""
+    the events counted (``Ir``: instructions; with the cache simulation ``DLmr`` and ``DLmw``,
+    last-level data read and write misses, and more) and what ``send`` returned."""
     _control(pid, "-i", "on")
     try:
         sent = send()
@@ -83,10 +121,12 @@ def counted(pid: int, out: Path, window: int, send: Callable[[], T]) -> tuple[in
         _control(pid, "-i", "off")
     _control(pid, "-d")  # written to out.<pid>.<window>, and the counts start again from zero
     dump = Path(f"{out}.{pid}.{window}")
-    found = _TOTALS.search(dump.read_bytes())
-    if found is None:
+    text = dump.read_bytes()
+    events, totals = _EVENTS.search(text), _TOTALS.search(text)
+    if events is None or totals is None:
         raise SystemExit(f"no totals in {dump}")
-    return int(found.group(1)), sent
+    names = events.group(1).decode().split()
+    return dict(zip(names, map(int, totals.group(1).split()), strict=True)), sent
 
 
 def _keep(folder: Path, keep: Path | None) -> None:
@@ -106,19 +146,24 @@ def relay(args: argparse.Namespace) -> None:
         f"{args.messages} messages of {args.size // 1024} KB, {args.new_words} new words each; "
         "user-space instructions per message, counted by callgrind"
     )
-    print(f"{'cli':>3} {'bare':>12} {'mailweir':>12} {'ratio':>7}")
+    misses = f" {'LL misses bare':>15} {'mailweir':>9}" if args.cache_sim else ""
+    print(f"{'cli':>3} {'bare':>12} {'mailweir':>12} {'ratio':>7}{misses}")
     with tempfile.TemporaryDirectory(prefix="mailweir-bench-instr-") as tmp, ExitStack() as stop:
         folder = Path(tmp)
         here = [PYTHON, str(BENCH / "relay_parts.py")]
         sink, sink_port = _start([*here, "sink", str(folder / "sink")], folder / "sink")
         stop.callback(_stop, sink)
         bare_argv = [*here, "bare", f"{LOCAL}:{sink_port}", str(folder / "bare"), "--wire"]
-        bare, bare_port = _start(callgrind(folder / "bare", bare_argv), folder / "bare", None)
+        bare_argv = callgrind(folder / "bare", bare_argv, args.cache_sim)
+        bare, bare_port = _start(bare_argv, folder / "bare", None)
         stop.callback(_stop, bare)
         port = _free_port()
-        config = _mailweir_config(folder, model, sink_port, port)
-        daemon_argv = [PYTHON, MAILWEIR, "run", "--config", str(config)]
-        daemon, _ = _start(callgrind(folder / "mailweir", daemon_argv), None, port, START_WAIT)
+        staleness = f"staleness_seconds = {5 * SLOWDOWN}\n"
+        by_count = "verdict_batch_seconds = 3600\n"  # the verdict log writes by count (above)
+        config = _mailweir_config(folder, model, sink_port, port, staleness, by_count)
+        daemon_argv = [PYTHON, "-c", _SLOW_DAEMON, "run", "--config", str(config)]
+        daemon_argv = callgrind(folder / "mailweir", daemon_argv, args.cache_sim)
+        daemon, _ = _start(daemon_argv, None, port, START_WAIT)
         stop.callback(_stop, daemon)
         asyncio.run(push(port, messages, 8))  # the count cache then holds their tokens
         servers = {"bare": (bare.pid, bare_port), "mailweir": (daemon.pid, port)}
@@ -127,16 +172,28 @@ def relay(args: argparse.Namespace) -> None:
                 bench_mail.with_new_words(raw, i, args.new_words, window)
                 for i, raw in enumerate(messages)
             ]
-            per_message = {}
+            per_message: dict[str, dict[str, float]] = {}
             for name, (pid, server_port) in servers.items():
-                asyncio.run(push(server_port, messages[: clients * 4], clients))  # warm-up
+                # Warm-up with new words of their own: the first messages that bring new
+                # words after the unmeasured pass cost more (about 60 thousand instructions a
+                # message over 200), whichever window they fall in.
+                warm = [
+                    bench_mail.with_new_words(raw, i, args.new_words, 1000 + window)
+                    for i, raw in enumerate(messages[:50])
+                ]
+                asyncio.run(push(server_port, warm, clients))
                 send = functools.partial(asyncio.run, push(server_port, fresh, clients))
-                total, results = counted(pid, folder / name, window, send)
+                totals, results = counted(pid, folder / name, window, send)
                 if results.failures:
                     raise SystemExit(f"{name}: {len(results.failures)} messages refused")
-                per_message[name] = total / len(fresh)
-            bare_count, ours = per_message["bare"], per_message["mailweir"]
-            print(f"{clients:>3} {bare_count:>12,.0f} {ours:>12,.0f} {ours / bare_count:>7.3f}")
+                per_message[name] = {event: n / len(fresh) for event, n in totals.items()}
+            bare, ours = per_message["bare"], per_message["mailweir"]
+            line = f"{clients:>3} {bare['Ir']:>12,.0f} {ours['Ir']:>12,.0f}"
+            line += f" {ours['Ir'] / bare['Ir']:>7.3f}"
+            if args.cache_sim:
+                line += f" {bare['DLmr'] + bare['DLmw']:>15,.0f}"
+                line += f" {ours['DLmr'] + ours['DLmw']:>9,.0f}"
+            print(line)
         _keep(folder, args.keep)
 
 
@@ -179,11 +236,12 @@ def scoring_child(args: argparse.Namespace) -> None:
             for raw in fresh:
                 bench_scoring._whole_path(store, scorer, raw)
 
-        total, _ = counted(os.getpid(), args.out, 1, send)
+        totals, _ = counted(os.getpid(), args.out, 1, send)
         store.close()
     print(
         f"scoring path, {args.messages} messages of {args.size // 1024} KB, "
-        f"{args.new_words} new words each: {total / len(fresh):,.0f} instructions per message"
+        f"{args.new_words} new words each: "
+        f"{totals['Ir'] / len(fresh):,.0f} instructions per message"
     )
 
 
@@ -197,6 +255,11 @@ def main() -> None:
     parser.add_argument("--new-words", type=int, default=6, help="never-seen words per message")
     parser.add_argument(
         "--keep", type=Path, help="copy callgrind's files here, for callgrind_annotate"
+    )
+    parser.add_argument(
+        "--cache-sim",
+        action="store_true",
+        help="relay: also count last-level cache misses (simulated; about twice as slow)",
     )
     parser.add_argument("--out", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()
