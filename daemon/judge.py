@@ -172,8 +172,8 @@ def tokenize_step(raw: bytes, options: TokenizerOptions) -> tuple[TokenHashes, T
     words, aligned = tokens_and_hashes(raw, options)
     # Distinct texts have distinct hashes but for a BLAKE2b collision, and distinct keys sort
     # the same way whatever the method: the plain sort serves, and the stable one (the first
-    # text of a repeated hash keeps it) runs only when a hash repeats.  Half the instructions
-    # of always sorting stably (15 against 30 thousand for a 4 KB message's 216 hashes).
+    # text of a repeated hash keeps it) runs only when a hash repeats.  Sorting and checking a
+    # 4 KB message's 216 hashes: 51 against 60 thousand instructions, 7 against 10 µs.
     order = aligned.argsort()
     ordered = aligned[order]
     if not (ordered[1:] == ordered[:-1]).any():
