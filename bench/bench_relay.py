@@ -12,9 +12,12 @@ For each message size and client count it prints throughput, p50/p99 latency (MA
 from /proc) and the CPU other processes of the machine used meanwhile (busy time from
 /proc/stat minus this benchmark's own process tree), and the server tree's memory after each
 run: RSS summed over its processes, and PSS, where a page the processes share (the libraries
-the scoring pool's forkserver preloaded) counts once.  The machine is shared: compare only
-within one run.  Each message size starts with one unmeasured pass of its messages through
-the daemon (the count cache then holds their tokens), and each run with a short warm-up.  Each
+the scoring pool's forkserver preloaded) counts once.  Before each pair, a memory probe
+(``machine_probe.py``: random reads from 32 MB) shows what other tenants of the processor's
+caches, invisible in /proc, are doing to mailweir's table lookups.  The machine is shared:
+compare only within one run.  Each message size starts with one unmeasured pass of its
+messages through the daemon (the count cache then holds their tokens), and each run with a
+short warm-up.  Each
 measured run then sends them with a last line of ``--new-words`` (6) words never seen before,
 new for every run, as real mail brings (about 6 of 110 tokens per message on the development
 corpus): the daemon has to ask the database about those, as it would in service.  With
@@ -53,6 +56,7 @@ sys.path.insert(0, str(BENCH))
 
 import bench_mail  # noqa: E402
 import proc_cpu  # noqa: E402
+from machine_probe import random_read_ns  # noqa: E402
 from relay_parts import LOCAL, push  # noqa: E402
 
 PYTHON = sys.executable
@@ -176,7 +180,7 @@ def _measure(
     )
 
 
-def _print(bare: Figures, mine: Figures) -> None:
+def _print(bare: Figures, mine: Figures, read_ns: float) -> None:
     for f in (bare, mine):
         print(
             f"{f.size:>6} {f.clients:>3} {f.server:<8} {f.rate:8.0f} {f.p50_ms:8.1f} "
@@ -185,7 +189,8 @@ def _print(bare: Figures, mine: Figures) -> None:
     print(
         f"{'':>6} {'':>3} {'ratio':<8} {mine.rate / bare.rate:8.2f} "
         f"{mine.p50_ms / bare.p50_ms:8.2f} {mine.p99_ms / bare.p99_ms:8.2f} "
-        f"{mine.cpu_ms / bare.cpu_ms:8.2f}   added p99 {mine.p99_ms - bare.p99_ms:.1f} ms"
+        f"{mine.cpu_ms / bare.cpu_ms:8.2f}   added p99 {mine.p99_ms - bare.p99_ms:.1f} ms, "
+        f"memory probe {read_ns:.1f} ns"
     )
 
 
@@ -259,9 +264,10 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
                     bench_mail.with_new_words(raw, i, args.new_words, salt)
                     for i, raw in enumerate(messages)
                 ]
+                read_ns = random_read_ns()
                 bare = _measure("bare", bare_pid, bare_port, fresh, clients, label)
                 mine = _measure("mailweir", pid, port, fresh, clients, label)
-                _print(bare, mine)
+                _print(bare, mine, read_ns)
                 pairs.setdefault((label, clients), []).append((bare, mine))
     if args.rounds > 1:
         _summarize(pairs)
