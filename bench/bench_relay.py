@@ -17,10 +17,10 @@ the scoring pool's forkserver preloaded) counts once.  Before each pair, a memor
 caches, invisible in /proc, are doing to mailweir's table lookups.  The machine is shared:
 compare only within one run.  Each message size starts with one unmeasured pass of its
 messages through the daemon (the count cache then holds their tokens), and each run with a
-short warm-up.  Each
-measured run then sends them with a last line of ``--new-words`` (6) words never seen before,
-new for every run, as real mail brings (about 6 of 110 tokens per message on the development
-corpus): the daemon has to ask the database about those, as it would in service.  With
+short warm-up.  Each measured run then sends them with a last line of ``--new-words`` (6)
+words never seen before, new for every run, as real mail brings (about 6 of 110 tokens per
+message on the development corpus): the daemon has to ask the database about those, as it
+would in service.  With
 ``--new-words 0`` every count is in memory, the best case.  The bare relay sends DATA as
 mailweir does (``relay_parts.py``), so that the two differ by the judging alone;
 ``--bare-data library`` has it use aiosmtplib's ``data`` instead, as the simplest relay would

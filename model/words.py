@@ -41,7 +41,7 @@ _MONEY_START: Final = re.compile(r"[$€£¥\d]\d*")  # a sign, or a run of digi
 # pattern takes those that ``str.isspace``).
 _AMOUNT_CHARS: Final = frozenset("0123456789.,")
 _ASCII_SPACE: Final = frozenset(chr(byte) for byte in range(128) if chr(byte).isspace())
-_AMOUNT_ENDS: Final = ("$", "usd", "eur", "gbp")
+_AMOUNT_ENDS: Final = ("$", *sorted(_CURRENCY_WORDS))  # the ASCII sign and the words
 # Cheap tests that decide whether the slower obfuscation checks run at all.
 _LEET_HINT: Final = LEET_NEIGHBOUR
 # "\b\w[sep]\w[sep]\w[sep]\w\b", written to start at the first separator (skipped to in C)
