@@ -97,11 +97,14 @@ def coding_table(default: str, codes: dict[str, str]) -> bytes:
 
 # The hint for ASCII text, coded: separators as " ", units as "u", anything else as "x", where
 # the hint is the literal run " u" + " "{1,3} + "u " (spaced_runs: 29 against 55 µs for the
-# development corpus's 4 KB mail with the hint's character-set form).
+# development corpus's 4 KB mail with the hint's character-set form).  Written " u " + " "{0,2}
+# + "u ", the same runs, so that the engine's literal prefix is " u " (a lone unit) and not
+# " u" (the start of every word), where each hit entered the matcher: for the development
+# corpus's 4 KB mail, 69 against 158 thousand instructions.
 _HINT_CODE: Final = coding_table(
     "x", dict.fromkeys(" \t.-_*+~", " ") | dict.fromkeys(_UNIT_ASCII_CHARS, "u")
 )
-_SPACED_HINT_CODED: Final = re.compile(rb" u {1,3}u ")
+_SPACED_HINT_CODED: Final = re.compile(rb" u  {0,2}u ")
 
 
 def clean_text(text: str) -> tuple[str, bool]:
