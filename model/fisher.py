@@ -30,27 +30,11 @@ from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashe
 _LEAST_DOUBLE = 5e-324
 # Counts below this convert to float exactly, and so does the sum of two (below 2**53).
 _EXACT_COUNTS = 2**52
+# e^700 is below the largest double (about e^709.78), so below this m every Poisson term fits.
+_DIRECT_BELOW = 700.0
 # From this many usable tokens a partial sort finds the capped selection faster than a full
 # one (measured: equal near 400, 10x faster at 5,000).
 _PARTIAL_SORT_FROM = 400
-
-
-@lru_cache(maxsize=8)
-def _log_factorial_table(size: int) -> FloatArray:
-    """Shape (size,): log(i!) for i < size, each from lgamma (no summed rounding)."""
-    table = np.array([math.lgamma(i + 1.0) for i in range(size)])
-    table.flags.writeable = False
-    return table
-
-
-@lru_cache(maxsize=64)
-def _term_tables(terms: int) -> tuple[FloatArray, FloatArray]:
-    """Shape (terms,) each: i as float (its products match the integer's exactly) and log(i!),
-    sliced from tables sized to a power of two."""
-    size = max(64, 1 << (terms - 1).bit_length())
-    indices = np.arange(size, dtype=np.float64)
-    indices.flags.writeable = False
-    return indices[:terms], _log_factorial_table(size)[:terms]
 
 
 def chi2_log_survival_even(statistic: float, dof: int) -> float:
@@ -85,23 +69,48 @@ def chi2_log_survival_even(statistic: float, dof: int) -> float:
 def _log_survivals_even(statistics: list[float], dof: int) -> list[float]:
     """`chi2_log_survival_even` of several checked statistics with one ``dof``, one row each.
 
-    The rows share every array operation (Robinson's H and S cost one pass); each row's
-    operations and summation order are those of a single statistic, so results do not
-    depend on the batching.
+    With m = x / 2 below ``_DIRECT_BELOW`` every term m^i / i! is at most e^m, far from
+    overflow, so the terms come directly, t_i = t_(i-1) m / i: one division, one running
+    product and one sum for all the rows (Robinson's H and S together), and no exp, against
+    the log-sum-exp of every term that is kept for larger m (only without a cap on the
+    tokens).  Each row's operations and summation order are those of a single statistic,
+    so results do not depend on the batching.
     """
+    terms = dof // 2
     halves = [statistic / 2.0 for statistic in statistics]
-    indices, log_factorials = _term_tables(dof // 2)
-    # ln m of a zero statistic is never used (Q = 1 there); 0.0 keeps the row finite.
-    log_half = np.array([[math.log(half) if half > 0 else 0.0] for half in halves])
-    # Row r: log(m_r^i / i!) = i ln m_r - ln i!, i < n.  (ufunc.reduce is the array methods'
-    # reduction without their Python layer; rows sum in the order of a 1-D sum.)
-    log_terms = log_half * indices - log_factorials
-    top = np.maximum.reduce(log_terms, axis=1, keepdims=True)
-    sums = np.add.reduce(np.exp(log_terms - top), axis=1)
+    heads = _poisson_heads([half if half < _DIRECT_BELOW else 0.0 for half in halves], terms)
     return [
-        0.0 if half == 0.0 else min(0.0, peak + math.log(total) - half)
-        for half, peak, total in zip(halves, top.ravel().tolist(), sums.tolist(), strict=True)
+        min(0.0, math.log(head) - half) if half < _DIRECT_BELOW else _log_survival_far(half, terms)
+        for half, head in zip(halves, heads, strict=True)
     ]
+
+
+def _poisson_heads(halves: list[float], terms: int) -> list[float]:
+    """sum_{i < terms} m^i / i! for each m (below ``_DIRECT_BELOW``): 1 + t_1 + ... as rows
+    of running products of m / i (``ufunc.reduce`` and ``accumulate`` are the array
+    methods without their Python layer; a row sums in the order of a 1-D sum)."""
+    if terms == 1:
+        return [1.0] * len(halves)
+    steps = np.array(halves)[:, None] / _indices(terms)
+    np.multiply.accumulate(steps, axis=1, out=steps)
+    return [1.0 + total for total in np.add.reduce(steps, axis=1).tolist()]
+
+
+@lru_cache(maxsize=64)
+def _indices(terms: int) -> FloatArray:
+    """Shape (terms - 1,): 1.0, 2.0, ..., terms - 1."""
+    indices = np.arange(1, terms, dtype=np.float64)
+    indices.flags.writeable = False
+    return indices
+
+
+def _log_survival_far(half: float, terms: int) -> float:
+    """log Q for m of ``_DIRECT_BELOW`` or more: log-sum-exp of ln(m^i / i!), i < terms."""
+    log_half = math.log(half)
+    log_terms = [i * log_half - math.lgamma(i + 1.0) for i in range(terms)]
+    top = max(log_terms)
+    total = math.fsum([math.exp(term - top) for term in log_terms])
+    return min(0.0, top + math.log(total) - half)
 
 
 def chi2_survival_even(statistic: float, dof: int) -> float:

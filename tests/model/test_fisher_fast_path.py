@@ -1,7 +1,7 @@
 """Robinson-Fisher's fast scoring path equals a plain reference, bit for bit.
 
 The reference below is the method written out as its docstring states it (Robinson 2003 for
-f, Fisher's chi-square combining for I), one array step at a time with no shortcut: every
+f, Fisher's chi-square combining for I), one step at a time with no shortcut: every
 token's f, a stable sort of the usable ones, the Poisson-sum survival function for each of H
 and S separately, ``log([1 - I, I])`` through the shared posterior step, and the evidence
 ranked over the whole weight vector.  The fast path must give the same floats, not merely
@@ -19,7 +19,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import chi2
 
-from mailweir.model.fisher import RobinsonFisher, chi2_log_survival_even
+from mailweir.model.fisher import RobinsonFisher, _log_survivals_even, chi2_log_survival_even
 from mailweir.model.nb_base import Evidence, Score, posterior_spam, strongest_evidence
 from mailweir.model.types import HAM, SPAM, Vocabulary
 
@@ -45,15 +45,18 @@ def _reference_selected(model: RobinsonFisher, f: np.ndarray) -> np.ndarray:
 
 
 def _reference_log_survival(statistic: float, dof: int) -> float:
-    # Q(x; 2n) = exp(-m) sum_{i<n} m^i / i!, m = x / 2, as log-sum-exp over one 1-D array.
+    # Q(x; 2n) = exp(-m) sum_{i<n} m^i / i!, m = x / 2: the terms by t_i = t_(i-1) m / i;
+    # from m = 700, where e^m nears the largest double, as log-sum-exp (that sum rounded once).
     half = statistic / 2.0
     if half == 0.0:
         return 0.0
-    i = np.arange(dof // 2)
-    log_factorials = np.array([math.lgamma(k + 1.0) for k in range(dof // 2)])
-    log_terms = i * math.log(half) - log_factorials
-    top = float(log_terms.max())
-    return min(0.0, top + math.log(float(np.exp(log_terms - top).sum())) - half)
+    if half < 700.0:
+        terms = np.multiply.accumulate(half / np.arange(1.0, dof // 2))  # t_1 .. t_(n-1)
+        return min(0.0, math.log(1.0 + float(terms.sum())) - half)
+    log_terms = [k * math.log(half) - math.lgamma(k + 1.0) for k in range(dof // 2)]
+    top = max(log_terms)
+    total = math.fsum(math.exp(term - top) for term in log_terms)
+    return min(0.0, top + math.log(total) - half)
 
 
 def _reference_indicator(log_f: np.ndarray, log_rest: np.ndarray) -> float:
@@ -297,17 +300,24 @@ def test_strongest_evidence_few_and_many_equal_reference(
     statistics=st.lists(st.floats(0.0, 5e4), min_size=1, max_size=3),
     terms=st.integers(1, 3000),
 )
-def test_chi2_log_survival_rows_equal_one_at_a_time(statistics: list[float], terms: int) -> None:
-    # H and S are computed as two rows of one array; each must equal the plain 1-D sum.
-    for statistic in statistics:
-        assert chi2_log_survival_even(statistic, 2 * terms) == _reference_log_survival(
-            statistic, 2 * terms
-        )
+def test_chi2_log_survival_batch_equals_one_at_a_time(statistics: list[float], terms: int) -> None:
+    # H and S are computed in one call; each must equal the reference alone.
+    assert _log_survivals_even(statistics, 2 * terms) == [
+        _reference_log_survival(statistic, 2 * terms) for statistic in statistics
+    ]
 
 
 def test_chi2_reference_matches_scipy() -> None:
     # The reference itself, against scipy.stats.chi2.logsf (test-only oracle).
-    for statistic, dof in [(3.0, 4), (40.0, 50), (0.5, 2), (900.0, 400)]:
+    # Both ways of summing: m = x / 2 below 700 (directly) and above (in log space).
+    for statistic, dof in [
+        (3.0, 4),
+        (40.0, 50),
+        (0.5, 2),
+        (900.0, 400),
+        (1000.0, 3000),
+        (3000.0, 2000),
+    ]:
         assert _reference_log_survival(statistic, dof) == pytest.approx(
             chi2.logsf(statistic, dof), rel=1e-9
         )
@@ -319,8 +329,8 @@ def test_chi2_reference_matches_scipy() -> None:
     terms=st.integers(1, 64),
 )
 def test_chi2_log_survival_few_terms_equals_reference(half: float, terms: int) -> None:
-    # The capped path's sizes; whole numbers m put two equal terms at the peak of the row
-    # (m^m / m! = m^(m-1) / (m-1)!), where the largest term must still be the same one.
+    # The capped path's sizes, whole and fractional m, summed directly below m = 700 and in
+    # log space above (whole m put two equal terms at the peak, m^m / m! = m^(m-1) / (m-1)!).
     assert chi2_log_survival_even(2.0 * half, 2 * terms) == _reference_log_survival(
         2.0 * half, 2 * terms
     )
