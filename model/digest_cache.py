@@ -27,6 +27,8 @@ import threading
 import numpy as np
 import numpy.typing as npt
 
+from .aligned import line_aligned
+
 WAYS = 8  # ``get`` reads a set's match flags as one 8-byte word
 _EMPTY = -1  # never a str's hash()
 _MIN_SETS = 16
@@ -54,8 +56,9 @@ class DigestCache:
         while sets * WAYS < entries:
             sets *= 2
         with self._lock:
-            self._keys = np.full((sets, WAYS), _EMPTY, dtype=np.int64)
-            self._values = np.zeros((sets, WAYS), dtype=np.int64)
+            # A set's 8 keys on one cache line, not two (aligned.py).
+            self._keys = line_aligned((sets, WAYS), np.int64, _EMPTY)
+            self._values = line_aligned((sets, WAYS), np.int64)
             self._mask = np.int64(sets - 1)
 
     def clear(self) -> None:
