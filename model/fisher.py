@@ -44,8 +44,10 @@ def chi2_log_survival_even(statistic: float, dof: int) -> float:
 
         Q(x; 2n) = exp(-m) sum_{i=0}^{n-1} m^i / i!,   m = x / 2,
 
-    evaluated here term by term in log space (log-sum-exp), so it neither overflows nor
-    underflows for thousands of degrees of freedom or huge statistics.
+    returned as log Q = log(sum) - m, so Q itself never underflows.  The sum is taken
+    directly while every term fits a double (m below 700) and term by term in log space
+    (log-sum-exp) beyond, so it neither overflows nor underflows for thousands of degrees of
+    freedom or huge statistics.
 
     Parameters
     ----------
