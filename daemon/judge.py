@@ -444,12 +444,11 @@ def _evidence_text(
     # One search for all of them: a call per item cost more than the rest of this step.
     at = np.minimum(hashes.searchsorted(wanted), len(hashes) - 1).tolist()
     held = hashes[at].tolist()
+    # And the texts in one step: 8 indexings of a TokenTexts cost 61 thousand instructions.
+    names = texts.texts_at(at) if isinstance(texts, TokenTexts) else [texts[i] for i in at]
     return tuple(
-        (
-            texts[index] if value == item.token_hash else _unnamed(item.token_hash),
-            float(item.weight),
-        )
-        for item, index, value in zip(ranked, at, held, strict=True)
+        (name if value == token_hash else _unnamed(token_hash), float(weight))
+        for (token_hash, weight), name, value in zip(ranked, names, held, strict=True)
     )
 
 

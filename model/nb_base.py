@@ -18,7 +18,7 @@ from __future__ import annotations
 
 from abc import ABC, abstractmethod
 from dataclasses import dataclass, fields
-from typing import ClassVar
+from typing import ClassVar, NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -33,9 +33,12 @@ UNTRAINED_PROBABILITY = 0.5
 _FEW_WEIGHTS = 64
 
 
-@dataclass(frozen=True)
-class Evidence:
+class Evidence(NamedTuple):
     """One token's signed share of the verdict.
+
+    A named tuple rather than a frozen dataclass: a judge makes eight for every message, and
+    a frozen dataclass's ``__init__`` sets each field through ``object.__setattr__`` (42
+    against 29 thousand instructions for eight).
 
     Attributes
     ----------

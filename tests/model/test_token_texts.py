@@ -72,3 +72,21 @@ def test_a_view_indexes_slices_and_pickles_like_a_list() -> None:
     assert list(pickle.loads(pickle.dumps(view))) == list(view)  # the process pool sends it
     with pytest.raises(IndexError):
         view[3]
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    lines=st.lists(st.lists(st.sampled_from(MAIL_WORDS), max_size=14), min_size=1, max_size=6),
+    bigrams=st.booleans(),
+    picks=st.lists(st.integers(0, 10_000), max_size=12),
+)
+def test_texts_at_equals_indexing_one_at_a_time(
+    lines: list[list[str]], bigrams: bool, picks: list[int]
+) -> None:
+    raw = (HEAD + "\r\n".join(" ".join(line) for line in lines) + "\r\n").encode()
+    _, texts = tokenize_step(raw, TokenizerOptions(bigrams=bigrams, bigram_window=3))
+    positions = [pick % len(texts) for pick in picks]
+    assert texts.texts_at(positions) == [texts[at] for at in positions]  # a sorted view
+    whole, _ = tokens_and_hashes(raw, TokenizerOptions(bigrams=bigrams, bigram_window=3))
+    positions = [pick % len(whole) for pick in picks]
+    assert whole.texts_at(positions) == [whole[at] for at in positions]  # no view order
