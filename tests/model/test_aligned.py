@@ -55,5 +55,5 @@ def test_count_cache_buckets_start_on_lines_also_after_growing() -> None:
 
 def test_digest_cache_sets_start_on_lines() -> None:
     cache = DigestCache(100_000)
-    assert cache._sets.ctypes.data % CACHE_LINE == 0
-    assert cache._sets.strides[0] == CACHE_LINE  # a set's keys and hashes: one line
+    assert cache._keys.ctypes.data % CACHE_LINE == 0
+    assert cache._values.ctypes.data % CACHE_LINE == 0

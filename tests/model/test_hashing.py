@@ -19,7 +19,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from mailweir.model import hashing
-from mailweir.model.digest_cache import WAYS, DigestCache
+from mailweir.model.digest_cache import DigestCache
 from mailweir.model.hashing import hash_tokens, message_digest, token_hash, token_hashes
 
 
@@ -141,14 +141,14 @@ def test_token_hashes_one_for_one_through_the_cache() -> None:
 
 
 def test_token_hashes_right_when_the_cache_overflows(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(hashing, "_digest_cache", DigestCache(16))  # the least: 16 sets
+    monkeypatch.setattr(hashing, "_digest_cache", DigestCache(16))  # 128 slots
     monkeypatch.setattr(hashing, "_staged", {})
     monkeypatch.setattr(hashing, "_STAGED_LIMIT", 100)
     words = [f"word{i}" for i in range(2000)]
     for start in range(0, 2000, 250):
         chunk = words[start : start + 250]
         assert token_hashes(chunk).tolist() == [token_hash(w) for w in chunk]
-    assert len(hashing._digest_cache) <= hashing._digest_cache.capacity == 16 * WAYS
+    assert len(hashing._digest_cache) <= hashing._digest_cache.capacity == 128
     assert token_hashes(words).tolist() == [token_hash(w) for w in words]
 
 
@@ -165,7 +165,7 @@ def test_limit_digest_cache_resizes_and_empties(monkeypatch: pytest.MonkeyPatch)
 
 
 def test_token_hashes_from_threads_sharing_a_small_cache(monkeypatch: pytest.MonkeyPatch) -> None:
-    """The table changes under one lock: a key read beside another entry's hash would give
+    """Both arrays change under one lock: a key read beside another entry's hash would give
     a word the wrong hash.  Two threads, a cache far too small, every answer checked."""
     monkeypatch.setattr(hashing, "_digest_cache", DigestCache(64))
     monkeypatch.setattr(hashing, "_staged", {})
