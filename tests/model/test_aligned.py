@@ -33,15 +33,6 @@ def test_line_aligned_keeps_its_buffer_alive() -> None:
     assert array.base is not None and array.sum() == 5 * 7999 + 9
 
 
-def test_plain_numpy_arrays_are_not_line_aligned_here() -> None:
-    # Why the module exists: what the allocator gives a large array (16 past a line on
-    # x86-64 glibc, measured; informational elsewhere, so only a skip when it differs).
-    offset = np.zeros((40_000, 16), dtype=np.int64).ctypes.data % CACHE_LINE
-    if offset == 0:
-        pytest.skip("this allocator already aligns large arrays to a cache line")
-    assert offset % 8 == 0
-
-
 def test_count_cache_buckets_start_on_lines_also_after_growing() -> None:
     cache = CountCache(200_000)
     assert cache._table.ctypes.data % CACHE_LINE == 0
