@@ -71,22 +71,17 @@ class TokenTexts(Sequence[str]):
 
     def __getitem__(self, index: int | slice) -> str | list[str]:
         if isinstance(index, slice):
-            return [self[i] for i in range(*index.indices(len(self)))]
+            return self.texts_at(list(range(*index.indices(len(self)))))
         if not -len(self) <= index < len(self):
             raise IndexError("token index out of range")
-        where = index % len(self)
-        if self._order is not None:
-            where = int(self._order[where])
-        if where < len(self._singles):
-            return self._singles[where]
-        return self._pair_text(where - len(self._singles))
+        return self.texts_at([index % len(self)])[0]
 
     def texts_at(self, positions: list[int]) -> list[str]:
-        """The texts at *positions* (each in range), in that order.
+        """The texts at *positions* (each in range), in that order: the one place a view's
+        order and a pair's text are resolved.
 
-        One step for all of them: indexing one at a time checks its index and resolves the
-        view's order for each (a judge names eight evidence tokens a message: 61 thousand
-        instructions that way)."""
+        One step for all of them: a judge naming its eight evidence tokens one index at a
+        time spent 61 thousand instructions a message on the checks and lookups of each."""
         where = positions if self._order is None else self._order[positions].tolist()
         singles = self._singles
         count = len(singles)
@@ -97,7 +92,7 @@ class TokenTexts(Sequence[str]):
         return pair_text(words, int(self._at[pair]), self._window)
 
     def __iter__(self) -> Iterator[str]:
-        return (self[i] for i in range(len(self)))
+        return iter(self.texts_at(list(range(len(self)))))
 
     def __eq__(self, other: object) -> bool:
         if isinstance(other, TokenTexts | list | tuple):
