@@ -27,9 +27,17 @@ mailweir does (``relay_parts.py``), so that the two differ by the judging alone;
 (3-5% more CPU a 4 KB message; the figures in the README before 3 December 07:00 UTC were
 measured that way).
 
+``--without-judging`` adds a third server to every round: the same daemon with its judging
+step replaced by a fixed verdict (``_UNJUDGED_DAEMON``), so it receives, records, tags, logs
+and relays each message as mailweir does, but never parses, tokenizes, looks up or scores it.
+Its row splits mailweir's CPU in two within one round: the daemon's own relaying, against the
+bare relay's, and the judging as it costs in the running daemon (mailweir's CPU less this
+row's), against ``bench_scoring.py``'s figure for the scoring path alone.
+
     python bench/bench_relay.py                          # a few minutes
     python bench/bench_relay.py --messages 4000 --large-messages 800 --rounds 2
     python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9   # the target's spread
+    python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9 --without-judging
 
 With more than one round, a last table gives each pair's median and range over the rounds.
 
@@ -61,6 +69,26 @@ from relay_parts import LOCAL, push  # noqa: E402
 
 PYTHON = sys.executable
 MAILWEIR = str(Path(PYTHON).with_name("mailweir"))
+# The daemon with a fixed verdict in place of judging (--without-judging).  Its token hashes
+# stand in for the message's in the verdict record, about as many as the tokenizer makes
+# (210 for the generated 4 KB mail; one per 20 bytes, at most the 4,000 a message keeps).
+_UNJUDGED_DAEMON = """
+import sys
+import numpy as np
+from mailweir.daemon import judge
+from mailweir.daemon.entry import main
+
+HASHES = np.sort(np.random.default_rng(7).integers(-2**63, 2**63 - 1, 4000, dtype=np.int64))
+EVIDENCE = (("invoice", 2.1), ("overdue", 1.4), ("harbour", -3.0), ("rota", -2.2))
+
+async def fixed_verdict(self, tracking_id, raw, policy, executor):
+    hashes = HASHES[: max(1, min(4000, len(raw) // 20))]
+    return judge.Judgement(tracking_id, "ham", 0.02, EVIDENCE, hashes)
+
+judge.Judge._judge = fixed_verdict
+sys.argv[0] = "mailweir"
+main()
+"""
 
 
 @dataclass
@@ -180,8 +208,8 @@ def _measure(
     )
 
 
-def _print(bare: Figures, mine: Figures, read_ns: float) -> None:
-    for f in (bare, mine):
+def _print(bare: Figures, mine: Figures, read_ns: float, unjudged: Figures | None) -> None:
+    for f in (bare, mine) if unjudged is None else (bare, mine, unjudged):
         print(
             f"{f.size:>6} {f.clients:>3} {f.server:<8} {f.rate:8.0f} {f.p50_ms:8.1f} "
             f"{f.p99_ms:8.1f} {f.cpu_ms:8.2f} {f.others_cpu:7.1f}s {f.rss_mb:6.0f} {f.pss_mb:6.0f}"
@@ -192,6 +220,11 @@ def _print(bare: Figures, mine: Figures, read_ns: float) -> None:
         f"{mine.cpu_ms / bare.cpu_ms:8.2f}   added p99 {mine.p99_ms - bare.p99_ms:.1f} ms, "
         f"memory probe {read_ns:.1f} ns"
     )
+    if unjudged is not None:
+        print(
+            f"{'':>6} {'':>3} {'':<8} {'':>35} relaying {unjudged.cpu_ms / bare.cpu_ms:.2f} "
+            f"of the bare relay's CPU, judging {mine.cpu_ms - unjudged.cpu_ms:.2f} ms a message"
+        )
 
 
 def main() -> None:
@@ -213,6 +246,11 @@ def main() -> None:
         default="wire",
         help="how the bare relay sends DATA: as mailweir does (the default), or aiosmtplib's data",
     )
+    parser.add_argument(
+        "--without-judging",
+        action="store_true",
+        help="also run the daemon with a fixed verdict in place of judging (module docstring)",
+    )
     args = parser.parse_args()
     model = bench_mail.build_model(args.min_tokens)
     with tempfile.TemporaryDirectory(prefix="mailweir-bench-relay-") as tmp, ExitStack() as stop:
@@ -230,7 +268,16 @@ def main() -> None:
         config = _mailweir_config(folder, model, sink_port, port)
         daemon, _ = _start([MAILWEIR, "run", "--config", str(config)], None, port)
         stop.callback(_stop, daemon)
-        _run(args, bare.pid, bare_port, daemon.pid, port)
+        unjudged: tuple[int, int] | None = None
+        if args.without_judging:
+            (folder / "unjudged").mkdir()
+            other_port = _free_port()
+            config = _mailweir_config(folder / "unjudged", model, sink_port, other_port)
+            argv = [PYTHON, "-c", _UNJUDGED_DAEMON, "run", "--config", str(config)]
+            other, _ = _start(argv, None, other_port)
+            stop.callback(_stop, other)
+            unjudged = (other.pid, other_port)
+        _run(args, (bare.pid, bare_port), (daemon.pid, port), unjudged)
 
 
 def _stop(process: subprocess.Popen[bytes]) -> None:
@@ -238,7 +285,13 @@ def _stop(process: subprocess.Popen[bytes]) -> None:
     process.wait(30)
 
 
-def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port: int) -> None:
+Server = tuple[int, int]  # pid, port
+Round = tuple[Figures, Figures, Figures | None]  # bare, mailweir, mailweir without judging
+
+
+def _run(
+    args: argparse.Namespace, bare_relay: Server, daemon: Server, unjudged: Server | None
+) -> None:
     print(
         f"cores {os.cpu_count()}, load average {os.getloadavg()[0]:.2f} at start, "
         f"{args.new_words} new words per message, the bare relay's DATA by {args.bare_data}"
@@ -248,7 +301,7 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
         f"{'cpu ms':>8} {'others':>8} {'RSS MB':>6} {'PSS MB':>6}"
     )
     salt = 0  # each run's new words are new to the daemon too
-    pairs: dict[tuple[str, int], list[tuple[Figures, Figures]]] = {}
+    pairs: dict[tuple[str, int], list[Round]] = {}
     for size, count in ((4096, args.messages), (100 * 1024, args.large_messages)):
         label = f"{size // 1024}KB"
         if label not in args.sizes:
@@ -256,7 +309,8 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
         messages = [bench_mail.message(i, size, seed=7) for i in range(count)]
         # One pass first, so the count cache holds these messages' tokens: the steady state
         # of a site whose model fits model.cache_tokens (the default is 1,000,000).
-        asyncio.run(push(port, messages, 8))
+        for _, port in (daemon,) if unjudged is None else (daemon, unjudged):
+            asyncio.run(push(port, messages, 8))
         for clients in args.clients:
             for _ in range(args.rounds):
                 salt += 1
@@ -265,24 +319,33 @@ def _run(args: argparse.Namespace, bare_pid: int, bare_port: int, pid: int, port
                     for i, raw in enumerate(messages)
                 ]
                 read_ns = random_read_ns()
-                bare = _measure("bare", bare_pid, bare_port, fresh, clients, label)
-                mine = _measure("mailweir", pid, port, fresh, clients, label)
-                _print(bare, mine, read_ns)
-                pairs.setdefault((label, clients), []).append((bare, mine))
+                bare = _measure("bare", *bare_relay, fresh, clients, label)
+                mine = _measure("mailweir", *daemon, fresh, clients, label)
+                other = None
+                if unjudged is not None:
+                    other = _measure("no-judge", *unjudged, fresh, clients, label)
+                _print(bare, mine, read_ns, other)
+                pairs.setdefault((label, clients), []).append((bare, mine, other))
     if args.rounds > 1:
         _summarize(pairs)
 
 
-def _summarize(pairs: dict[tuple[str, int], list[tuple[Figures, Figures]]]) -> None:
+def _summarize(pairs: dict[tuple[str, int], list[Round]]) -> None:
     """Median and range over the rounds of each pair: one round's ratio moves with the
     machine (other tenants of the processor's caches), so a target is judged on the spread."""
     print("over the rounds: median [least-most] of mailweir / bare")
-    print(f"{'size':>6} {'cli':>3} {'msg/s':>18} {'cpu ms':>18} {'added p99 ms':>20}")
+    split = all(other is not None for runs in pairs.values() for _, _, other in runs)
+    more = f" {'relaying cpu':>18} {'judging ms':>18}" if split else ""
+    print(f"{'size':>6} {'cli':>3} {'msg/s':>18} {'cpu ms':>18} {'added p99 ms':>20}{more}")
     for (label, clients), runs in pairs.items():
-        rate = [mine.rate / bare.rate for bare, mine in runs]
-        cpu = [mine.cpu_ms / bare.cpu_ms for bare, mine in runs]
-        added = [mine.p99_ms - bare.p99_ms for bare, mine in runs]
+        rate = [mine.rate / bare.rate for bare, mine, _ in runs]
+        cpu = [mine.cpu_ms / bare.cpu_ms for bare, mine, _ in runs]
+        added = [mine.p99_ms - bare.p99_ms for bare, mine, _ in runs]
         columns = f"{_spread(rate):>18} {_spread(cpu):>18} {_spread(added):>20}"
+        if split:
+            relaying = [o.cpu_ms / bare.cpu_ms for bare, _, o in runs if o is not None]
+            judging = [mine.cpu_ms - o.cpu_ms for _, mine, o in runs if o is not None]
+            columns += f" {_spread(relaying):>18} {_spread(judging):>18}"
         print(f"{label:>6} {clients:>3} {columns}")
 
 
