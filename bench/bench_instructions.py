@@ -54,7 +54,14 @@ BENCH = Path(__file__).resolve().parent
 sys.path.insert(0, str(BENCH))
 
 import bench_mail  # noqa: E402
-from bench_relay import PYTHON, _free_port, _mailweir_config, _start, _stop  # noqa: E402
+from bench_relay import (  # noqa: E402
+    FIXED_VERDICT,
+    PYTHON,
+    _free_port,
+    _mailweir_config,
+    _start,
+    _stop,
+)
 from relay_parts import LOCAL, push  # noqa: E402
 
 # A server under callgrind runs tens of times slower; imports and the model's preload too.
@@ -67,10 +74,8 @@ START_WAIT = 900.0
 # the same writes in every run.
 SLOWDOWN = 100
 VERDICT_BATCH = 100
-_SLOW_DAEMON = f"""
-import sys
+_STRETCHED = f"""
 from mailweir.daemon import memory_return, verdict_log
-from mailweir.daemon.entry import main
 
 def stretched(init, **defaults):
     def __init__(self, *args, **kwargs):
@@ -83,6 +88,11 @@ memory_return.ReturnFreeMemory.__init__ = stretched(
 verdict_log.VerdictLog.__init__ = stretched(
     verdict_log.VerdictLog.__init__, batch_size={VERDICT_BATCH}
 )
+"""
+_RUN = """
+import sys
+from mailweir.daemon.entry import main
+
 sys.argv[0] = "mailweir"
 main()
 """
@@ -146,8 +156,10 @@ def relay(args: argparse.Namespace) -> None:
         f"{args.messages} messages of {args.size // 1024} KB, {args.new_words} new words each; "
         "user-space instructions per message, counted by callgrind"
     )
-    misses = f" {'LL misses bare':>15} {'mailweir':>9}" if args.cache_sim else ""
-    print(f"{'cli':>3} {'bare':>12} {'mailweir':>12} {'ratio':>7}{misses}")
+    # --without-judging: the daemon with a fixed verdict in place of judging (bench_relay.py)
+    name = "no-judge" if args.without_judging else "mailweir"
+    misses = f" {'LL misses bare':>15} {name:>9}" if args.cache_sim else ""
+    print(f"{'cli':>3} {'bare':>12} {name:>12} {'ratio':>7}{misses}")
     with tempfile.TemporaryDirectory(prefix="mailweir-bench-instr-") as tmp, ExitStack() as stop:
         folder = Path(tmp)
         here = [PYTHON, str(BENCH / "relay_parts.py")]
@@ -161,7 +173,8 @@ def relay(args: argparse.Namespace) -> None:
         staleness = f"staleness_seconds = {5 * SLOWDOWN}\n"
         by_count = "verdict_batch_seconds = 3600\n"  # the verdict log writes by count (above)
         config = _mailweir_config(folder, model, sink_port, port, staleness, by_count)
-        daemon_argv = [PYTHON, "-c", _SLOW_DAEMON, "run", "--config", str(config)]
+        script = _STRETCHED + (FIXED_VERDICT if args.without_judging else "") + _RUN
+        daemon_argv = [PYTHON, "-c", script, "run", "--config", str(config)]
         daemon_argv = callgrind(folder / "mailweir", daemon_argv, args.cache_sim)
         daemon, _ = _start(daemon_argv, None, port, START_WAIT)
         stop.callback(_stop, daemon)
@@ -260,6 +273,11 @@ def main() -> None:
         "--cache-sim",
         action="store_true",
         help="relay: also count last-level cache misses (simulated; about twice as slow)",
+    )
+    parser.add_argument(
+        "--without-judging",
+        action="store_true",
+        help="relay: count the daemon with a fixed verdict in place of judging (bench_relay.py)",
     )
     parser.add_argument("--out", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()

@@ -69,14 +69,13 @@ from relay_parts import LOCAL, push  # noqa: E402
 
 PYTHON = sys.executable
 MAILWEIR = str(Path(PYTHON).with_name("mailweir"))
-# The daemon with a fixed verdict in place of judging (--without-judging).  Its token hashes
-# stand in for the message's in the verdict record, about as many as the tokenizer makes
-# (210 for the generated 4 KB mail; one per 20 bytes, at most the 4,000 a message keeps).
-_UNJUDGED_DAEMON = """
-import sys
+# The daemon with a fixed verdict in place of judging (--without-judging; bench_instructions.py
+# uses the same patch).  Its token hashes stand in for the message's in the verdict record,
+# about as many as the tokenizer makes (210 for the generated 4 KB mail; one per 20 bytes, at
+# most the 4,000 a message keeps).
+FIXED_VERDICT = """
 import numpy as np
 from mailweir.daemon import judge
-from mailweir.daemon.entry import main
 
 HASHES = np.sort(np.random.default_rng(7).integers(-2**63, 2**63 - 1, 4000, dtype=np.int64))
 EVIDENCE = (("invoice", 2.1), ("overdue", 1.4), ("harbour", -3.0), ("rota", -2.2))
@@ -86,6 +85,11 @@ async def fixed_verdict(self, tracking_id, raw, policy, executor):
     return judge.Judgement(tracking_id, "ham", 0.02, EVIDENCE, hashes)
 
 judge.Judge._judge = fixed_verdict
+"""
+_UNJUDGED_DAEMON = f"""{FIXED_VERDICT}
+import sys
+from mailweir.daemon.entry import main
+
 sys.argv[0] = "mailweir"
 main()
 """
