@@ -74,8 +74,14 @@ MAILWEIR = str(Path(PYTHON).with_name("mailweir"))
 # about as many as the tokenizer makes (210 for the generated 4 KB mail; one per 20 bytes, at
 # most the 4,000 a message keeps).
 FIXED_VERDICT = """
+import inspect
 import numpy as np
 from mailweir.daemon import judge
+
+# A changed signature would fail every message into the "failed" band, quietly: refuse.
+expected = ["self", "tracking_id", "raw", "policy", "executor"]
+if list(inspect.signature(judge.Judge._judge).parameters) != expected:
+    raise SystemExit("bench: Judge._judge changed; update FIXED_VERDICT in bench_relay.py")
 
 HASHES = np.sort(np.random.default_rng(7).integers(-2**63, 2**63 - 1, 4000, dtype=np.int64))
 EVIDENCE = (("invoice", 2.1), ("overdue", 1.4), ("harbour", -3.0), ("rota", -2.2))
@@ -113,6 +119,10 @@ class Figures:
     @property
     def rate(self) -> float:
         return self.sent / self.seconds
+
+
+Server = tuple[int, int]  # pid, port
+Round = tuple[Figures, Figures, Figures | None]  # bare, mailweir, mailweir without judging
 
 
 def _free_port() -> int:
@@ -272,7 +282,7 @@ def main() -> None:
         config = _mailweir_config(folder, model, sink_port, port)
         daemon, _ = _start([MAILWEIR, "run", "--config", str(config)], None, port)
         stop.callback(_stop, daemon)
-        unjudged: tuple[int, int] | None = None
+        unjudged: Server | None = None
         if args.without_judging:
             (folder / "unjudged").mkdir()
             other_port = _free_port()
@@ -287,10 +297,6 @@ def main() -> None:
 def _stop(process: subprocess.Popen[bytes]) -> None:
     process.terminate()
     process.wait(30)
-
-
-Server = tuple[int, int]  # pid, port
-Round = tuple[Figures, Figures, Figures | None]  # bare, mailweir, mailweir without judging
 
 
 def _run(
