@@ -97,6 +97,14 @@ sys.argv[0] = "mailweir"
 main()
 """
 T = TypeVar("T")
+
+
+def daemon_script(without_judging: bool = False) -> str:
+    """The code ``python -c`` runs as the daemon: its clock-driven work stretched, and with
+    *without_judging* a fixed verdict in place of judging (bench_relay.py)."""
+    return _STRETCHED + (FIXED_VERDICT if without_judging else "") + _RUN
+
+
 # A dump names its events, then gives their totals in that order ("summary:" there reads 0).
 _EVENTS = re.compile(rb"^events: (.+)$", re.MULTILINE)
 _TOTALS = re.compile(rb"^totals: (.+)$", re.MULTILINE)
@@ -173,7 +181,7 @@ def relay(args: argparse.Namespace) -> None:
         staleness = f"staleness_seconds = {5 * SLOWDOWN}\n"
         by_count = "verdict_batch_seconds = 3600\n"  # the verdict log writes by count (above)
         config = _mailweir_config(folder, model, sink_port, port, staleness, by_count)
-        script = _STRETCHED + (FIXED_VERDICT if args.without_judging else "") + _RUN
+        script = daemon_script(args.without_judging)
         daemon_argv = [PYTHON, "-c", script, "run", "--config", str(config)]
         daemon_argv = callgrind(folder / "mailweir", daemon_argv, args.cache_sim)
         daemon, _ = _start(daemon_argv, None, port, START_WAIT)
