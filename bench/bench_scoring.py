@@ -238,10 +238,12 @@ def bench_memory(path: Path) -> None:
     """Resident memory once every token of the model is held in the count cache, preloaded
     as the daemon does (``ModelStore.preload``)."""
     before = proc_cpu.rss_bytes(os.getpid())
+    reset_peak = _reset_peak_rss()
     store = ModelStore.open(str(path))
     if not store.preload():
         raise SystemExit("the model did not fit in the count cache")
     after = proc_cpu.rss_bytes(os.getpid())
+    peak = _peak_rss_bytes() if reset_peak else None
     stats = store.stats()
     store.close()
     tokens_held = stats.tokens
@@ -251,10 +253,29 @@ def bench_memory(path: Path) -> None:
         f"(budget {budget / 2**20:.1f} MB); opening and preloading added "
         f"{(after - before) / tokens_held:.1f} B per token"
     )
+    if peak is not None:
+        print(f"peak while preloading: {peak / 2**20:7.1f} MB resident")
     print(
         f"database size:       {stats.database_bytes / stats.tokens:7.1f} bytes per token "
         f"({stats.tokens} tokens, {stats.database_bytes / 2**20:.1f} MiB)"
     )
+
+
+def _reset_peak_rss() -> bool:
+    """Start this process's peak resident size afresh (Linux: ``5`` to ``clear_refs``)."""
+    try:
+        Path("/proc/self/clear_refs").write_text("5")
+    except OSError:
+        return False
+    return True
+
+
+def _peak_rss_bytes() -> int:
+    """This process's peak resident size since the last reset (``VmHWM``)."""
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) * 1024
+    raise SystemExit("no VmHWM in /proc/self/status")
 
 
 def main() -> None:

@@ -78,6 +78,13 @@ class CountCache:
         """Forget every entry."""
         self._allocate(_MIN_BUCKETS)
 
+    def reserve(self, tokens: int) -> None:
+        """Make room for *tokens* entries in all (at most ``max_tokens``), so that filling
+        the table rehashes it no more: each rehash holds the old table and the new at once."""
+        tokens = min(tokens, self.max_tokens)
+        if tokens > _MAX_LOAD * _BUCKET * len(self._fill):
+            self._grow(tokens)
+
     def get(self, hashes: TokenHashes) -> tuple[TokenCounts, npt.NDArray[np.bool_]]:
         """Counts for *hashes* (zeros where not cached) and a mask of which were cached."""
         hashes = np.asarray(hashes, dtype=np.int64)

@@ -30,7 +30,7 @@ from mailweir.store import schema, verdicts
 from mailweir.store.cache import CountCache
 from mailweir.store.engine import NO_BEGIN, READ_ONLY, make_engine
 from mailweir.store.errors import StoreBusy, retryable, store_errors
-from mailweir.store.lookup import CountReader, every_count
+from mailweir.store.lookup import CountReader, count_chunks
 from mailweir.store.memory import release_free_memory
 from mailweir.store.meta import database_bytes, get_meta, row_count, set_meta
 from mailweir.store.migrations import migrate
@@ -440,15 +440,18 @@ class ModelStore:
             return False
         with self._lock:
             epoch = self._epoch
+        cache = CountCache(self._cache.max_tokens)
         with self._reading(snapshot=True, whole_table=True) as conn, conn.begin():
             revision, totals = self._read_totals(conn)
             rows = row_count(conn, schema.token)
             if rows > self._cache.max_tokens:
                 return False
-            hashes, counts = every_count(conn, rows)
-        cache = CountCache(self._cache.max_tokens)
-        cache.put(hashes, counts)
-        del hashes, counts
+            # Sized once and filled a chunk at a time as it is read: reading the whole table
+            # into arrays first and putting them at once took the process from 60 to 170 MB
+            # RSS for 521,754 tokens, to settle at 81.
+            cache.reserve(rows)
+            for hashes, counts in count_chunks(conn):
+                cache.put(hashes, counts)
         with self._lock:
             installed = epoch == self._epoch and not self._writers
             if installed:

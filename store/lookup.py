@@ -9,7 +9,7 @@ and stay in the driver's prepared-statement cache.  PostgreSQL gets one array pa
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from typing import Any
 
 import numpy as np
@@ -93,24 +93,19 @@ def _plain_rows(conn: Connection, statement: str, params: tuple[Any, ...]) -> li
         result.close()
 
 
-_CHUNK_ROWS = 8192
+_CHUNK_ROWS = 8192  # rows read at a time when every count is read: a few MB of row tuples
 
 
-def every_count(conn: Connection, rows: int) -> tuple[TokenHashes, TokenCounts]:
-    """Every token's hash and counts (*rows*: how many the table holds, read in the same
-    transaction).  Read in small chunks into arrays of the final size: the driver's row
-    tuples for a whole model of a million tokens would take over 100 MB, and memory freed
-    after a peak mostly stays with the process."""
-    hashes = np.empty(rows, dtype=np.int64)
-    counts = np.empty((rows, 2), dtype=np.int64)
+def count_chunks(conn: Connection) -> Iterator[tuple[TokenHashes, TokenCounts]]:
+    """Every token's hash and counts, ``_CHUNK_ROWS`` at a time, for a caller that stores
+    each chunk before the next is read: the driver's row tuples for a model of a million
+    tokens would take over 100 MB, and whole-model arrays and their temporaries as much
+    again (memory freed after a peak mostly stays with the process)."""
     result = conn.exec_driver_sql(_SELECT.removesuffix(" WHERE hash"))
-    at = 0
     try:
         while chunk := result.cursor.fetchmany(_CHUNK_ROWS):
             part = np.array(chunk, dtype=np.int64)
-            hashes[at : at + len(part)] = part[:, 0]
-            counts[at : at + len(part)] = part[:, 1:]
-            at += len(part)
+            del chunk
+            yield np.ascontiguousarray(part[:, 0]), np.ascontiguousarray(part[:, 1:])
     finally:
         result.close()
-    return hashes[:at], counts[:at]

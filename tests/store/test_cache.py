@@ -79,6 +79,25 @@ def test_cache_many_puts_grow_the_table_and_stay_exact() -> None:
     )
 
 
+def test_cache_reserve_makes_room_so_filling_it_never_rehashes() -> None:
+    keys = np.unique(np.random.default_rng(5).integers(-(2**63), 2**63 - 1, 20_000))
+    cache = CountCache(1_000_000)
+    cache.reserve(len(keys))
+    buckets = len(cache._fill)
+    assert cache.roomy(len(keys))
+    for start in range(0, len(keys), 3_000):  # as a preload fills it, chunk by chunk
+        part = keys[start : start + 3_000]
+        cache.put(part, np.column_stack([part % 7, part % 2]))
+    assert len(cache._fill) == buckets and len(cache) == len(keys)
+    counts, found = cache.get(keys)
+    assert found.all() and counts.tolist() == np.column_stack([keys % 7, keys % 2]).tolist()
+    cache.reserve(100)  # less than it holds: nothing changes
+    assert len(cache._fill) == buckets and len(cache) == len(keys)
+    small = CountCache(50)
+    small.reserve(10**6)  # never past the token limit
+    assert small.roomy(50) and len(small._fill) * 8 < 1_000
+
+
 def test_cache_overflow_empties_then_refills() -> None:
     cache = CountCache(4)
     cache.put(np.array([1, 2, 3], dtype=np.int64), np.ones((3, 2), dtype=np.int64))

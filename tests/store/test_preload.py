@@ -17,7 +17,7 @@ from sqlalchemy import event
 from store_helpers import digest_of, dump_model, hashes_of
 
 from mailweir.model.types import HAM, SPAM
-from mailweir.store import ModelStore
+from mailweir.store import ModelStore, lookup
 
 
 def truth(store: ModelStore, hashes: np.ndarray) -> list[list[int]]:
@@ -59,6 +59,24 @@ def test_preload_answers_every_lookup_from_memory(
     assert store.lookup(wanted).tolist() == truth(store, wanted)
     answer = store.cached_counts(wanted)  # the event loop's call needs no local read either
     assert answer is not None and answer[1].tolist() == truth(store, wanted)
+
+
+def test_preload_reads_the_table_in_chunks_and_misses_none(
+    open_store: Callable[..., ModelStore], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The table is read and stored a chunk at a time (the peak of memory): a chunk size
+    that divides the rows unevenly must still bring every row, and only those."""
+    writer = open_store()
+    for n in range(12):
+        tokens = hashes_of(*range(10 * n, 10 * n + 7))
+        writer.train(tokens, n % 2, digest=digest_of(f"m{n}"), source="t")
+    store = open_store(staleness_seconds=3600.0)
+    sqlite_only(store)
+    monkeypatch.setattr(lookup, "_CHUNK_ROWS", 5)  # 84 rows: 16 chunks of 5, then 4
+    assert store.preload() and store.complete
+    wanted = hashes_of(*range(-3, 125))
+    assert selects_during(store, lambda: store.lookup(wanted)) == 0
+    assert store.lookup(wanted).tolist() == truth(store, wanted)
 
 
 def test_own_writes_keep_memory_complete(open_store: Callable[..., ModelStore]) -> None:
