@@ -1,4 +1,4 @@
-"""The vocabulary summary, loaded once by one GROUP BY and then kept up to date in memory."""
+"""The vocabulary summary, loaded once from the token table, then kept up to date in memory."""
 
 from __future__ import annotations
 
@@ -8,6 +8,7 @@ from sqlalchemy import Connection, func, select
 
 from mailweir.model.types import HAM, SPAM, TokenCounts, Vocabulary
 from mailweir.store import schema
+from mailweir.store.lookup import count_chunks
 
 
 class VocabularyTracker:
@@ -20,11 +21,21 @@ class VocabularyTracker:
 
     @classmethod
     def load(cls, conn: Connection) -> VocabularyTracker:
-        """Build from the token table with one grouped query (one row per distinct pair)."""
+        """Build from the token table.
+
+        PostgreSQL groups the rows itself and sends one per distinct (ham, spam) pair.  On
+        SQLite that ``GROUP BY`` sorted the whole table in this process's memory: 34 MB more
+        resident for 521,759 tokens, at every daemon's start (the model gauge asks for the
+        size), so the rows are read a chunk at a time instead (``count_chunks``): 13 MB, and
+        0.55 against 0.66 s of CPU."""
+        tracker = cls()
+        if conn.dialect.name == "sqlite":
+            for _, counts in count_chunks(conn):
+                tracker._change(counts, np.ones(len(counts), dtype=np.int64), sign=1)
+            return tracker
         t = schema.token
         rows = conn.execute(select(t.c.ham, t.c.spam, func.count()).group_by(t.c.ham, t.c.spam))
         data = np.array([tuple(row) for row in rows], dtype=np.int64).reshape(-1, 3)
-        tracker = cls()
         tracker._change(data[:, :2], data[:, 2], sign=1)
         return tracker
 

@@ -14,7 +14,7 @@ from sqlalchemy import text
 from store_helpers import digest_of, dump_model, hashes_of, vocabulary_parts
 
 from mailweir.model.types import HAM, SPAM, Vocabulary
-from mailweir.store import ModelStore, StoreUnavailable, TrainResult
+from mailweir.store import ModelStore, StoreUnavailable, TrainResult, lookup
 from mailweir.store.engine import NO_BEGIN
 
 
@@ -171,6 +171,22 @@ def test_vocabulary_tracks_training(store: ModelStore) -> None:
     expected = Vocabulary.from_token_counts(np.array([[0, 1], [1, 2], [1, 0]]))
     assert vocabulary_parts(store.vocabulary()) == vocabulary_parts(expected)
     assert store.vocabulary().size == 3
+
+
+def test_vocabulary_loaded_from_the_table_in_chunks_counts_every_row(
+    open_store: Callable[..., ModelStore], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """On SQLite the table is read a few rows at a time (memory); a chunk size that divides
+    the rows unevenly must give the summary of the whole table, untrained rows left out."""
+    writer = open_store()
+    for n in range(9):
+        tokens = hashes_of(*range(n, n + 6))  # overlapping: counts from 1 to 6
+        writer.train(tokens, n % 2, digest=digest_of(f"m{n}"), source="t")
+    writer.untrain(hashes_of(*range(8, 14)), digest=digest_of("m8"))  # rows of zeros stay
+    monkeypatch.setattr(lookup, "_CHUNK_ROWS", 4)
+    rows = np.array([counts for counts in token_rows(writer).values()], dtype=np.int64)
+    expected = Vocabulary.from_token_counts(rows)
+    assert vocabulary_parts(open_store().vocabulary()) == vocabulary_parts(expected)
 
 
 def test_prune_removes_rare_unseen_tokens(store: ModelStore) -> None:
