@@ -447,8 +447,9 @@ class ModelStore:
             if rows > self._cache.max_tokens:
                 return False
             # Sized once and filled a chunk at a time as it is read: reading the whole table
-            # into arrays first and putting them at once took the process from 60 to 170 MB
-            # RSS for 521,754 tokens, to settle at 81.
+            # into arrays first and putting them at once, rehashing as the cache grew, peaked
+            # at 172 MB resident for 521,759 tokens against 96 now, to settle at 83
+            # (bench/bench_scoring.py).
             cache.reserve(rows)
             for hashes, counts in count_chunks(conn):
                 cache.put(hashes, counts)
