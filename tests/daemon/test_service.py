@@ -445,7 +445,9 @@ def test_freeze_startup_objects_collects_garbage_then_keeps_the_rest_out_of_coll
     try:
         count = service_module.freeze_startup_objects()
         assert gone() is None  # collected first, not frozen for good
-        assert count == gc.get_freeze_count() > 0
+        # Frozen objects can still be freed (another test's leftover thread dropping its
+        # last reference), so the count may have fallen since, by a few.
+        assert 0.99 * count <= gc.get_freeze_count() <= count and count > 0
         assert not any(o is kept for o in gc.get_objects())  # no generation walks it now
     finally:
         gc.unfreeze()
