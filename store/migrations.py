@@ -80,9 +80,22 @@ def _verdict_sender_list(conn: Connection) -> None:
     conn.execute(text("ALTER TABLE weir_verdict ADD COLUMN sender_list VARCHAR(8)"))
 
 
+def _verdict_window_index(conn: Connection) -> None:
+    """Arrival time, band and tracking id in one index, which the rate gauges' counts of a
+    window read alone: through the arrival-time index they read every verdict row of the
+    window, each about a page with its token hashes, and a minute's refresh under load left
+    tens of MB of the file mapped in a pooled connection.  It serves every query the
+    arrival-time index served, so that one goes."""
+    conn.execute(
+        text("CREATE INDEX weir_verdict_window ON weir_verdict (received_at, band, tracking_id)")
+    )
+    conn.execute(text("DROP INDEX weir_verdict_received_at"))
+
+
 MIGRATIONS: tuple[Migration, ...] = (
     ("0001_initial", _initial),
     ("0002_verdict_sender_list", _verdict_sender_list),
+    ("0003_verdict_window_index", _verdict_window_index),
 )
 
 

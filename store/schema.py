@@ -82,7 +82,8 @@ verdict = Table(
     # "allow" or "block" when a sender list decided (band "listed"); NULL when scored.
     # Added by migration 0002_verdict_sender_list.
     Column("sender_list", String(8), nullable=True),
-    Index("weir_verdict_received_at", "received_at"),
+    # Covers the rate gauges' counts of a window (migration 0003_verdict_window_index).
+    Index("weir_verdict_window", "received_at", "band", "tracking_id"),
 )
 
 feedback = Table(

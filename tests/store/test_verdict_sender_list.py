@@ -31,7 +31,7 @@ def test_migration_0002_adds_sender_list_to_a_0001_database(
                     "score, band, action) VALUES ('old', 1.0, 1, 10, 0.2, 'ham', 'pass')"
                 )
             )
-        assert migrate(engine) == ["0002_verdict_sender_list"]
+        assert migrate(engine) == ["0002_verdict_sender_list", "0003_verdict_window_index"]
         with engine.connect() as conn:
             row = conn.execute(text("SELECT band, sender_list FROM weir_verdict")).one()
         assert tuple(row) == ("ham", None)
