@@ -57,6 +57,7 @@ import bench_mail  # noqa: E402
 from bench_relay import (  # noqa: E402
     FIXED_VERDICT,
     PYTHON,
+    RUN_DAEMON,
     _free_port,
     _mailweir_config,
     _start,
@@ -89,20 +90,13 @@ verdict_log.VerdictLog.__init__ = stretched(
     verdict_log.VerdictLog.__init__, batch_size={VERDICT_BATCH}
 )
 """
-_RUN = """
-import sys
-from mailweir.daemon.entry import main
-
-sys.argv[0] = "mailweir"
-main()
-"""
 T = TypeVar("T")
 
 
 def daemon_script(without_judging: bool = False) -> str:
     """The code ``python -c`` runs as the daemon: its clock-driven work stretched, and with
     *without_judging* a fixed verdict in place of judging (bench_relay.py)."""
-    return _STRETCHED + (FIXED_VERDICT if without_judging else "") + _RUN
+    return _STRETCHED + (FIXED_VERDICT if without_judging else "") + RUN_DAEMON
 
 
 # A dump names its events, then gives their totals in that order ("summary:" there reads 0).

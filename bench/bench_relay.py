@@ -93,13 +93,15 @@ async def fixed_verdict(self, tracking_id, raw, policy, executor):
 
 judge.Judge._judge = fixed_verdict
 """
-_UNJUDGED_DAEMON = f"""{FIXED_VERDICT}
+# What ``python -c`` runs last to be the daemon, after any patches before it.
+RUN_DAEMON = """
 import sys
 from mailweir.daemon.entry import main
 
 sys.argv[0] = "mailweir"
 main()
 """
+_UNJUDGED_DAEMON = FIXED_VERDICT + RUN_DAEMON
 
 
 @dataclass

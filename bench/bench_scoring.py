@@ -243,7 +243,7 @@ def bench_memory(path: Path) -> None:
     if not store.preload():
         raise SystemExit("the model did not fit in the count cache")
     after = proc_cpu.rss_bytes(os.getpid())
-    peak = _peak_rss_bytes() if reset_peak else None
+    peak = proc_cpu.peak_rss_bytes(os.getpid()) if reset_peak else None
     stats = store.stats()
     store.close()
     tokens_held = stats.tokens
@@ -268,14 +268,6 @@ def _reset_peak_rss() -> bool:
     except OSError:
         return False
     return True
-
-
-def _peak_rss_bytes() -> int:
-    """This process's peak resident size since the last reset (``VmHWM``)."""
-    for line in Path("/proc/self/status").read_text().splitlines():
-        if line.startswith("VmHWM:"):
-            return int(line.split()[1]) * 1024
-    raise SystemExit("no VmHWM in /proc/self/status")
 
 
 def main() -> None:

@@ -71,6 +71,13 @@ def rss_bytes(pid: int) -> int:
     return _kib_field(f"/proc/{pid}/status", "VmRSS:")
 
 
+def peak_rss_bytes(pid: int) -> int:
+    """The largest resident set size of one process since it started or since its peak was
+    reset (VmHWM; Linux resets it when ``5`` is written to ``/proc/<pid>/clear_refs``), 0
+    when it is gone."""
+    return _kib_field(f"/proc/{pid}/status", "VmHWM:")
+
+
 def pss_bytes(pid: int) -> int:
     """Proportional set size of one process (Pss in smaps_rollup), 0 when it is gone.
 

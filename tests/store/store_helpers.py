@@ -5,10 +5,11 @@ from __future__ import annotations
 import hashlib
 
 import numpy as np
-from sqlalchemy import text
+import pytest
+from sqlalchemy import Engine, text
 
 from mailweir.model.types import Vocabulary
-from mailweir.store import ModelStore
+from mailweir.store import ModelStore, migrations
 
 
 def digest_of(name: str) -> bytes:
@@ -50,3 +51,13 @@ def vocabulary_parts(vocabulary: Vocabulary) -> tuple[int, list[int], list[list[
         np.asarray(vocabulary.token_total).tolist(),
         np.asarray(vocabulary.count_histogram).tolist(),
     )
+
+
+def migrate_first(engine: Engine, count: int, monkeypatch: pytest.MonkeyPatch) -> list[str]:
+    """Apply only the first *count* migrations, as an older release left the database;
+    return their names.  The full list is back in place afterwards."""
+    monkeypatch.setattr(migrations, "MIGRATIONS", migrations.MIGRATIONS[:count])
+    try:
+        return migrations.migrate(engine)
+    finally:
+        monkeypatch.undo()

@@ -6,9 +6,10 @@ from collections.abc import Callable
 
 import pytest
 from sqlalchemy import create_engine, inspect, text
+from store_helpers import migrate_first
 
-from mailweir.store import ModelStore, migrations
-from mailweir.store.migrations import MIGRATIONS, migrate
+from mailweir.store import ModelStore
+from mailweir.store.migrations import migrate
 from mailweir.store.verdicts import VerdictRecord
 
 
@@ -18,9 +19,7 @@ def test_migration_0002_adds_sender_list_to_a_0001_database(
     engine = create_engine(store_url)
     try:
         # A database as the first release left it: only 0001 applied, one verdict row.
-        monkeypatch.setattr(migrations, "MIGRATIONS", MIGRATIONS[:1])
-        assert migrate(engine) == ["0001_initial"]
-        monkeypatch.undo()
+        assert migrate_first(engine, 1, monkeypatch) == ["0001_initial"]
         with engine.begin() as conn:
             assert "sender_list" not in {
                 c["name"] for c in inspect(conn).get_columns("weir_verdict")

@@ -12,9 +12,10 @@ from collections.abc import Callable
 
 import pytest
 from sqlalchemy import create_engine, event, inspect, text
+from store_helpers import migrate_first
 
-from mailweir.store import ModelStore, migrations, reports
-from mailweir.store.migrations import MIGRATIONS, migrate
+from mailweir.store import ModelStore, reports
+from mailweir.store.migrations import migrate
 from mailweir.store.verdicts import VerdictRecord
 
 
@@ -27,9 +28,7 @@ def test_migration_0003_replaces_the_arrival_index_on_a_0002_database(
 ) -> None:
     engine = create_engine(store_url)
     try:
-        monkeypatch.setattr(migrations, "MIGRATIONS", MIGRATIONS[:2])
-        assert migrate(engine) == ["0001_initial", "0002_verdict_sender_list"]
-        monkeypatch.undo()
+        assert migrate_first(engine, 2, monkeypatch) == ["0001_initial", "0002_verdict_sender_list"]
         with engine.begin() as conn:
             assert _indexes(conn) == {"weir_verdict_received_at": ["received_at"]}
             conn.execute(
