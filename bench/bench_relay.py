@@ -9,7 +9,8 @@ relays the message unchanged, skipping the header rewrite).
 
 For each message size and client count it prints throughput, p50/p99 latency (MAIL FROM to the
 250 after DATA), the server's CPU time per message (the server process and its pool workers,
-from /proc) and the CPU other processes of the machine used meanwhile (busy time from
+from /proc), the kernel's part of it ("of sys": system calls and page faults), its minor page
+faults per message, the CPU other processes of the machine used meanwhile (busy time from
 /proc/stat minus this benchmark's own process tree), and the server tree's memory after each
 run: RSS summed over its processes, and PSS, where a page the processes share (the libraries
 the scoring pool's forkserver preloaded) counts once.  Before each pair, a memory probe
@@ -115,6 +116,8 @@ class Figures:
     p50_ms: float
     p99_ms: float
     cpu_ms: float  # server CPU per message
+    sys_ms: float  # the kernel's part of it
+    faults: float  # the server's minor page faults per message
     others_cpu: float  # CPU seconds of other processes during the run
     rss_mb: float  # summed over the server's process tree
     pss_mb: float  # the same, shared pages counted once
@@ -194,6 +197,8 @@ def _measure(
 ) -> Figures:
     asyncio.run(push(port, messages[: clients * 4], clients))  # warm-up: connections, caches
     server_before = proc_cpu.tree_seconds(pid)
+    kernel_before = proc_cpu.tree_counts(pid, proc_cpu.system_seconds)
+    faults_before = proc_cpu.tree_counts(pid, proc_cpu.minor_faults)
     ours_before = proc_cpu.tree_seconds(os.getpid())
     busy_before = proc_cpu.machine_busy_seconds()
     started = time.perf_counter()
@@ -202,6 +207,8 @@ def _measure(
     busy = proc_cpu.machine_busy_seconds() - busy_before
     ours = proc_cpu.used(ours_before, proc_cpu.tree_seconds(os.getpid()))
     server = proc_cpu.used(server_before, proc_cpu.tree_seconds(pid))
+    kernel = proc_cpu.used(kernel_before, proc_cpu.tree_counts(pid, proc_cpu.system_seconds))
+    faults = proc_cpu.used(faults_before, proc_cpu.tree_counts(pid, proc_cpu.minor_faults))
     latencies = sorted(results.latencies) or [float("nan")]
     sent = len(results.latencies)
     if results.failures:
@@ -219,6 +226,8 @@ def _measure(
         statistics.median(latencies) * 1e3,
         latencies[min(len(latencies) - 1, int(0.99 * len(latencies)))] * 1e3,
         server / max(sent, 1) * 1e3,
+        kernel / max(sent, 1) * 1e3,
+        faults / max(sent, 1),
         max(0.0, busy - ours),
         rss,
         pss,
@@ -229,7 +238,8 @@ def _print(bare: Figures, mine: Figures, read_ns: float, unjudged: Figures | Non
     for f in (bare, mine) if unjudged is None else (bare, mine, unjudged):
         print(
             f"{f.size:>6} {f.clients:>3} {f.server:<8} {f.rate:8.0f} {f.p50_ms:8.1f} "
-            f"{f.p99_ms:8.1f} {f.cpu_ms:8.2f} {f.others_cpu:7.1f}s {f.rss_mb:6.0f} {f.pss_mb:6.0f}"
+            f"{f.p99_ms:8.1f} {f.cpu_ms:8.2f} {f.sys_ms:6.2f} {f.faults:6.1f} "
+            f"{f.others_cpu:7.1f}s {f.rss_mb:6.0f} {f.pss_mb:6.0f}"
         )
     print(
         f"{'':>6} {'':>3} {'ratio':<8} {mine.rate / bare.rate:8.2f} "
@@ -336,7 +346,7 @@ def _run(
     )
     print(
         f"{'size':>6} {'cli':>3} {'server':<8} {'msg/s':>8} {'p50 ms':>8} {'p99 ms':>8} "
-        f"{'cpu ms':>8} {'others':>8} {'RSS MB':>6} {'PSS MB':>6}"
+        f"{'cpu ms':>8} {'of sys':>6} {'faults':>6} {'others':>8} {'RSS MB':>6} {'PSS MB':>6}"
     )
     salt = 0  # each run's new words are new to the daemon too
     pairs: dict[tuple[str, int], list[Round]] = {}

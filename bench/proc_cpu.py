@@ -7,6 +7,7 @@ forkserver count as the daemon's).  Times are seconds of CPU, user plus system.
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from pathlib import Path
 
 TICK = os.sysconf("SC_CLK_TCK")
@@ -48,13 +49,31 @@ def process_seconds(pid: int) -> float:
     return 0.0 if fields is None else (int(fields[11]) + int(fields[12])) / TICK
 
 
+def system_seconds(pid: int) -> float:
+    """The kernel's share of ``process_seconds``: system calls and page faults."""
+    fields = _stat_fields(pid)
+    return 0.0 if fields is None else int(fields[12]) / TICK
+
+
+def minor_faults(pid: int) -> float:
+    """Page faults so far that read nothing from disk (a fresh page touched, mostly)."""
+    fields = _stat_fields(pid)
+    return 0.0 if fields is None else float(fields[7])
+
+
+def tree_counts(root: int, count: Callable[[int], float]) -> dict[int, float]:
+    """``count`` of each process of the tree; diff two snapshots with :func:`used`."""
+    return {pid: count(pid) for pid in tree_pids(root)}
+
+
 def tree_seconds(root: int) -> dict[int, float]:
     """CPU seconds per process of the tree; diff two snapshots with :func:`used`."""
     return {pid: process_seconds(pid) for pid in tree_pids(root)}
 
 
 def used(before: dict[int, float], after: dict[int, float]) -> float:
-    """CPU seconds between two snapshots (a process born in between counts from zero)."""
+    """CPU seconds (or counts) between two snapshots (a process born in between counts from
+    zero)."""
     return sum(seconds - before.get(pid, 0.0) for pid, seconds in after.items())
 
 

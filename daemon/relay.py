@@ -26,6 +26,7 @@ from mailweir.daemon import replies, xforward
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import HostPort, NextHopSettings
+from mailweir.daemon.socket_reads import read_from_heap
 
 log = logging.getLogger(__name__)
 
@@ -346,6 +347,7 @@ class NextHopSession:
         except RelayError:
             client.close()
             raise
+        read_from_heap(client.transport)
         self._client = client
         return client
 

@@ -25,6 +25,7 @@ from mailweir.daemon.relay import NextHopSession
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import Settings, SmtpSettings
 from mailweir.daemon.smtp_data import read_data
+from mailweir.daemon.socket_reads import read_from_heap
 
 if TYPE_CHECKING:
     from mailweir.daemon.smtp import FilterHandler
@@ -212,6 +213,7 @@ class FilterSMTP(SMTP):
             )
         elif isinstance(self.session, FilterSession) and self.session.relay is not None:
             self.session.relay.abort()  # STARTTLS starts a new session (RFC 3207 section 4.2)
+        read_from_heap(transport)
         super().connection_made(transport)
 
     def connection_lost(self, error: Exception | None) -> None:
