@@ -32,6 +32,8 @@ _LEAST_DOUBLE = 5e-324
 _EXACT_COUNTS = 2**52
 # e^700 is below the largest double (about e^709.78), so below this m every Poisson term fits.
 _DIRECT_BELOW = 700.0
+# Compared with a dtype, not the type np.int64, which each comparison would convert.
+_INT64 = np.dtype(np.int64)
 # From this many usable tokens a partial sort finds the capped selection faster than a full
 # one (measured: equal near 400, 10x faster at 5,000).
 _PARTIAL_SORT_FROM = 400
@@ -78,8 +80,14 @@ def _log_survivals_even(statistics: list[float], dof: int) -> list[float]:
     tokens).  Each row's operations and summation order are those of a single statistic,
     so results do not depend on the batching.
     """
-    terms = dof // 2
-    halves = [statistic / 2.0 for statistic in statistics]
+    return _log_survivals_of_halves([statistic / 2.0 for statistic in statistics], dof // 2)
+
+
+def _log_survivals_of_halves(halves: list[float], terms: int) -> list[float]:
+    """`_log_survivals_even` of m = x / 2 and n = dof / 2."""
+    if max(halves) < _DIRECT_BELOW:  # the usual case, without a test per row
+        heads = _poisson_heads(halves, terms)
+        return [min(0.0, math.log(head) - half) for half, head in zip(halves, heads, strict=True)]
     heads = _poisson_heads([half if half < _DIRECT_BELOW else 0.0 for half in halves], terms)
     return [
         min(0.0, math.log(head) - half) if half < _DIRECT_BELOW else _log_survival_far(half, terms)
@@ -93,7 +101,7 @@ def _poisson_heads(halves: list[float], terms: int) -> list[float]:
     methods without their Python layer; a row sums in the order of a 1-D sum)."""
     if terms == 1:
         return [1.0] * len(halves)
-    steps = np.array(halves)[:, None] / _indices(terms)
+    steps = np.divide.outer(halves, _indices(terms))
     np.multiply.accumulate(steps, axis=1, out=steps)
     return [1.0 + total for total in np.add.reduce(steps, axis=1).tolist()]
 
@@ -102,6 +110,23 @@ def _poisson_heads(halves: list[float], terms: int) -> list[float]:
 def _indices(terms: int) -> FloatArray:
     """Shape (terms - 1,): 1.0, 2.0, ..., terms - 1."""
     indices = np.arange(1, terms, dtype=np.float64)
+    indices.flags.writeable = False
+    return indices
+
+
+@lru_cache(maxsize=8)
+def _class_limits(ham: int, spam: int) -> FloatArray:
+    """Shape (2, 1): the class counts as floats, the divisors of the count rows (cached: the
+    class counts change only with training, and making the array costs more than a look-up)."""
+    limits = np.array([[ham], [spam]], dtype=np.float64)
+    limits.flags.writeable = False
+    return limits
+
+
+@lru_cache(maxsize=64)
+def _negated_indices(terms: int) -> FloatArray:
+    """Shape (terms - 1,): -1.0, -2.0, ..., 1.0 - terms."""
+    indices = -_indices(terms)
     indices.flags.writeable = False
     return indices
 
@@ -211,14 +236,14 @@ class RobinsonFisher(NaiveBayes):
     def _checked_f(self, counts: npt.NDArray[np.int64], totals: list[int]) -> FloatArray | None:
         """Shape (n,): f of int64 counts, shape (n, 2), and positive class counts; None when
         a count is negative or above its class count."""
-        limits = np.array(totals, dtype=np.float64)[:, None]  # shape (2, 1)
+        limits = _class_limits(*totals)  # shape (2, 1)
         if max(totals) < _EXACT_COUNTS:
             # Valid counts are then below 2**52, exact as floats and so is the sum of two: f
             # is the one the integers give.  Read as unsigned, a negative count is above 2**63;
             # so it, like a count above its class count, gives a rate above 1.
             rows = counts.view(np.uint64).T.astype(np.float64, order="C")
             rates = rows / limits
-            if np.count_nonzero(rates > 1.0):
+            if len(counts) and np.maximum.reduce(rates, axis=None) > 1.0:
                 return None
         else:
             unsigned = (
@@ -235,7 +260,8 @@ class RobinsonFisher(NaiveBayes):
         # p(w) is undefined for unknown tokens, whose n = 0 makes f = x regardless.  A nonzero
         # total is at least 1 / N > 1e-19, so raising zeros to the least double changes no
         # other quotient and gives p = 0 there, as a masked division would, more cheaply.
-        p = rates[SPAM] / np.maximum(rate_total, _LEAST_DOUBLE, out=rate_total)
+        np.maximum(rate_total, _LEAST_DOUBLE, out=rate_total)
+        p = np.divide(rates[SPAM], rate_total, out=rate_total)
         n = rows[HAM] + rows[SPAM]
         # f = (s x + n p) / (s + n), in place (sums and products commute exactly).
         f: FloatArray = n * p
@@ -248,13 +274,16 @@ class RobinsonFisher(NaiveBayes):
     ) -> npt.NDArray[np.intp]:
         """Indices of the tokens used, most extreme first (``present`` None: every token);
         ties in ``|f - 0.5|`` keep index order."""
-        deviation = np.abs(f - 0.5)
+        # The sort key -|f - 0.5| in two calls: copysign negates the magnitude exactly.
+        keys = np.subtract(f, 0.5)
+        np.copysign(keys, -1.0, out=keys)
         if present is not None:
-            deviation = np.where(present, deviation, 0.0)
-        # NaN never compares true, so it is never usable.
-        usable = deviation >= self.min_deviation if self.min_deviation > 0 else deviation > 0
+            keys = np.where(present, keys, 0.0)
+        # |f - 0.5| >= d is -|f - 0.5| <= -d, and > 0 is < 0.  NaN never compares true, so it
+        # is never usable.
+        usable = keys <= -self.min_deviation if self.min_deviation > 0 else keys < 0.0
         candidates = usable.nonzero()[0]
-        key = -deviation[candidates]
+        key = keys[candidates]
         cap = self.max_tokens
         if cap is not None and len(candidates) > max(cap, _PARTIAL_SORT_FROM):
             # The cap-th smallest key bounds the tokens kept; those at the bound keep index
@@ -342,7 +371,7 @@ class RobinsonFisher(NaiveBayes):
         counts, classes = count_arrays(token_count, class_count)
         totals = classes.tolist()
         f = None
-        if counts.dtype == np.int64 and classes.dtype == np.int64 and min(totals) > 0:
+        if counts.dtype == _INT64 and classes.dtype == _INT64 and min(totals) > 0:
             f = self._checked_f(counts, totals)
         if f is None:
             # Untrained, another integer type or a bound broken: the base class answers, or
@@ -357,7 +386,8 @@ class RobinsonFisher(NaiveBayes):
         chosen, logs = self._used(f)
         evidence: tuple[Evidence, ...] = ()
         if n_evidence and len(chosen):
-            evidence = strongest_evidence(token_hashes[chosen], logs[0] - logs[1], n_evidence)
+            weights = np.subtract.reduce(logs, axis=0)  # ln f - ln(1 - f), in one call
+            evidence = strongest_evidence(token_hashes[chosen], weights, n_evidence)
         return Score(_posterior(_combined(logs)), evidence)
 
 
@@ -379,8 +409,20 @@ def _combined(logs: FloatArray) -> float:
     count = logs.shape[1]
     if count == 0:
         return 0.5
-    sum_f, sum_rest = np.add.reduce(logs, axis=1).tolist()
-    log_h, log_s = _log_survivals_even([-2.0 * sum_f, -2.0 * sum_rest], 2 * count)
+    # The statistics are -2 sum ln f and -2 sum ln(1 - f), so their halves m are the negated
+    # sums, exactly (doubling is exact, and so is halving what was doubled).
+    sums = np.add.reduce(logs, axis=1, keepdims=True)  # shape (2, 1)
+    (sum_f,), (sum_rest,) = sums.tolist()
+    if min(sum_f, sum_rest) <= -_DIRECT_BELOW:
+        log_h, log_s = _log_survivals_of_halves([-sum_f, -sum_rest], count)
+    else:
+        # `_poisson_heads` inlined on the sums: sum / -i is -(sum / i) = m / i exactly, and
+        # log Q = log(head) - m = log(head) + sum.
+        steps = np.divide(sums, _negated_indices(count))
+        np.multiply.accumulate(steps, axis=1, out=steps)
+        tail_f, tail_rest = np.add.reduce(steps, axis=1).tolist()
+        log_h = min(0.0, math.log(1.0 + tail_f) + sum_f)
+        log_s = min(0.0, math.log(1.0 + tail_rest) + sum_rest)
     h, s = math.exp(log_h), math.exp(log_s)
     return min(1.0, max(0.0, (1.0 + h - s) / 2.0))
 
@@ -399,4 +441,13 @@ def _posterior(spam: float) -> float:
     if not 0.0 < spam < 1.0:
         return spam  # exactly what the log-space round trip gives at 0 and 1
     log_ham, log_spam = np.log(1.0 - spam), np.log(spam)
-    return float(np.exp(log_spam - np.logaddexp(log_ham, log_spam)))
+    return float(np.exp(log_spam - _logaddexp(log_ham, log_spam)))
+
+
+def _logaddexp(x: float, y: float) -> float:
+    """``np.logaddexp`` of two finite floats, in the operations of numpy's scalar loop
+    (C's exp and log1p, as the math module calls them) without the cost of a ufunc call."""
+    difference = x - y
+    if difference > 0:
+        return x + math.log1p(math.exp(-difference))
+    return y + math.log1p(math.exp(difference))

@@ -17,7 +17,10 @@ Conventions shared by all methods
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
+from bisect import bisect_left, bisect_right
 from dataclasses import dataclass, fields
+from itertools import chain, repeat
+from operator import itemgetter
 from typing import ClassVar, NamedTuple
 
 import numpy as np
@@ -29,8 +32,10 @@ FloatArray = npt.NDArray[np.float64]
 
 UNTRAINED_PROBABILITY = 0.5
 
-# Up to this many weights, evidence is ranked in plain Python (cheaper than numpy's calls).
+# Up to this many weights, evidence is ranked by one numpy sort and the rest in plain Python
+# (numpy's per-call cost is far above the work).
 _FEW_WEIGHTS = 64
+_WEIGHT_OF_PAIR = itemgetter(1)  # of (hash, weight)
 
 
 class Evidence(NamedTuple):
@@ -189,16 +194,30 @@ def strongest_evidence(
 def _few_strongest(
     hashes: npt.NDArray[np.int64], weights: FloatArray, n_evidence: int
 ) -> tuple[Evidence, ...]:
-    """`strongest_evidence` of a few weights: Python tuples (-|w|, hash) sort in the same
-    order as the numpy ranking, without its per-call cost."""
-    weight_list = weights.astype(np.float64, copy=False).tolist()
-    hash_list = hashes.tolist()
-    spam = sorted([(-w, h) for w, h in zip(weight_list, hash_list, strict=True) if w > 0])
-    ham = sorted([(w, h) for w, h in zip(weight_list, hash_list, strict=True) if w < 0])
-    return tuple(
-        [Evidence(token_hash, -key) for key, token_hash in spam[:n_evidence]]
-        + [Evidence(token_hash, key) for key, token_hash in ham[:n_evidence]]
-    )
+    """`strongest_evidence` of a few weights: one numpy sort, the rest on Python lists.
+
+    Sorted by weight then hash, the ham side is the head, ties in hash order as the full
+    ranking breaks them.  The spam side is the tail read backwards, which would put ties in
+    reverse hash order: from the first pair tied with the n-th strongest, a stable sort on
+    the weight alone puts them back.
+    """
+    order = np.lexsort((hashes, weights))  # NaN sorts last
+    ranked = weights[order].astype(np.float64, copy=False).tolist()
+    ranked_hashes = hashes[order].tolist()
+    while ranked and ranked[-1] != ranked[-1]:  # NaN is never listed
+        ranked.pop()
+        ranked_hashes.pop()
+    ham_count = min(n_evidence, bisect_left(ranked, 0.0))  # zero weights are never listed
+    nth_spam = max(bisect_right(ranked, 0.0), len(ranked) - n_evidence)
+    spam: list[tuple[int, float]] = []
+    if nth_spam < len(ranked):
+        start = bisect_left(ranked, ranked[nth_spam])
+        tail = zip(ranked_hashes[start:], ranked[start:], strict=True)
+        # Stable, even reversed: ties keep their hash order.
+        spam = sorted(tail, key=_WEIGHT_OF_PAIR, reverse=True)[:n_evidence]
+    ham = zip(ranked_hashes[:ham_count], ranked[:ham_count], strict=True)
+    # tuple.__new__ makes each Evidence without the named tuple's Python-level __new__.
+    return tuple(map(tuple.__new__, repeat(Evidence), chain(spam, ham)))
 
 
 class NaiveBayes(ABC):

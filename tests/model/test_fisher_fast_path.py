@@ -19,7 +19,13 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import chi2
 
-from mailweir.model.fisher import RobinsonFisher, _log_survivals_even, chi2_log_survival_even
+from mailweir.model.fisher import (
+    RobinsonFisher,
+    _combined,
+    _log_survivals_even,
+    _logaddexp,
+    chi2_log_survival_even,
+)
 from mailweir.model.nb_base import Evidence, Score, posterior_spam, strongest_evidence
 from mailweir.model.types import HAM, SPAM, Vocabulary
 
@@ -334,3 +340,53 @@ def test_chi2_log_survival_few_terms_equals_reference(half: float, terms: int) -
     assert chi2_log_survival_even(2.0 * half, 2 * terms) == _reference_log_survival(
         2.0 * half, 2 * terms
     )
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    weights=st.lists(
+        st.sampled_from([-2.0, -0.5, -0.0, 0.0, 0.5, 2.0, math.inf, -math.inf, math.nan]),
+        max_size=40,
+    ),
+    n_evidence=st.integers(0, 9),
+)
+def test_strongest_evidence_of_special_weights_equals_reference(
+    weights: list[float], n_evidence: int
+) -> None:
+    # Signed zeros are never listed, infinities are the strongest, NaN is never listed and
+    # must not disturb the ranking of the others; ties (many here) go by hash.
+    values = np.array(weights)
+    hashes = (np.arange(len(weights), dtype=np.int64) * 7919 % 13 - 6) * 2**59
+    expected = _reference_evidence(hashes, values, n_evidence)
+    assert strongest_evidence(hashes, values, n_evidence) == expected
+
+
+def test_logaddexp_equals_numpy() -> None:
+    # The posterior's logaddexp in math-module operations must give numpy's floats exactly.
+    rng = np.random.default_rng(3)
+    spam = np.concatenate(
+        [rng.uniform(0, 1, 20_000), np.exp(rng.uniform(-700, 0, 5_000)), [0.5, 1e-300]]
+    )
+    spam = np.concatenate([spam, 1.0 - spam[spam < 0.5]])
+    for value in spam[(spam > 0) & (spam < 1)].tolist():
+        log_ham, log_spam = math.log1p(-value), math.log(value)
+        assert _logaddexp(log_ham, log_spam) == float(np.logaddexp(log_ham, log_spam))
+        assert _logaddexp(log_spam, log_ham) == float(np.logaddexp(log_spam, log_ham))
+
+
+@pytest.mark.parametrize("count", [1, 2, 25, 64, 1500])
+@pytest.mark.parametrize("mean_half", [1.0, 27.9, 699.0, 700.0, 701.0, 2000.0])
+def test_fisher_combined_around_the_log_space_switch_equals_reference(
+    count: int, mean_half: float
+) -> None:
+    # `_combined` sums H's Poisson terms inline while m < 700 and in log space from there,
+    # where with many tokens the direct terms would overflow; S's m stays below.  Exact sums
+    # (m = 700 itself) and sums a little either side.
+    rng = np.random.default_rng(count)
+    jitters = [np.ones(count)] + [rng.uniform(0.999, 1.001, count) for _ in range(3)]
+    for jitter in jitters:
+        log_f = np.full(count, -mean_half / count) * jitter
+        log_rest = np.full(count, -0.3) * rng.uniform(0.5, 1.5, count)
+        logs = np.stack([log_f, log_rest])
+        assert _combined(logs) == _reference_indicator(log_f, log_rest)
+        assert _combined(logs[::-1].copy()) == _reference_indicator(log_rest, log_f)
