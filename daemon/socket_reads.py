@@ -5,10 +5,12 @@ Python makes a bytes object of that size, reads into it and shrinks it to what c
 daemon gives every block of ``DAEMON_MMAP_THRESHOLD`` (64 KiB) or more a mapping of its own
 (``store/memory.py``, ``map_large_blocks``), so each read of an SMTP command or reply became a
 ``mmap``, a ``mremap`` and a ``munmap``, with the page faults of touching fresh pages.
-``bench/bench_relay.py``, 4 KB mail at 8 clients, five alternated rounds: 12 minor faults and
-0.33 ms of system CPU a message against 0.5 faults and 0.20 ms once reads stay below the
-threshold, the same PSS (86-87 MB).  A 100 KB message then arrives in two reads or more
-instead of one or two.
+glibc serves such a block from free heap space when it has some, so the cost came and went
+with the heap's state.  4 KB mail at 8 clients, nine rounds in which the bare relay, the daemon
+before this cap and with it took turns (README, "The kernel's share"): 16.2 against 0.3 minor
+faults and 0.41 against 0.19 ms of system CPU a message (the bare relay 0.18), 1.87 against
+1.56 times the bare relay's CPU, the same PSS.  A 100 KB message now arrives in two reads or
+more instead of one or two.
 """
 
 from __future__ import annotations
