@@ -141,6 +141,13 @@ async def test_service_model_gauges_count_tokens_without_reading_the_token_table
     await service.startup()
     try:
         assert service.observing is not None and service.store is not None
+        # The preload reads the whole table beside the gauges (a thread started at startup);
+        # only the gauges' own statements count here, so it must have finished first.
+        for _ in range(1000):
+            if service.store.complete:
+                break
+            await asyncio.sleep(0.01)
+        assert service.store.complete
         refresher = service.observing.refresher
         assert await refresher.refresh()
         statements: list[str] = []
