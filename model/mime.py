@@ -70,7 +70,13 @@ class Part:
 
     def field(self, name: str) -> bytes | None:
         """Raw value of the first field with this lower-case name, or None."""
-        return next((value for key, value in self.fields if key == name), None)
+        return self._first_values.get(name)
+
+    @cached_property
+    def _first_values(self) -> dict[str, bytes]:
+        """Each name's first value.  The tokenizer asks for about ten names a message, most
+        of them absent, and a scan of the fields for each cost more than this one pass."""
+        return {name: value for name, value in reversed(self.fields)}
 
     def field_text(self, name: str) -> str:
         """Decoded value of the first such field ("" when absent)."""

@@ -184,3 +184,18 @@ def test_decode_bytes_detects_undeclared_cyrillic() -> None:
     decoded, mismatch = decode_bytes(text.encode("cp1251"), "")
     assert mismatch
     assert decoded == text
+
+
+def test_field_gives_the_first_of_repeated_fields_and_none_when_absent() -> None:
+    # RFC 5322 section 3.6.7 allows several trace fields; Received is the usual repeat.
+    raw = (
+        b"Received: from relay2.example.net by mx.harbourlane.example\r\n"
+        b"Subject: Kennel rota\r\n"
+        b"Received: from desk.vetsupply.example by relay2.example.net\r\n"
+        b"SUBJECT: a second subject\r\n\r\nBody\r\n"
+    )
+    part = parse_entity(raw, 0, ())
+    assert part.field("received") == b"from relay2.example.net by mx.harbourlane.example"
+    assert part.field("subject") == b"Kennel rota"
+    assert part.field("reply-to") is None
+    assert [name for name, _ in part.fields] == ["received", "subject", "received", "subject"]
