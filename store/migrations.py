@@ -25,6 +25,7 @@ from sqlalchemy import (
     Integer,
     LargeBinary,
     MetaData,
+    SmallInteger,
     String,
     Table,
     insert,
@@ -56,17 +57,27 @@ _VERDICT_0001 = Table(
     Column("token_hashes", LargeBinary, nullable=True),
     Index("weir_verdict_received_at", "received_at"),
 )
+# weir_ledger as 0001 created it; schema.ledger has an index since (0004).
+_LEDGER_0001 = Table(
+    "weir_ledger",
+    MetaData(),
+    Column("digest", LargeBinary(16), primary_key=True),
+    Column("label", SmallInteger, nullable=False),
+    Column("trained_at", Float, nullable=False),
+    Column("source", String(64), nullable=False),
+    sqlite_with_rowid=False,
+)
 
 
 def _initial(conn: Connection) -> None:
     tables = [
         schema.token,
         schema.class_total,
-        schema.ledger,
         schema.meta,
         schema.feedback,
     ]
     schema.metadata.create_all(conn, tables=tables)
+    _LEDGER_0001.create(conn)
     _VERDICT_0001.create(conn)
     conn.execute(
         insert(schema.class_total),
@@ -92,10 +103,17 @@ def _verdict_window_index(conn: Connection) -> None:
     conn.execute(text("DROP INDEX weir_verdict_received_at"))
 
 
+def _ledger_trained_at_index(conn: Connection) -> None:
+    """An index on the ledger's training time, so the model gauges' newest entry (every
+    minute) is one index read, not a scan of every entry the model was ever trained on."""
+    conn.execute(text("CREATE INDEX weir_ledger_trained_at ON weir_ledger (trained_at)"))
+
+
 MIGRATIONS: tuple[Migration, ...] = (
     ("0001_initial", _initial),
     ("0002_verdict_sender_list", _verdict_sender_list),
     ("0003_verdict_window_index", _verdict_window_index),
+    ("0004_ledger_trained_at_index", _ledger_trained_at_index),
 )
 
 

@@ -50,6 +50,9 @@ ledger = Table(
     Column("label", SmallInteger, nullable=False),
     Column("trained_at", Float, nullable=False),  # unix time
     Column("source", String(64), nullable=False),
+    # The model gauges read the newest entry every minute: through this index, not a scan of
+    # every entry (migration 0004).
+    Index("weir_ledger_trained_at", "trained_at"),
     sqlite_with_rowid=False,
 )
 
