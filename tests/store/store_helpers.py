@@ -3,13 +3,46 @@
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Callable
+from typing import TypeVar
 
 import numpy as np
 import pytest
-from sqlalchemy import Engine, text
+from sqlalchemy import Connection, Engine, event, inspect, text
 
 from mailweir.model.types import Vocabulary
 from mailweir.store import ModelStore, migrations
+
+_Result = TypeVar("_Result")
+
+
+def indexes(conn: Connection, table: str) -> dict[str, list[str]]:
+    """The table's indexes by name, each with its columns."""
+    return {i["name"]: i["column_names"] for i in inspect(conn).get_indexes(table)}
+
+
+def sqlite_plans(
+    engine: Engine, run: Callable[[], _Result], table: str
+) -> tuple[_Result, list[str]]:
+    """What *run* returns, and SQLite's query plan (its lines joined by " | ") of each
+    statement it sent to *engine* that names *table*."""
+    seen: list[tuple[str, object]] = []
+
+    def keep(_conn: object, _cursor: object, statement: str, params: object, *_: object) -> None:
+        seen.append((statement, params))
+
+    event.listen(engine, "before_cursor_execute", keep)
+    try:
+        result = run()
+    finally:
+        event.remove(engine, "before_cursor_execute", keep)
+    plans = []
+    with engine.connect() as conn:
+        for statement, params in seen:
+            if table in statement:
+                rows = conn.exec_driver_sql("EXPLAIN QUERY PLAN " + statement, params).all()
+                plans.append(" | ".join(str(row[-1]) for row in rows))
+    return result, plans
 
 
 def digest_of(name: str) -> bytes:

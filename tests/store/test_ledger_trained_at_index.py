@@ -7,15 +7,11 @@ from collections.abc import Callable
 
 import numpy as np
 import pytest
-from sqlalchemy import create_engine, event, inspect, text
-from store_helpers import migrate_first
+from sqlalchemy import create_engine, text
+from store_helpers import indexes, migrate_first, sqlite_plans
 
 from mailweir.store import ModelStore, reports
 from mailweir.store.migrations import migrate
-
-
-def _indexes(conn: object) -> dict[str, list[str]]:
-    return {i["name"]: i["column_names"] for i in inspect(conn).get_indexes("weir_ledger")}
 
 
 def test_migration_0004_indexes_the_ledger_of_a_0003_database(
@@ -25,7 +21,7 @@ def test_migration_0004_indexes_the_ledger_of_a_0003_database(
     try:
         assert migrate_first(engine, 3, monkeypatch)[-1] == "0003_verdict_window_index"
         with engine.begin() as conn:
-            assert _indexes(conn) == {}
+            assert indexes(conn, "weir_ledger") == {}
             conn.execute(
                 text(
                     "INSERT INTO weir_ledger (digest, label, trained_at, source) "
@@ -35,7 +31,7 @@ def test_migration_0004_indexes_the_ledger_of_a_0003_database(
             )
         assert migrate(engine) == ["0004_ledger_trained_at_index"]
         with engine.connect() as conn:
-            assert _indexes(conn) == {"weir_ledger_trained_at": ["trained_at"]}
+            assert indexes(conn, "weir_ledger") == {"weir_ledger_trained_at": ["trained_at"]}
             row = conn.execute(text("SELECT digest, trained_at FROM weir_ledger")).one()
         assert tuple(row) == (b"k" * 16, 1764720000.5)
     finally:
@@ -52,21 +48,10 @@ def test_newest_training_time_is_read_from_the_index(
         pytest.skip("EXPLAIN QUERY PLAN is SQLite's")
     for n in range(1, 30):
         store.train(np.arange(n, n + 5, dtype=np.int64), n % 2, digest=bytes([n]) * 16, source="t")
-    seen: list[tuple[str, object]] = []
-
-    def keep(_conn: object, _cursor: object, statement: str, params: object, *_: object) -> None:
-        seen.append((statement, params))
-
-    event.listen(store.engine, "before_cursor_execute", keep)
-    try:
-        summary = reports.model_summary(store.engine, tokens=33)
-    finally:
-        event.remove(store.engine, "before_cursor_execute", keep)
+    summary, plans = sqlite_plans(
+        store.engine, lambda: reports.model_summary(store.engine, tokens=33), "weir_ledger"
+    )
     assert summary.last_trained_at is not None
-    ledger = [(s, p) for s, p in seen if "weir_ledger" in s]
-    assert ledger
-    with store.engine.connect() as conn:
-        for statement, params in ledger:
-            rows = conn.exec_driver_sql("EXPLAIN QUERY PLAN " + statement, params).all()
-            plan = " | ".join(str(row[-1]) for row in rows)
-            assert "weir_ledger_trained_at" in plan and "SCAN weir_ledger" not in plan, plan
+    assert plans
+    for plan in plans:
+        assert "weir_ledger_trained_at" in plan and "SCAN weir_ledger" not in plan, plan

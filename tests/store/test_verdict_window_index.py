@@ -11,16 +11,12 @@ import time
 from collections.abc import Callable
 
 import pytest
-from sqlalchemy import create_engine, event, inspect, text
-from store_helpers import migrate_first
+from sqlalchemy import create_engine, text
+from store_helpers import indexes, migrate_first, sqlite_plans
 
 from mailweir.store import ModelStore, reports
 from mailweir.store.migrations import migrate
 from mailweir.store.verdicts import VerdictRecord
-
-
-def _indexes(conn: object) -> dict[str, list[str]]:
-    return {i["name"]: i["column_names"] for i in inspect(conn).get_indexes("weir_verdict")}
 
 
 def test_migration_0003_replaces_the_arrival_index_on_a_0002_database(
@@ -30,7 +26,7 @@ def test_migration_0003_replaces_the_arrival_index_on_a_0002_database(
     try:
         assert migrate_first(engine, 2, monkeypatch) == ["0001_initial", "0002_verdict_sender_list"]
         with engine.begin() as conn:
-            assert _indexes(conn) == {"weir_verdict_received_at": ["received_at"]}
+            assert indexes(conn, "weir_verdict") == {"weir_verdict_received_at": ["received_at"]}
             conn.execute(
                 text(
                     "INSERT INTO weir_verdict (tracking_id, received_at, recipients, size, "
@@ -39,7 +35,9 @@ def test_migration_0003_replaces_the_arrival_index_on_a_0002_database(
             )
         assert migrate(engine)[0] == "0003_verdict_window_index"  # and any newer after it
         with engine.connect() as conn:
-            assert _indexes(conn) == {"weir_verdict_window": ["received_at", "band", "tracking_id"]}
+            assert indexes(conn, "weir_verdict") == {
+                "weir_verdict_window": ["received_at", "band", "tracking_id"]
+            }
             row = conn.execute(text("SELECT tracking_id, band FROM weir_verdict")).one()
         assert tuple(row) == ("kept", "ham")
     finally:
@@ -59,23 +57,10 @@ def test_window_counts_read_the_index_alone(open_store: Callable[..., ModelStore
             for n in range(1, 50)
         ]
     )
-    seen: list[tuple[str, object]] = []
-
-    def keep(_conn: object, _cursor: object, statement: str, params: object, *_: object) -> None:
-        seen.append((statement, params))
-
-    event.listen(store.engine, "before_cursor_execute", keep)
-    try:
-        rates = reports.misfiling_rates(store.engine, 3600.0, now=now)
-    finally:
-        event.remove(store.engine, "before_cursor_execute", keep)
+    rates, plans = sqlite_plans(
+        store.engine, lambda: reports.misfiling_rates(store.engine, 3600.0, now=now), "weir_verdict"
+    )
     assert rates.judged == 49
-    plans = []
-    with store.engine.connect() as conn:
-        for statement, params in seen:
-            if "weir_verdict" in statement:
-                rows = conn.exec_driver_sql("EXPLAIN QUERY PLAN " + statement, params).all()
-                plans.append(" | ".join(str(row[-1]) for row in rows))
     counting = [plan for plan in plans if "weir_feedback" not in plan]
     assert counting and all("COVERING INDEX weir_verdict_window" in p for p in counting)
     assert not any("SCAN weir_verdict" in plan for plan in plans)
