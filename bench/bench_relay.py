@@ -16,13 +16,17 @@ run: RSS summed over its processes, and PSS, where a page the processes share (t
 the scoring pool's forkserver preloaded) counts once.  Before each pair, a memory probe
 (``machine_probe.py``: random reads from 32 MB) shows what other tenants of the processor's
 caches, invisible in /proc, are doing to mailweir's table lookups.  The machine is shared:
-compare only within one run.  Each message size starts with one unmeasured pass of its
-messages through the daemon (the count cache then holds their tokens), and each run with a
-short warm-up.  Each measured run then sends them with a last line of ``--new-words`` (6)
-words never seen before, new for every run, as real mail brings (about 6 of 110 tokens per
-message on the development corpus): the daemon has to ask the database about those, as it
-would in service.  With
-``--new-words 0`` every count is in memory, the best case.  The bare relay sends DATA as
+compare only within one run.  Under each pair, a line gives the daemon's own account of its
+judging: parse (tokenize and hash) and look up and score, per message, from its
+``mailweir_parsing_seconds`` and ``mailweir_scoring_seconds`` histograms (wall time on the
+event loop, where they run for mail under 16 KiB): beside ``bench_scoring.py``'s figures for
+the same steps alone, they show what judging costs amid the SMTP work.  Each message size
+starts with one unmeasured pass of its messages through the daemon (the count cache then
+holds their tokens), and each run with a short warm-up.  Each measured run then sends them
+with a last line of ``--new-words`` (6) words never seen before, new for every run, as real
+mail brings (about 6 of 110 tokens per message on the development corpus): the daemon has to
+ask the database about those, as it would in service.  With ``--new-words 0`` every count is
+in memory, the best case.  The bare relay sends DATA as
 mailweir does (``relay_parts.py``), so that the two differ by the judging alone;
 ``--bare-data library`` has it use aiosmtplib's ``data`` instead, as the simplest relay would
 (3-5% more CPU a 4 KB message; the figures in the README before 3 December 07:00 UTC were
@@ -49,6 +53,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import math
 import os
 import shutil
 import statistics
@@ -57,6 +62,8 @@ import sys
 import tempfile
 import threading
 import time
+import tomllib
+import urllib.request
 from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
@@ -121,13 +128,17 @@ class Figures:
     others_cpu: float  # CPU seconds of other processes during the run
     rss_mb: float  # summed over the server's process tree
     pss_mb: float  # the same, shared pages counted once
+    # The daemon's own account of its judging per message (its mailweir_parsing_seconds and
+    # mailweir_scoring_seconds histograms: wall time on the event loop), nan for other servers.
+    parse_ms: float = float("nan")
+    score_ms: float = float("nan")
 
     @property
     def rate(self) -> float:
         return self.sent / self.seconds
 
 
-Server = tuple[int, int]  # pid, port
+Server = tuple[int, int, str | None]  # pid, port, the daemon's /metrics address (None: none)
 Round = tuple[Figures, Figures, Figures | None]  # bare, mailweir, mailweir without judging
 
 
@@ -193,9 +204,16 @@ def _mailweir_config(
 
 
 def _measure(
-    name: str, pid: int, port: int, messages: list[bytes], clients: int, size: str
+    name: str,
+    pid: int,
+    port: int,
+    metrics: str | None,
+    messages: list[bytes],
+    clients: int,
+    size: str,
 ) -> Figures:
     asyncio.run(push(port, messages[: clients * 4], clients))  # warm-up: connections, caches
+    steps_before = _judge_steps(metrics)
     server_before = proc_cpu.tree_seconds(pid)
     kernel_before = proc_cpu.tree_counts(pid, proc_cpu.system_seconds)
     faults_before = proc_cpu.tree_counts(pid, proc_cpu.minor_faults)
@@ -204,6 +222,8 @@ def _measure(
     started = time.perf_counter()
     results = asyncio.run(push(port, messages, clients))
     seconds = time.perf_counter() - started
+    steps_after = _judge_steps(metrics)
+    steps = [after - before for before, after in zip(steps_before, steps_after, strict=True)]
     busy = proc_cpu.machine_busy_seconds() - busy_before
     ours = proc_cpu.used(ours_before, proc_cpu.tree_seconds(os.getpid()))
     server = proc_cpu.used(server_before, proc_cpu.tree_seconds(pid))
@@ -231,7 +251,31 @@ def _measure(
         max(0.0, busy - ours),
         rss,
         pss,
+        steps[0] / steps[2] * 1e3 if steps[2] else float("nan"),
+        steps[1] / steps[2] * 1e3 if steps[2] else float("nan"),
     )
+
+
+_STEP_SERIES = (
+    "mailweir_parsing_seconds_sum",
+    "mailweir_scoring_seconds_sum",
+    "mailweir_scoring_seconds_count",
+)
+
+
+def _judge_steps(metrics: str | None) -> tuple[float, ...]:
+    """The daemon's summed parse and score seconds and its count of scored messages, from its
+    /metrics page (zeros without one)."""
+    if metrics is None:
+        return (0.0,) * len(_STEP_SERIES)
+    with urllib.request.urlopen(metrics, timeout=10) as reply:
+        return step_values(reply.read().decode())
+
+
+def step_values(page: str) -> tuple[float, ...]:
+    """``_STEP_SERIES``' values on a Prometheus exposition page (0 for one it lacks)."""
+    values = dict(line.split(" ", 1) for line in page.splitlines() if line.startswith(_STEP_SERIES))
+    return tuple(float(values.get(series, 0.0)) for series in _STEP_SERIES)
 
 
 def _print(bare: Figures, mine: Figures, read_ns: float, unjudged: Figures | None) -> None:
@@ -252,6 +296,10 @@ def _print(bare: Figures, mine: Figures, read_ns: float, unjudged: Figures | Non
             f"{'':>6} {'':>3} {'':<8} {'':>35} relaying {unjudged.cpu_ms / bare.cpu_ms:.2f} "
             f"of the bare relay's CPU, judging {mine.cpu_ms - unjudged.cpu_ms:.2f} ms a message"
         )
+    print(
+        f"{'':>6} {'':>3} {'':<8} {'':>35} the daemon's judge: parse {mine.parse_ms:.2f}, "
+        f"look up and score {mine.score_ms:.2f} ms a message"
+    )
 
 
 def main() -> None:
@@ -295,6 +343,7 @@ def main() -> None:
         config = _mailweir_config(folder, model, sink_port, port)
         daemon, _ = _start([MAILWEIR, "run", "--config", str(config)], None, port)
         stop.callback(_stop, daemon)
+        daemon_metrics = _metrics_url(config)
         unjudged: Server | None = None
         if args.without_judging:
             (folder / "unjudged").mkdir()
@@ -303,8 +352,13 @@ def main() -> None:
             argv = [PYTHON, "-c", _UNJUDGED_DAEMON, "run", "--config", str(config)]
             other, _ = _start(argv, None, other_port)
             stop.callback(_stop, other)
-            unjudged = (other.pid, other_port)
-        _run(args, (bare.pid, bare_port), (daemon.pid, port), unjudged)
+            unjudged = (other.pid, other_port, None)
+        _run(args, (bare.pid, bare_port, None), (daemon.pid, port, daemon_metrics), unjudged)
+
+
+def _metrics_url(config: Path) -> str:
+    listen = tomllib.loads(config.read_text())["http"]["listen"]
+    return f"http://{listen}/metrics"
 
 
 def _stop(process: subprocess.Popen[bytes]) -> None:
@@ -399,6 +453,13 @@ def _summarize(pairs: dict[tuple[str, int], list[Round]]) -> None:
             judging = [mine.cpu_ms - o.cpu_ms for _, mine, o in runs if o is not None]
             columns += f" {_spread(relaying):>18} {_spread(judging):>18}"
         print(f"{label:>6} {clients:>3} {columns}")
+        parse = [mine.parse_ms for _, mine, _ in runs]
+        score = [mine.score_ms for _, mine, _ in runs]
+        if not any(math.isnan(value) for value in parse + score):
+            print(
+                f"{'':>6} {'':>3} the daemon's judge, ms a message: parse {_spread(parse)}, "
+                f"look up and score {_spread(score)}"
+            )
 
 
 def _spread(values: list[float]) -> str:
