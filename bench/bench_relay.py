@@ -18,9 +18,10 @@ the scoring pool's forkserver preloaded) counts once.  Before each pair, a memor
 caches, invisible in /proc, are doing to mailweir's table lookups.  The machine is shared:
 compare only within one run.  Under each pair, a line gives the daemon's own account of its
 judging: parse (tokenize and hash) and look up and score, per message, from its
-``mailweir_parsing_seconds`` and ``mailweir_scoring_seconds`` histograms (wall time on the
-event loop, where they run for mail under 16 KiB): beside ``bench_scoring.py``'s figures for
-the same steps alone, they show what judging costs amid the SMTP work.  Each message size
+``mailweir_parsing_seconds`` and ``mailweir_scoring_seconds`` histograms (wall time: on the
+event loop for mail under 16 KiB; for larger mail parsing includes the hand-off to the pool).
+Beside ``bench_scoring.py``'s figures for the same steps alone, they show what judging costs
+amid the SMTP work.  Each message size
 starts with one unmeasured pass of its messages through the daemon (the count cache then
 holds their tokens), and each run with a short warm-up.  Each measured run then sends them
 with a last line of ``--new-words`` (6) words never seen before, new for every run, as real
