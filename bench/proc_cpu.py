@@ -68,7 +68,7 @@ def tree_counts(root: int, count: Callable[[int], float]) -> dict[int, float]:
 
 def tree_seconds(root: int) -> dict[int, float]:
     """CPU seconds per process of the tree; diff two snapshots with :func:`used`."""
-    return {pid: process_seconds(pid) for pid in tree_pids(root)}
+    return tree_counts(root, process_seconds)
 
 
 def used(before: dict[int, float], after: dict[int, float]) -> float:
