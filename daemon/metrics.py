@@ -42,6 +42,7 @@ from mailweir.daemon import replies
 from mailweir.daemon.background import stop_task
 from mailweir.daemon.errors import NextHopRejected, RelayError
 from mailweir.daemon.upkeep import UpkeepMetrics
+from mailweir.model.words import compiled_scan
 from mailweir.store.reports import MisfilingRates, ModelSummary
 
 log = logging.getLogger("mailweir.metrics")
@@ -292,8 +293,18 @@ class Metrics:
             "Periodic refreshes of the rate and model gauges that failed.",
             registry=r,
         )
-        self.build_info = Info("mailweir_build", "Version of mailweir and Python.", registry=r)
-        self.build_info.info({"version": _version(), "python": platform.python_version()})
+        self.build_info = Info(
+            "mailweir_build",
+            "Version of mailweir and Python, and whether the tokenizer's chunk scan is compiled.",
+            registry=r,
+        )
+        self.build_info.info(
+            {
+                "version": _version(),
+                "python": platform.python_version(),
+                "chunk_scan": "compiled" if compiled_scan is not None else "python",
+            }
+        )
         self.upkeep = UpkeepMetrics(r)  # mailweir_upkeep_*, set by daemon/upkeep.py
         self._verdict_log = _VerdictLogCollector()
         r.register(self._verdict_log)

@@ -7,7 +7,11 @@ cd "$(dirname "$0")/.."
 if [ ! -x .venv/bin/python ]; then
   python3 -m venv .venv
 fi
-if [ ! -f .venv/.mailweir-demo-installed ] || [ pyproject.toml -nt .venv/.mailweir-demo-installed ]; then
+stale=0
+for source in pyproject.toml setup.py model/_chunk_scan.c; do
+  if [ "$source" -nt .venv/.mailweir-demo-installed ]; then stale=1; fi
+done
+if [ ! -f .venv/.mailweir-demo-installed ] || [ "$stale" = 1 ]; then
   echo "Installing mailweir into .venv (first run only) ..."
   .venv/bin/python -m pip install -q --disable-pip-version-check -e .
   touch .venv/.mailweir-demo-installed

@@ -17,6 +17,7 @@ from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, fail
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import SmtpSettings
 from mailweir.daemon.smtp_server import Connections
+from mailweir.model import words
 from mailweir.store import ModelStore, reports
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 
@@ -156,7 +157,8 @@ def test_metrics_fresh_registries_are_independent() -> None:
 
 def test_metrics_build_info_names_version() -> None:
     labels = scrape(Metrics())["mailweir_build_info"][0].labels
-    assert set(labels) == {"version", "python"} and labels["version"]
+    assert set(labels) == {"version", "python", "chunk_scan"} and labels["version"]
+    assert labels["chunk_scan"] == ("python" if words.compiled_scan is None else "compiled")
 
 
 class FakeVerdictLog:

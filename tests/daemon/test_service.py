@@ -121,6 +121,25 @@ async def test_service_startup_binds_port_zero_and_shuts_down_clean(
     assert service.store is None and service.judge is None
 
 
+@pytest.mark.parametrize("compiled", [True, False])
+async def test_service_startup_warns_when_the_chunk_scan_runs_in_python(
+    tmp_path: Path,
+    sink: tuple[SinkHandler, HostPort],
+    caplog: pytest.LogCaptureFixture,
+    monkeypatch: pytest.MonkeyPatch,
+    compiled: bool,
+) -> None:
+    # An install without a C compiler still works, slower; the admin is told at start.
+    if not compiled:
+        monkeypatch.setattr(service_module, "compiled_scan", None)
+    service = Service(make_settings(tmp_path, sink[1]))
+    with caplog.at_level(logging.WARNING, logger="mailweir"):
+        await service.startup()
+    await service.shutdown(grace=5)
+    warned = "the tokenizer's chunk scan runs in Python" in caplog.text
+    assert warned == (not compiled or service_module.compiled_scan is None)
+
+
 async def test_service_model_gauges_count_tokens_without_reading_the_token_table(
     tmp_path: Path, sink: tuple[SinkHandler, HostPort]
 ) -> None:

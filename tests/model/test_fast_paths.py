@@ -62,8 +62,9 @@ def test_money_gate_never_hides_an_amount(text: str) -> None:
     # The gate looks only at the non-word chunks and the chunk set; money_tokens at the text.
     chunks = dict.fromkeys(text.split())
     rest = " ".join(sorted(chunks.keys() - set(filter(str.isalpha, chunks))))
+    currency_word = not chunks.keys().isdisjoint({"usd", "eur", "gbp"})
     if money_tokens(text):
-        assert words._may_hold_money(rest, chunks)
+        assert words._may_hold_money(rest, currency_word)
 
 
 # The two hints in their plain form, as first written: the fast forms must agree with them.
