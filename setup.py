@@ -1,7 +1,10 @@
-"""The one compiled module; everything else about the build is in pyproject.toml.
+"""The compiled modules; everything else about the build is in pyproject.toml.
 
-The tokenizer's chunk scan in C (model/_chunk_scan.c) is optional: without a C compiler and
-Python's headers the install goes on, and model/words.py runs the same steps in Python.
+Both are optional: without a C compiler and Python's headers the install goes on, and the
+same steps run in Python (model/compiled.py says which are built).
+- model/_chunk_scan.c: the tokenizer's chunk scan (model/words.py, ``python_scan``);
+- model/_digest_probe.c: the token digest cache's lookup (model/digest_cache.py,
+  ``python_probe``).
 """
 
 from setuptools import Extension, setup
@@ -9,5 +12,6 @@ from setuptools import Extension, setup
 setup(
     ext_modules=[
         Extension("mailweir.model._chunk_scan", ["model/_chunk_scan.c"], optional=True),
+        Extension("mailweir.model._digest_probe", ["model/_digest_probe.c"], optional=True),
     ]
 )

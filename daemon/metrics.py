@@ -42,7 +42,7 @@ from mailweir.daemon import replies
 from mailweir.daemon.background import stop_task
 from mailweir.daemon.errors import NextHopRejected, RelayError
 from mailweir.daemon.upkeep import UpkeepMetrics
-from mailweir.model.words import compiled_scan
+from mailweir.model.compiled import COMPILED
 from mailweir.store.reports import MisfilingRates, ModelSummary
 
 log = logging.getLogger("mailweir.metrics")
@@ -295,14 +295,14 @@ class Metrics:
         )
         self.build_info = Info(
             "mailweir_build",
-            "Version of mailweir and Python, and whether the tokenizer's chunk scan is compiled.",
+            "Version of mailweir and Python, and which of its optional C modules are built.",
             registry=r,
         )
         self.build_info.info(
             {
                 "version": _version(),
                 "python": platform.python_version(),
-                "chunk_scan": "compiled" if compiled_scan is not None else "python",
+                "compiled": ",".join(name for name, built in COMPILED.items() if built),
             }
         )
         self.upkeep = UpkeepMetrics(r)  # mailweir_upkeep_*, set by daemon/upkeep.py

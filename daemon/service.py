@@ -45,7 +45,7 @@ from mailweir.daemon.settings import HostPort, Settings
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
 from mailweir.daemon.upkeep import Upkeep
 from mailweir.daemon.verdict_log import VerdictLog
-from mailweir.model.words import compiled_scan
+from mailweir.model.compiled import missing_parts
 from mailweir.store.memory import limit_malloc_arenas, map_large_blocks
 
 log = logging.getLogger("mailweir.service")
@@ -117,11 +117,12 @@ class Service:
             s.policy.position,
             s.database,
         )
-        if compiled_scan is None:
+        if missing := missing_parts():
             log.warning(
-                "the tokenizer's chunk scan runs in Python: mailweir was installed without "
-                "a C compiler (and Python's headers), so each message costs more CPU; "
-                "reinstall with them to build model/_chunk_scan.c"
+                "%s run in Python: mailweir was installed without a C compiler (and "
+                "Python's headers), so each message costs more CPU (the same results); "
+                "reinstall with them to build model/_*.c",
+                ", ".join(missing),
             )
 
     async def wait_for_stop(self) -> None:

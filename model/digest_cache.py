@@ -29,6 +29,11 @@ import numpy.typing as npt
 
 from .aligned import line_aligned
 
+try:  # the compiled lookup, where the build made it (setup.py: optional)
+    from ._digest_probe import probe as compiled_probe
+except ImportError:  # depends on the build: a C compiler and Python's headers
+    compiled_probe = None
+
 WAYS = 8  # ``get`` reads a set's match flags as one 8-byte word
 _EMPTY = -1  # never a str's hash()
 _MIN_SETS = 16
@@ -78,6 +83,25 @@ class DigestCache:
         found = _any_way(match)
         values *= found
         return values, found
+
+    def probe(self, tokens: list[str]) -> tuple[_Keys, _Keys, list[int]]:
+        """For *tokens*: their keys, their token hashes (0 where not held), and the positions
+        of those not held.  One pass in C where ``_digest_probe`` was built, else ``keys_of``
+        and ``get`` (``python_probe``, the specification the tests hold the C to)."""
+        if compiled_probe is None:
+            return self.python_probe(tokens)
+        keys = np.empty(len(tokens), dtype=np.int64)
+        values = np.empty(len(tokens), dtype=np.int64)
+        with self._lock:
+            missing = compiled_probe(
+                tokens, self._keys, self._values, int(self._mask), keys, values
+            )
+        return keys, values, missing
+
+    def python_probe(self, tokens: list[str]) -> tuple[_Keys, _Keys, list[int]]:
+        keys = keys_of(tokens)
+        values, found = self.get(keys)
+        return keys, values, (~found).nonzero()[0].tolist()
 
     def put(self, keys: _Keys, values: _Keys) -> None:
         """Hold these entries: in the way already holding the key, else an empty way of its

@@ -15,7 +15,7 @@ from itertools import repeat
 
 import numpy as np
 
-from .digest_cache import DigestCache, keys_of
+from .digest_cache import DigestCache
 from .pairs import PAIR_PREFIX, pair_hash_int, pair_hashes, split_pair
 from .types import TokenHashes
 
@@ -111,9 +111,7 @@ def token_hashes(tokens: Iterable[str]) -> TokenHashes:
         ``np.int64`` hash of each token, aligned with ``tokens`` (repeats kept, not sorted).
     """
     tokens = list(tokens)
-    keys = keys_of(tokens)
-    values, found = _digest_cache.get(keys)
-    missing = (~found).nonzero()[0].tolist()
+    keys, values, missing = _digest_cache.probe(tokens)
     if not missing:
         return values
     # Digests are gathered as bytes and read into the array at once: converting each to an

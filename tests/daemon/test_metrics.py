@@ -17,7 +17,7 @@ from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, fail
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import SmtpSettings
 from mailweir.daemon.smtp_server import Connections
-from mailweir.model import words
+from mailweir.model.compiled import COMPILED
 from mailweir.store import ModelStore, reports
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 
@@ -157,8 +157,9 @@ def test_metrics_fresh_registries_are_independent() -> None:
 
 def test_metrics_build_info_names_version() -> None:
     labels = scrape(Metrics())["mailweir_build_info"][0].labels
-    assert set(labels) == {"version", "python", "chunk_scan"} and labels["version"]
-    assert labels["chunk_scan"] == ("python" if words.compiled_scan is None else "compiled")
+    assert set(labels) == {"version", "python", "compiled"} and labels["version"]
+    built = [name for name, there in COMPILED.items() if there]
+    assert labels["compiled"].split(",") == built or (labels["compiled"], built) == ("", [])
 
 
 class FakeVerdictLog:

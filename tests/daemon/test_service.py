@@ -122,7 +122,7 @@ async def test_service_startup_binds_port_zero_and_shuts_down_clean(
 
 
 @pytest.mark.parametrize("compiled", [True, False])
-async def test_service_startup_warns_when_the_chunk_scan_runs_in_python(
+async def test_service_startup_warns_when_c_modules_run_in_python(
     tmp_path: Path,
     sink: tuple[SinkHandler, HostPort],
     caplog: pytest.LogCaptureFixture,
@@ -131,13 +131,13 @@ async def test_service_startup_warns_when_the_chunk_scan_runs_in_python(
 ) -> None:
     # An install without a C compiler still works, slower; the admin is told at start.
     if not compiled:
-        monkeypatch.setattr(service_module, "compiled_scan", None)
+        monkeypatch.setattr(service_module, "missing_parts", lambda: ["chunk_scan"])
     service = Service(make_settings(tmp_path, sink[1]))
     with caplog.at_level(logging.WARNING, logger="mailweir"):
         await service.startup()
     await service.shutdown(grace=5)
-    warned = "the tokenizer's chunk scan runs in Python" in caplog.text
-    assert warned == (not compiled or service_module.compiled_scan is None)
+    warned = "chunk_scan run in Python" in caplog.text
+    assert warned == (not compiled or "chunk_scan" in service_module.missing_parts())
 
 
 async def test_service_model_gauges_count_tokens_without_reading_the_token_table(

@@ -3,7 +3,7 @@
 ``words.python_scan`` is built from CPython's own ``str.split()``, ``dict.fromkeys`` and
 ``str.isalpha()``; ``_chunk_scan.scan`` (C) must agree with it on every str, whatever its
 storage kind (one, two or four bytes a character), and ``split_words`` must make the same
-tokens with either.  CI builds the extension and sets ``MAILWEIR_REQUIRE_COMPILED_SCAN=1``,
+tokens with either.  CI builds the extension and sets ``MAILWEIR_REQUIRE_COMPILED=1``,
 so these checks cannot pass there by being skipped.
 """
 
@@ -36,7 +36,7 @@ CHUNKY = st.lists(
 
 
 def test_the_extension_is_built_where_required() -> None:
-    if os.environ.get("MAILWEIR_REQUIRE_COMPILED_SCAN") == "1":
+    if os.environ.get("MAILWEIR_REQUIRE_COMPILED") == "1":
         assert compiled is not None, "model/_chunk_scan.c was not built"
     assert words.scan_chunks is (compiled or python_scan)
 

@@ -1,0 +1,21 @@
+"""Which of the model's optional C modules this install has (setup.py builds them when a C
+compiler and Python's headers are there).  Each has a Python spelling that gives the same
+results, more slowly; the daemon reports the difference at start and in its metrics."""
+
+from __future__ import annotations
+
+from typing import Final
+
+from .digest_cache import compiled_probe
+from .words import compiled_scan
+
+# name -> built: the chunk scan that starts split_words, the digest cache's lookup
+COMPILED: Final = {
+    "chunk_scan": compiled_scan is not None,
+    "digest_probe": compiled_probe is not None,
+}
+
+
+def missing_parts() -> list[str]:
+    """The C modules this install runs in Python instead."""
+    return [name for name, built in COMPILED.items() if not built]
