@@ -1,10 +1,11 @@
 """The compiled modules; everything else about the build is in pyproject.toml.
 
 Both are optional: without a C compiler and Python's headers the install goes on, and the
-same steps run in Python (model/compiled.py says which are built).
+same steps run in Python (daemon/compiled.py says which are built).
 - model/_chunk_scan.c: the tokenizer's chunk scan (model/words.py, ``python_scan``);
 - model/_digest_probe.c: the token digest cache's lookup (model/digest_cache.py,
-  ``python_probe``).
+  ``python_probe``);
+- store/_count_probe.c: the count cache's lookup (store/cache.py, ``python_get``).
 """
 
 from setuptools import Extension, setup
@@ -13,5 +14,6 @@ setup(
     ext_modules=[
         Extension("mailweir.model._chunk_scan", ["model/_chunk_scan.c"], optional=True),
         Extension("mailweir.model._digest_probe", ["model/_digest_probe.c"], optional=True),
+        Extension("mailweir.store._count_probe", ["store/_count_probe.c"], optional=True),
     ]
 )

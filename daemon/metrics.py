@@ -40,9 +40,9 @@ from prometheus_client.registry import Collector
 
 from mailweir.daemon import replies
 from mailweir.daemon.background import stop_task
+from mailweir.daemon.compiled import COMPILED
 from mailweir.daemon.errors import NextHopRejected, RelayError
 from mailweir.daemon.upkeep import UpkeepMetrics
-from mailweir.model.compiled import COMPILED
 from mailweir.store.reports import MisfilingRates, ModelSummary
 
 log = logging.getLogger("mailweir.metrics")

@@ -29,6 +29,7 @@ from pathlib import Path
 from typing import Any
 
 from mailweir.daemon import verdict_journal
+from mailweir.daemon.compiled import missing_parts
 from mailweir.daemon.config import CONFIG_PATH_ENV, ConfigSource, validate
 from mailweir.daemon.digest import DigestSchedule
 from mailweir.daemon.errors import ConfigError
@@ -45,7 +46,6 @@ from mailweir.daemon.settings import HostPort, Settings
 from mailweir.daemon.smtp_server import Connections, create_smtp_server
 from mailweir.daemon.upkeep import Upkeep
 from mailweir.daemon.verdict_log import VerdictLog
-from mailweir.model.compiled import missing_parts
 from mailweir.store.memory import limit_malloc_arenas, map_large_blocks
 
 log = logging.getLogger("mailweir.service")
@@ -121,7 +121,7 @@ class Service:
             log.warning(
                 "%s run in Python: mailweir was installed without a C compiler (and "
                 "Python's headers), so each message costs more CPU (the same results); "
-                "reinstall with them to build model/_*.c",
+                "reinstall with them to build model/_*.c and store/_*.c",
                 ", ".join(missing),
             )
 

@@ -8,7 +8,7 @@ if [ ! -x .venv/bin/python ]; then
   python3 -m venv .venv
 fi
 stale=0
-for source in pyproject.toml setup.py model/_*.c; do
+for source in pyproject.toml setup.py model/_*.c store/_*.c; do
   if [ "$source" -nt .venv/.mailweir-demo-installed ]; then stale=1; fi
 done
 if [ ! -f .venv/.mailweir-demo-installed ] || [ "$stale" = 1 ]; then

@@ -12,12 +12,12 @@ from prometheus_client.parser import text_string_to_metric_families
 from prometheus_client.samples import Sample
 
 from mailweir.daemon import replies
+from mailweir.daemon.compiled import COMPILED
 from mailweir.daemon.errors import NextHopRejected, NextHopUnavailable, RelayError
 from mailweir.daemon.metrics import RATE_WINDOWS, Metrics, ReportRefresher, failure_kind
 from mailweir.daemon.replies import Reply
 from mailweir.daemon.settings import SmtpSettings
 from mailweir.daemon.smtp_server import Connections
-from mailweir.model.compiled import COMPILED
 from mailweir.store import ModelStore, reports
 from mailweir.store.verdicts import FeedbackChannel, FeedbackKind, FeedbackRecord, VerdictRecord
 

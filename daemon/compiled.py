@@ -1,4 +1,4 @@
-"""Which of the model's optional C modules this install has (setup.py builds them when a C
+"""Which of mailweir's optional C modules this install has (setup.py builds them when a C
 compiler and Python's headers are there).  Each has a Python spelling that gives the same
 results, more slowly; the daemon reports the difference at start and in its metrics."""
 
@@ -6,13 +6,16 @@ from __future__ import annotations
 
 from typing import Final
 
-from .digest_cache import compiled_probe
-from .words import compiled_scan
+from mailweir.model.digest_cache import compiled_probe
+from mailweir.model.words import compiled_scan
+from mailweir.store.cache import compiled_get
 
-# name -> built: the chunk scan that starts split_words, the digest cache's lookup
+# name -> built: the chunk scan that starts split_words (model/_chunk_scan.c), the digest
+# cache's lookup (model/_digest_probe.c), the count cache's (store/_count_probe.c)
 COMPILED: Final = {
     "chunk_scan": compiled_scan is not None,
     "digest_probe": compiled_probe is not None,
+    "count_probe": compiled_get is not None,
 }
 
 
