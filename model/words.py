@@ -285,6 +285,8 @@ def python_scan(
             plain[chunk] = None
             if size > max_word:
                 too_long = True
+            if size == 1:  # only where min_word is 1
+                singles.append(chunk)
         elif size == 1:
             singles.append(chunk)
     return plain, others, singles, too_long

@@ -47,8 +47,11 @@ def test_the_extension_is_built_where_required() -> None:
 def test_compiled_scan_equals_the_python_scan(text: str) -> None:
     assert compiled is not None
     assert compiled(text, MIN_WORD, MAX_WORD) == python_scan(text, MIN_WORD, MAX_WORD)
-    # Dict order is part of the answer: tokens keep the order of first appearance.
-    assert list(compiled(text, 2, 5)[0]) == list(python_scan(text, 2, 5)[0])
+    # Dict order is part of the answer: tokens keep the order of first appearance.  Other
+    # word lengths too, down to single letters as words.
+    for least, most in ((2, 5), (1, 1), (1, 3), (1, 0)):
+        assert compiled(text, least, most) == python_scan(text, least, most)
+        assert list(compiled(text, least, most)[0]) == list(python_scan(text, least, most)[0])
 
 
 @needs_compiled
