@@ -10,9 +10,10 @@ chance near 10**-8 per process lifetime (the birthday bound), far below the chan
 of the model's own tokens share a BLAKE2b hash (``hashing.py``).
 
 A slot costs 16 bytes, about 20-40 per entry with the slack of a set-associative table,
-against about 140 for a dict of token text to digest (measured: 80 bytes for the entry and
-its 8-byte digest, 61 for the text it keeps alive).  A lookup is a fixed handful of
-whole-array steps; a full set replaces one of its entries (the way picked by other bits of
+against about 140 for a dict of token text to digest (measured: 80 bytes for the entry and its
+8-byte digest, 61 for the text it keeps alive).  A lookup is a fixed handful of whole-array
+steps (``get``), or, for a message's tokens, one loop in C where it was built (``probe``,
+``_digest_probe.c``).  A full set replaces one of its entries (the way picked by other bits of
 the key), so nothing is ever emptied at once.  Key -1 marks an empty slot: ``hash()`` never
 gives -1 (CPython keeps it for errors), so the keys need no remapping.
 

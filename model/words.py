@@ -292,7 +292,7 @@ def python_scan(
     return plain, others, singles, too_long
 
 
-try:  # the compiled scan, where the build made it (pyproject.toml: optional)
+try:  # the compiled scan, where the build made it (setup.py: optional)
     from ._chunk_scan import scan as compiled_scan
 except ImportError:  # depends on the build: a C compiler and Python's headers
     compiled_scan = None

@@ -9,13 +9,14 @@ is full goes to the next one (linear probing by buckets) and marks the bucket it
 spilled.  Entries are never removed one by one, so a miss in a bucket that never spilled is
 final.
 
-``get`` gathers the home row of every hash at once (one random 128-byte read per hash where
-a binary search makes about twenty), matches keys and picks counts with whole-array
-operations, and looks further, one hash at a time, only for the two or three hashes of a
-message that miss in a spilled bucket.  Every int64 is a possible token hash, so no key value
-can mean "empty": the empty slots of bucket ``b`` hold a key whose home is bucket ``b + 1``,
-which no search that reads bucket ``b`` can be looking for (such a search starts past ``b``
-and ends long before it could wrap round the table).
+``get`` gathers the home row of every hash at once (one random 128-byte read per hash where a
+binary search makes about twenty), matches keys and picks counts with whole-array operations,
+and looks further, one hash at a time, only for the two or three hashes of a message that miss
+in a spilled bucket (``python_get``; where ``_count_probe.c`` was built, one loop in C does
+the same for each hash in turn).  Every int64 is a possible token hash, so no key value can
+mean "empty": the empty slots of bucket ``b`` hold a key whose home is bucket ``b + 1``, which
+no search that reads bucket ``b`` can be looking for (such a search starts past ``b`` and ends
+long before it could wrap round the table).
 
 A slot costs 16 bytes.  The table is rehashed into about 1.3 times the buckets when its load
 would pass 0.55, back to 0.42, so a held token costs 30-39 bytes including the empty slots
