@@ -9,7 +9,7 @@ tokens and any content of the table.  CI builds the extension and sets
 from __future__ import annotations
 
 import os
-import tracemalloc
+from collections.abc import Callable
 
 import numpy as np
 import pytest
@@ -20,6 +20,7 @@ from mailweir.model import digest_cache
 from mailweir.model.digest_cache import DigestCache, keys_of
 from mailweir.model.hashing import token_hash, token_hashes
 
+HeapGrowth = Callable[[Callable[[], object]], int]  # tests/conftest.py's heap_growth
 compiled = digest_cache.compiled_probe
 needs_compiled = pytest.mark.skipif(compiled is None, reason="the C extension was not built")
 
@@ -114,16 +115,7 @@ def test_compiled_probe_refuses_wrong_arrays() -> None:
 
 
 @needs_compiled
-def test_compiled_probe_leaks_nothing() -> None:
+def test_compiled_probe_leaks_nothing(heap_growth: HeapGrowth) -> None:
     cache = _filled(1000, [f"w{n}" for n in range(300)])
     tokens = [f"w{n}" for n in range(0, 600, 2)]
-    cache.probe(tokens)
-    tracemalloc.start()
-    try:
-        first = tracemalloc.get_traced_memory()[0]
-        for _ in range(2000):
-            cache.probe(tokens)
-        grown = tracemalloc.get_traced_memory()[0] - first
-    finally:
-        tracemalloc.stop()
-    assert grown < 2000
+    assert heap_growth(lambda: cache.probe(tokens)) < 2000
