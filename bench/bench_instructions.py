@@ -65,6 +65,8 @@ from bench_relay import (  # noqa: E402
 )
 from relay_parts import LOCAL, push  # noqa: E402
 
+from mailweir.model.tokenize import DEFAULT_OPTIONS  # noqa: E402
+
 # A server under callgrind runs tens of times slower; imports and the model's preload too.
 START_WAIT = 900.0
 # The daemon's work that comes by the clock would land about SLOWDOWN times as often per
@@ -152,7 +154,7 @@ def _keep(folder: Path, keep: Path | None) -> None:
 
 
 def relay(args: argparse.Namespace) -> None:
-    model = bench_mail.build_model(args.min_tokens)
+    model = bench_mail.build_model(args.min_tokens, bigrams=args.bigrams)
     messages = [bench_mail.message(i, args.size, seed=7) for i in range(args.messages)]
     print(
         f"{args.messages} messages of {args.size // 1024} KB, {args.new_words} new words each; "
@@ -219,6 +221,7 @@ def scoring(args: argparse.Namespace) -> None:
         argv = [PYTHON, __file__, "scoring-child", "--messages", str(args.messages)]
         argv += ["--size", str(args.size), "--new-words", str(args.new_words)]
         argv += ["--min-tokens", str(args.min_tokens), "--out", str(out)]
+        argv += ["--bigrams"] if args.bigrams else []
         child = subprocess.run(callgrind(out, argv), stderr=subprocess.PIPE)
         if child.returncode:
             sys.stderr.buffer.write(child.stderr)
@@ -229,27 +232,28 @@ def scoring(args: argparse.Namespace) -> None:
 def scoring_child(args: argparse.Namespace) -> None:
     import bench_scoring
 
-    from mailweir.model.nb import make_scorer
+    from mailweir.daemon.learning import scorer_for
     from mailweir.store import ModelStore
 
-    model = bench_mail.build_model(args.min_tokens)
+    model = bench_mail.build_model(args.min_tokens, bigrams=args.bigrams)
     with tempfile.TemporaryDirectory(prefix="mailweir-bench-instr-") as tmp:
         path = Path(tmp) / "model.sqlite3"
         shutil.copyfile(model, path)
         store = ModelStore.open(str(path))
         if not store.preload():
             raise SystemExit("the model does not fit the count cache")
-        scorer = make_scorer("fisher")
+        options = bench_mail.BIGRAM_OPTIONS if args.bigrams else DEFAULT_OPTIONS
+        scorer = scorer_for("fisher", options)  # uncapped for a bigram model, as the daemon
         messages = [bench_mail.message(i, args.size, seed=7) for i in range(args.messages)]
         for raw in messages:  # as in the relay: the digest and count caches hold their words
-            bench_scoring._whole_path(store, scorer, raw)
+            bench_scoring._whole_path(store, scorer, raw, options)
         fresh = [
             bench_mail.with_new_words(raw, i, args.new_words, 1) for i, raw in enumerate(messages)
         ]
 
         def send() -> None:
             for raw in fresh:
-                bench_scoring._whole_path(store, scorer, raw)
+                bench_scoring._whole_path(store, scorer, raw, options)
 
         totals, _ = counted(os.getpid(), args.out, 1, send)
         store.close()
@@ -280,6 +284,9 @@ def main() -> None:
         "--without-judging",
         action="store_true",
         help="relay: count the daemon with a fixed verdict in place of judging (bench_relay.py)",
+    )
+    parser.add_argument(
+        "--bigrams", action="store_true", help="a model with adjacent word pairs (--bigrams)"
     )
     parser.add_argument("--out", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()

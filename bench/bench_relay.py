@@ -44,6 +44,7 @@ row's), against ``bench_scoring.py``'s figure for the scoring path alone.
     python bench/bench_relay.py --messages 4000 --large-messages 800 --rounds 2
     python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9   # the target's spread
     python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9 --without-judging
+    python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9 --bigrams  # a bigram model
 
 With more than one round, a last table gives each pair's median and range over the rounds.
 
@@ -327,8 +328,13 @@ def main() -> None:
         action="store_true",
         help="also run the daemon with a fixed verdict in place of judging (module docstring)",
     )
+    parser.add_argument(
+        "--bigrams",
+        action="store_true",
+        help="the daemon's model counts adjacent word pairs too (mailweir train --bigrams)",
+    )
     args = parser.parse_args()
-    model = bench_mail.build_model(args.min_tokens)
+    model = bench_mail.build_model(args.min_tokens, bigrams=args.bigrams)
     with tempfile.TemporaryDirectory(prefix="mailweir-bench-relay-") as tmp, ExitStack() as stop:
         folder = Path(tmp)
         here = [PYTHON, str(BENCH / "relay_parts.py")]

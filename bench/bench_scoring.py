@@ -44,7 +44,7 @@ from mailweir.daemon.judge import N_EVIDENCE, _evidence_text, tokenize_step
 from mailweir.daemon.sources import read_corpus
 from mailweir.model.hashing import message_digest
 from mailweir.model.nb import NaiveBayes, make_scorer
-from mailweir.model.tokenize import DEFAULT_OPTIONS, tokens
+from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
 from mailweir.model.types import HAM, SPAM, UNREAD_VOCABULARY
 from mailweir.store import ModelStore
 
@@ -63,11 +63,16 @@ def _per_message(step: Callable[[bytes], object], messages: list[bytes], rounds:
     return best
 
 
-def _whole_path(store: ModelStore, scorer: NaiveBayes, raw: bytes) -> None:
+def _whole_path(
+    store: ModelStore,
+    scorer: NaiveBayes,
+    raw: bytes,
+    options: TokenizerOptions = DEFAULT_OPTIONS,
+) -> None:
     """What the judge does for a message under 16 KiB (daemon/judge.py ``_judge_on_loop``):
     counts from memory, the few it lacks read from the SQLite file on the spot; ``lookup``
     (the worker-thread path) only when that read declines."""
-    hashes, texts = tokenize_step(raw, DEFAULT_OPTIONS)
+    hashes, texts = tokenize_step(raw, options)
     cached = None if scorer.uses_vocabulary else store.cached_counts(hashes, local_read=True)
     if cached is None:
         totals, counts = np.asarray(store.class_count(), dtype=np.int64), store.lookup(hashes)
