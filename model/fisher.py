@@ -132,12 +132,32 @@ def _negated_indices(terms: int) -> FloatArray:
 
 
 def _log_survival_far(half: float, terms: int) -> float:
-    """log Q for m of ``_DIRECT_BELOW`` or more: log-sum-exp of ln(m^i / i!), i < terms."""
-    log_half = math.log(half)
-    log_terms = [i * log_half - math.lgamma(i + 1.0) for i in range(terms)]
-    top = max(log_terms)
-    total = math.fsum([math.exp(term - top) for term in log_terms])
+    """log Q for m of ``_DIRECT_BELOW`` or more: log-sum-exp of ln(m^i / i!), i < terms.
+
+    In numpy, summed pairwise (``np.add.reduce``): an uncapped bigram message reaches here
+    with hundreds of terms, most of them far below the largest, where a Python loop and
+    ``math.fsum`` took about 430 against 9 µs for 600 terms (the sum's relative error stays
+    within a few ulps, and every term is at most 1, the largest exactly 1).
+    """
+    log_terms = np.arange(terms, dtype=np.float64) * math.log(half)
+    log_terms -= _log_factorials(terms)
+    top = float(np.maximum.reduce(log_terms))
+    log_terms -= top
+    total = float(np.add.reduce(np.exp(log_terms, out=log_terms)))
     return min(0.0, top + math.log(total) - half)
+
+
+def _log_factorials(terms: int) -> FloatArray:
+    """Shape (terms,): ln(i!) = lgamma(i + 1) for i < terms, from a table that grows by
+    doubling (a message's token count varies, so a table per count would rarely be reused)."""
+    return _log_factorial_table(max(64, 1 << (terms - 1).bit_length()))[:terms]
+
+
+@lru_cache(maxsize=4)
+def _log_factorial_table(size: int) -> FloatArray:
+    table = np.array([math.lgamma(i + 1.0) for i in range(size)])
+    table.flags.writeable = False
+    return table
 
 
 def chi2_survival_even(statistic: float, dof: int) -> float:
