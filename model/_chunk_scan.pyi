@@ -1,4 +1,6 @@
-# The compiled chunk scan (_chunk_scan.c); words.python_scan is its Python spelling.
+# The compiled chunk scan (_chunk_scan.c); words.python_scan and words.python_ascii_words are
+# its Python spelling.
 def scan(
     text: str, min_word: int, max_word: int, /
 ) -> tuple[dict[str, None], list[str], list[str], bool]: ...
+def ascii_words(text: str, min_word: int, max_word: int, /) -> list[str] | None: ...

@@ -239,8 +239,16 @@ def split_words(text: str, prefix: str = "", sequence: bool = False) -> TextToke
             out.update(dict.fromkeys(run[i : i + 2] for i in range(len(run) - 1)))
     out.pop("", None)
     found = {prefix + token: None for token in out} if prefix else out
-    order = [w for w in _words_in(text) if MIN_WORD <= len(w) <= MAX_WORD] if sequence else []
-    return TextTokens(found, order, rest)
+    return TextTokens(found, word_sequence(text) if sequence else [], rest)
+
+
+def word_sequence(text: str) -> list[str]:
+    """The words of cleaned text in order, repeats kept, MIN_WORD to MAX_WORD long (what
+    bigrams pair up): ``ascii_words`` for ASCII text, the Unicode pattern for the rest."""
+    found = ascii_words(text, MIN_WORD, MAX_WORD)
+    if found is None:
+        found = [w for w in _WORD.findall(text) if MIN_WORD <= len(w) <= MAX_WORD]
+    return found
 
 
 def _words_in(text: str) -> list[str]:
@@ -292,11 +300,22 @@ def python_scan(
     return plain, others, singles, too_long
 
 
+def python_ascii_words(text: str, min_word: int, max_word: int) -> list[str] | None:
+    """The words of ASCII text in order, repeats kept: ``_WORD_ASCII``'s matches from
+    *min_word* to *max_word* characters long; None when *text* is not ASCII.
+    ``_chunk_scan.ascii_words`` does the same in C (the tests hold the two to each other)."""
+    if not text.isascii():
+        return None
+    return [w for w in _WORD_ASCII.findall(text) if min_word <= len(w) <= max_word]
+
+
 try:  # the compiled scan, where the build made it (setup.py: optional)
+    from ._chunk_scan import ascii_words as compiled_ascii_words
     from ._chunk_scan import scan as compiled_scan
 except ImportError:  # depends on the build: a C compiler and Python's headers
-    compiled_scan = None
+    compiled_scan = compiled_ascii_words = None
 scan_chunks: Final = compiled_scan or python_scan
+ascii_words: Final = compiled_ascii_words or python_ascii_words
 
 
 def _add_obfuscated(chunks: list[str], out: dict[str, None]) -> None:

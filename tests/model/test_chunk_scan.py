@@ -3,8 +3,10 @@
 ``words.python_scan`` is built from CPython's own ``str.split()``, ``dict.fromkeys`` and
 ``str.isalpha()``; ``_chunk_scan.scan`` (C) must agree with it on every str, whatever its
 storage kind (one, two or four bytes a character), and ``split_words`` must make the same
-tokens with either.  CI builds the extension and sets ``MAILWEIR_REQUIRE_COMPILED=1``,
-so these checks cannot pass there by being skipped.
+tokens with either.  ``_chunk_scan.ascii_words`` (the word sequence bigrams pair up) must
+give what ``words.python_ascii_words`` finds with the regular expression ``_WORD_ASCII``.
+CI builds the extension and sets ``MAILWEIR_REQUIRE_COMPILED=1``, so these checks cannot
+pass there by being skipped.
 """
 
 from __future__ import annotations
@@ -19,10 +21,11 @@ from hypothesis import strategies as st
 from mailweir.daemon.scenario import generate, incoming, training_set
 from mailweir.model import words
 from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
-from mailweir.model.words import MAX_WORD, MIN_WORD, python_scan
+from mailweir.model.words import MAX_WORD, MIN_WORD, python_ascii_words, python_scan
 
 HeapGrowth = Callable[[Callable[[], object]], int]  # tests/conftest.py's heap_growth
 compiled = words.compiled_scan
+compiled_words = words.compiled_ascii_words
 needs_compiled = pytest.mark.skipif(compiled is None, reason="the C extension was not built")
 
 # Every kind of whitespace str.split() knows, ASCII and beyond (the separators \x1c-\x1f,
@@ -39,7 +42,9 @@ CHUNKY = st.lists(
 def test_the_extension_is_built_where_required() -> None:
     if os.environ.get("MAILWEIR_REQUIRE_COMPILED") == "1":
         assert compiled is not None, "model/_chunk_scan.c was not built"
+        assert compiled_words is not None
     assert words.scan_chunks is (compiled or python_scan)
+    assert words.ascii_words is (compiled_words or python_ascii_words)
 
 
 @needs_compiled
@@ -117,10 +122,73 @@ def test_compiled_scan_leaks_nothing(heap_growth: HeapGrowth) -> None:
     assert heap_growth(lambda: compiled(text, MIN_WORD, MAX_WORD)) < 2000
 
 
+# Letters, the apostrophes the pattern knows and one it does not (’), digits, underscores and
+# other word-breaking characters: every way a match can start, stop or take its one
+# apostrophe group ("don't", "a'b'c", "x'", "'x", "''").
+WORDY = st.lists(
+    st.sampled_from([*"abzAZ'’ _-.0\n\t\x7f", "kennel", "don't", "o'", "'s", "x" * 21]),
+    max_size=60,
+).map("".join)
+
+
+@needs_compiled
+@settings(max_examples=3000, deadline=None)
+@given(WORDY | st.text(st.characters(max_codepoint=127), max_size=80))
+def test_compiled_ascii_words_equal_the_pattern(text: str) -> None:
+    assert compiled_words is not None
+    for least, most in ((MIN_WORD, MAX_WORD), (1, 1), (1, 4), (3, 2), (1, 100)):
+        assert compiled_words(text, least, most) == python_ascii_words(text, least, most)
+
+
+@needs_compiled
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        ("", []),
+        ("kennel cough, kennel!", ["kennel", "cough", "kennel"]),
+        ("don't o' 'tis a'b'c", ["don't", "o", "tis", "a'b", "c"]),  # one apostrophe group
+        ("it’s", ["it"]),  # the typographic apostrophe is not ASCII: not split here
+        ("k9 x_y 3rd", ["k", "x", "y", "rd"]),  # digits and _ break words
+    ],
+)
+def test_ascii_words_on_chosen_text(text: str, expected: list[str]) -> None:
+    # The Python spelling is the regular expression itself; the expected lists are the
+    # pattern's matches worked out by hand.  Lengths 1 to MAX_WORD here.
+    found = words.ascii_words(text, 1, MAX_WORD)
+    if not text.isascii():
+        assert found is None
+        return
+    assert found == expected
+    assert python_ascii_words(text, 1, MAX_WORD) == expected
+
+
+@needs_compiled
+def test_ascii_words_repeats_are_one_object_and_the_table_grows() -> None:
+    # A repeated word is the same str (the probe then hashes it once); past the table's
+    # first 512 slots nothing may be lost or repeated.
+    assert compiled_words is not None
+    distinct = ["w" + "".join(chr(97 + int(digit)) for digit in f"{n:04d}") for n in range(3000)]
+    found = compiled_words(" ".join(distinct + distinct), MIN_WORD, MAX_WORD)
+    assert found == distinct + distinct
+    assert all(a is b for a, b in zip(found[:3000], found[3000:], strict=True))
+
+
+@needs_compiled
+def test_ascii_words_refuses_what_is_not_text_and_leaks_nothing(heap_growth: HeapGrowth) -> None:
+    assert compiled_words is not None
+    with pytest.raises(TypeError):
+        compiled_words(b"kennel", MIN_WORD, MAX_WORD)  # type: ignore[arg-type]
+    with pytest.raises(TypeError):
+        compiled_words("kennel", MIN_WORD)  # type: ignore[call-arg]
+    text = "kennel booster kennel 250 don't " * 20
+    assert heap_growth(lambda: compiled_words(text, MIN_WORD, MAX_WORD)) < 2000
+
+
 def _split_both(text: str) -> tuple[words.TextTokens, words.TextTokens]:
     with pytest.MonkeyPatch.context() as patch:
         first = words.split_words(text, sequence=True)
         patch.setattr(words, "scan_chunks", python_scan)
+        patch.setattr(words, "ascii_words", python_ascii_words)
         return first, words.split_words(text, sequence=True)
 
 
@@ -140,4 +208,5 @@ def test_tokens_the_same_on_the_scenario_mail(
     mail = [*training_set(40), *incoming(), *generate(40, "spam", seed=11)]
     compiled_tokens = [tokens(message.raw, options) for message in mail]
     monkeypatch.setattr(words, "scan_chunks", python_scan)
+    monkeypatch.setattr(words, "ascii_words", python_ascii_words)
     assert [tokens(message.raw, options) for message in mail] == compiled_tokens
