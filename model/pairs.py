@@ -29,6 +29,14 @@ _MIX1: Final = 0xBF58476D1CE4E5B9
 _MIX2: Final = 0x94D049BB133111EB
 
 
+_SHIFT1: Final = np.uint64(30)
+_SHIFT2: Final = np.uint64(27)
+_SHIFT3: Final = np.uint64(31)
+_MULTIPLIER1: Final = np.uint64(_MIX1)
+_MULTIPLIER2: Final = np.uint64(_MIX2)
+_GOLDEN: Final = np.uint64(GOLDEN)
+
+
 def mix64(values: npt.NDArray[np.uint64]) -> npt.NDArray[np.uint64]:
     """splitmix64's output function, elementwise (a bijection of 64-bit words).
 
@@ -39,14 +47,19 @@ def mix64(values: npt.NDArray[np.uint64]) -> npt.NDArray[np.uint64]:
     Returns
     -------
     ndarray of uint64, shape (n,)
-        Arithmetic wraps modulo 2**64.
+        A new array; arithmetic wraps modulo 2**64.
     """
-    z = values ^ (values >> np.uint64(30))
-    z = z * np.uint64(_MIX1)
-    z ^= z >> np.uint64(27)
-    z = z * np.uint64(_MIX2)
-    result: npt.NDArray[np.uint64] = z ^ (z >> np.uint64(31))
-    return result
+    # In place, in one result and one scratch array: a message's few hundred pairs make each
+    # step's call and allocation cost more than its arithmetic.
+    z = np.right_shift(values, _SHIFT1)
+    z ^= values
+    z *= _MULTIPLIER1
+    scratch = np.right_shift(z, _SHIFT2)
+    z ^= scratch
+    z *= _MULTIPLIER2
+    np.right_shift(z, _SHIFT3, out=scratch)
+    z ^= scratch
+    return z
 
 
 def mix64_int(value: int) -> int:
@@ -79,10 +92,17 @@ def pair_hashes(
     TokenHashes, shape (n,)
         Signed int64, in the order given (not sorted, repeats kept).
     """
+    steps = (np.asarray(distance, dtype=np.int64) + 1).view(np.uint64)
+    return _mixed(earlier, later, steps * _GOLDEN)
+
+
+def _mixed(earlier: TokenHashes, later: TokenHashes, offsets: npt.ArrayLike) -> TokenHashes:
+    """`pair_hashes` with ``(distance + 1) * GOLDEN`` given (an array, or one uint64 for all)."""
     first = np.asarray(earlier, dtype=np.int64).view(np.uint64)
     second = np.asarray(later, dtype=np.int64).view(np.uint64)
-    steps = (np.asarray(distance, dtype=np.int64) + 1).view(np.uint64)
-    return mix64(mix64(first + steps * np.uint64(GOLDEN)) ^ second).view(np.int64)
+    inner = mix64(first + offsets)
+    inner ^= second
+    return mix64(inner).view(np.int64)
 
 
 def pair_hash_int(earlier: int, later: int, distance: int) -> int:
@@ -119,6 +139,8 @@ def osb_pair_hashes(word_hashes: TokenHashes, window: int) -> TokenHashes:
         By later word, nearest earlier word first; repeats kept.
     """
     hashes = np.asarray(word_hashes, dtype=np.int64)
+    if window == 2:  # the default: each word with the one before it, by slicing alone
+        return _mixed(hashes[:-1], hashes[1:], _GOLDEN)
     span = np.arange(window - 1)
     earlier_at = np.arange(len(hashes))[:, None] - 1 - span[None, :]  # (L, N-1)
     valid = earlier_at >= 0

@@ -219,10 +219,24 @@ def _first_pairs(
     """Every part's pair hashes in order (its first ``per_part``), the positions among them of
     the first ``room`` distinct ones (the pairs ``tokens`` keeps), and each part's count."""
     made = [osb_pair_hashes(token_hashes(words), window)[:per_part] for words in sequences]
-    pairs = np.concatenate(made)
-    _, first = np.unique(pairs, return_index=True)
+    pairs = np.concatenate(made) if len(made) > 1 else made[0]
     sizes = np.array([len(each) for each in made], dtype=np.intp)
-    return pairs, np.sort(first)[:room], sizes
+    return pairs, first_occurrences(pairs)[:room], sizes
+
+
+def first_occurrences(values: TokenHashes) -> npt.NDArray[np.intp]:
+    """Ascending positions of each distinct value's first occurrence (``np.unique``'s
+    ``return_index``, sorted, without its general layer)."""
+    if len(values) < 2:
+        return np.arange(len(values), dtype=np.intp)
+    order = values.argsort(kind="stable")  # equal values keep their order: the first leads
+    ordered = values[order]
+    starts = np.empty(len(values), dtype=np.bool_)
+    starts[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=starts[1:])
+    first = order[starts]
+    first.sort()
+    return first
 
 
 def _gather(raw: bytes, options: TokenizerOptions) -> tuple[dict[str, None], list[list[str]]]:

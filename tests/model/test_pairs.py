@@ -23,7 +23,13 @@ from mailweir.model.pairs import (
     pair_hashes,
     split_pair,
 )
-from mailweir.model.tokenize import TokenizerOptions, tokenize, tokens, tokens_and_hashes
+from mailweir.model.tokenize import (
+    TokenizerOptions,
+    first_occurrences,
+    tokenize,
+    tokens,
+    tokens_and_hashes,
+)
 from mailweir.model.words import osb_pairs
 
 INT64 = st.integers(min_value=-(2**63), max_value=2**63 - 1)
@@ -120,7 +126,20 @@ def test_osb_pair_hashes_follow_osb_pairs_order() -> None:
         expected = [token_hash(pair) for pair in osb_pairs(words, window)]
         word_hashes = np.array([token_hash(w) for w in words])
         assert osb_pair_hashes(word_hashes, window).tolist() == expected
-    assert len(osb_pair_hashes(np.array([token_hash("alone")]), 5)) == 0
+    for window in (2, 5):  # window 2 takes its own path (slices, no index arrays)
+        assert len(osb_pair_hashes(np.array([token_hash("alone")]), window)) == 0
+        assert len(osb_pair_hashes(np.zeros(0, dtype=np.int64), window)) == 0
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.integers(-3, 3) | INT64, max_size=60))
+def test_first_occurrences_equals_numpy_unique(values: list[int]) -> None:
+    # Reference: numpy's own np.unique(..., return_index=True), sorted (registry library).
+    array = np.array(values, dtype=np.int64)
+    expected = np.sort(np.unique(array, return_index=True)[1])
+    found = first_occurrences(array)
+    assert found.tolist() == expected.tolist()
+    assert found.dtype == np.intp
 
 
 def test_tokenize_bigrams_equals_hashing_token_texts() -> None:
