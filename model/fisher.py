@@ -292,8 +292,10 @@ class RobinsonFisher(NaiveBayes):
     def _selected(
         self, f: FloatArray, present: npt.NDArray[np.bool_] | None = None
     ) -> npt.NDArray[np.intp]:
-        """Indices of the tokens used, most extreme first (``present`` None: every token);
-        ties in ``|f - 0.5|`` keep index order."""
+        """Indices of the tokens used (``present`` None: every token): most extreme first,
+        ties in ``|f - 0.5|`` in index order; without a cap, all of them in index order (the
+        order only decides which the cap keeps, and sorting a bigram message's hundreds of
+        tokens cost more than combining them)."""
         # The sort key -|f - 0.5| in two calls: copysign negates the magnitude exactly.
         keys = np.subtract(f, 0.5)
         np.copysign(keys, -1.0, out=keys)
@@ -303,9 +305,11 @@ class RobinsonFisher(NaiveBayes):
         # is never usable.
         usable = keys <= -self.min_deviation if self.min_deviation > 0 else keys < 0.0
         candidates = usable.nonzero()[0]
-        key = keys[candidates]
         cap = self.max_tokens
-        if cap is not None and len(candidates) > max(cap, _PARTIAL_SORT_FROM):
+        if cap is None:
+            return candidates
+        key = keys[candidates]
+        if len(candidates) > max(cap, _PARTIAL_SORT_FROM):
             # The cap-th smallest key bounds the tokens kept; those at the bound keep index
             # order, so sorting the ones within it gives the full sort's first cap.
             within = (key <= np.partition(key, cap - 1)[cap - 1]).nonzero()[0]
@@ -316,9 +320,9 @@ class RobinsonFisher(NaiveBayes):
         """The tokens used, most extreme first, and `_logs` of their f."""
         chosen = self._selected(f)
         used = f[chosen]
-        # Only a token at |f - 0.5| >= 0.5 can lie outside (0, 1), and the first is the most
-        # extreme: one comparison usually clears them all.
-        if len(used) and not abs(used[0] - 0.5) < 0.5:
+        # Only a token at |f - 0.5| >= 0.5 can lie outside (0, 1), and with a cap the first
+        # is the most extreme: one comparison usually clears them all.
+        if self.max_tokens is None or (len(used) and not abs(used[0] - 0.5) < 0.5):
             _check_open_interval(used)
         return chosen, _logs(used)
 

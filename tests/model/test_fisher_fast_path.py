@@ -46,8 +46,10 @@ def _reference_selected(model: RobinsonFisher, f: np.ndarray) -> np.ndarray:
     if model.min_deviation > 0:
         keep &= deviation >= model.min_deviation
     chosen = np.flatnonzero(keep)
+    if model.max_tokens is None:  # every usable token, in index order (the sum's order)
+        return chosen
     chosen = chosen[np.argsort(-deviation[chosen], kind="stable")]
-    return chosen if model.max_tokens is None else chosen[: model.max_tokens]
+    return chosen[: model.max_tokens]
 
 
 def _reference_log_survival(statistic: float, dof: int) -> float:
