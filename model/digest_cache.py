@@ -13,9 +13,12 @@ A slot costs 16 bytes, about 20-40 per entry with the slack of a set-associative
 against about 140 for a dict of token text to digest (measured: 80 bytes for the entry and its
 8-byte digest, 61 for the text it keeps alive).  A lookup is a fixed handful of whole-array
 steps (``get``), or, for a message's tokens, one loop in C where it was built (``probe``,
-``_digest_probe.c``).  A full set replaces one of its entries (the way picked by other bits of
-the key), so nothing is ever emptied at once.  Key -1 marks an empty slot: ``hash()`` never
-gives -1 (CPython keeps it for errors), so the keys need no remapping.
+``_digest_probe.c``).  There, too, the words a lookup missed are hashed (BLAKE2b written in
+C from RFC 7693, checked against hashlib) and put in at once (``fill``), without a hashlib
+object and a staging dict per new word.  A full set replaces one of its entries (the way
+picked by other bits of the key), so nothing is ever emptied at once.  Key -1 marks an
+empty slot: ``hash()`` never gives -1 (CPython keeps it for errors), so the keys need no
+remapping.
 
 One lock guards both arrays: threads tokenize too (mid-sized messages, feedback), and a key
 read with another entry's hash would give a token the wrong hash.
@@ -24,16 +27,19 @@ read with another entry's hash would give a token the wrong hash.
 from __future__ import annotations
 
 import threading
+from hashlib import blake2b
 
 import numpy as np
 import numpy.typing as npt
 
 from .aligned import line_aligned
+from .pairs import PAIR_PREFIX
 
-try:  # the compiled lookup, where the build made it (setup.py: optional)
+try:  # the compiled lookup and fill, where the build made them (setup.py: optional)
+    from ._digest_probe import fill as compiled_fill
     from ._digest_probe import probe as compiled_probe
 except ImportError:  # depends on the build: a C compiler and Python's headers
-    compiled_probe = None
+    compiled_probe = compiled_fill = None
 
 WAYS = 8  # ``get`` reads a set's match flags as one 8-byte word
 _EMPTY = -1  # never a str's hash()
@@ -103,6 +109,38 @@ class DigestCache:
         keys = keys_of(tokens)
         values, found = self.get(keys)
         return keys, values, (~found).nonzero()[0].tolist()
+
+    def fill(self, tokens: list[str], keys: _Keys, values: _Keys, missing: list[int]) -> list[int]:
+        """Hash the words among the ``missing`` positions of a ``probe`` and hold them: each
+        one's ``values`` slot gets its BLAKE2b token hash, put in the table at once.  Returns
+        the positions left to the caller: ``osb:`` pairs (mixed from word hashes, pairs.py),
+        text with a lone surrogate, and, where ``_digest_probe`` was not built, all of them
+        (hashing.py then hashes them with hashlib and puts them a few hundred at a time).
+        ``python_fill`` is the specification the tests hold the C to."""
+        if compiled_fill is None:
+            return missing
+        with self._lock:
+            return compiled_fill(
+                tokens, missing, self._keys, self._values, int(self._mask), keys, values
+            )
+
+    def python_fill(
+        self, tokens: list[str], keys: _Keys, values: _Keys, missing: list[int]
+    ) -> list[int]:
+        left: list[int] = []
+        for at in missing:
+            token = tokens[at]
+            try:
+                data = token.encode("utf-8")
+            except UnicodeEncodeError:
+                data = None
+            if token.startswith(PAIR_PREFIX) or data is None:
+                left.append(at)
+                continue
+            digest = int.from_bytes(blake2b(data, digest_size=8).digest(), "little", signed=True)
+            values[at] = digest
+            self.put(keys[at : at + 1], values[at : at + 1])
+        return left
 
     def put(self, keys: _Keys, values: _Keys) -> None:
         """Hold these entries: in the way already holding the key, else an empty way of its

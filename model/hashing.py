@@ -24,8 +24,10 @@ from .types import TokenHashes
 # words met lately are kept (``digest_cache.py``).  The pool's tokenizer processes keep fewer.
 DIGEST_CACHE_ENTRIES = 200_000
 _digest_cache = DigestCache(DIGEST_CACHE_ENTRIES)
-# New hashes wait in a small dict and go into the table a few hundred at a time: a message
-# brings a handful, and a whole-array put for them cost more than the rest of their lookup.
+# Where ``_digest_probe`` was built, its ``fill`` hashes a message's new words and puts them
+# in the table at once.  The rest (every new token without it; pairs and text with a lone
+# surrogate with it) wait in a small dict and go into the table a few hundred at a time: a
+# message brings a handful, and a whole-array put for them cost more than their lookup.
 _STAGED_LIMIT = 512
 _staged: dict[int, bytes] = {}  # cache key -> 8-byte digest (little-endian token hash)
 _UNSET = bytes(8)
@@ -112,6 +114,8 @@ def token_hashes(tokens: Iterable[str]) -> TokenHashes:
     """
     tokens = list(tokens)
     keys, values, missing = _digest_cache.probe(tokens)
+    if missing:  # new words hashed and held at once, where _digest_probe was built
+        missing = _digest_cache.fill(tokens, keys, values, missing)
     if not missing:
         return values
     # Digests are gathered as bytes and read into the array at once: converting each to an
