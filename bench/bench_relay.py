@@ -13,7 +13,9 @@ from /proc), the kernel's part of it ("of sys": system calls and page faults), i
 faults per message, the CPU other processes of the machine used meanwhile (busy time from
 /proc/stat minus this benchmark's own process tree), and the server tree's memory after each
 run: RSS summed over its processes, and PSS, where a page the processes share (the libraries
-the scoring pool's forkserver preloaded) counts once.  Before each pair, a memory probe
+the scoring pool's forkserver preloaded) counts once, with the part of the PSS that maps
+files ("of file": the libraries, and the pages of the SQLite model its memory map has read,
+which the kernel can drop and read again).  Before each pair, a memory probe
 (``machine_probe.py``: random reads from 32 MB) shows what other tenants of the processor's
 caches, invisible in /proc, are doing to mailweir's table lookups.  The machine is shared:
 compare only within one run.  Under each pair, a line gives the daemon's own account of its
@@ -130,6 +132,7 @@ class Figures:
     others_cpu: float  # CPU seconds of other processes during the run
     rss_mb: float  # summed over the server's process tree
     pss_mb: float  # the same, shared pages counted once
+    file_mb: float  # of the PSS, pages of mapped files (libraries, the model's memory map)
     # The daemon's own account of its judging per message (its mailweir_parsing_seconds and
     # mailweir_scoring_seconds histograms: wall time on the event loop), nan for other servers.
     parse_ms: float = float("nan")
@@ -238,6 +241,7 @@ def _measure(
     tree = proc_cpu.tree_pids(pid)
     rss = sum(proc_cpu.rss_bytes(p) for p in tree) / 2**20
     pss = sum(proc_cpu.pss_bytes(p) for p in tree) / 2**20
+    mapped = sum(proc_cpu.pss_file_bytes(p) for p in tree) / 2**20
     return Figures(
         name,
         size,
@@ -253,6 +257,7 @@ def _measure(
         max(0.0, busy - ours),
         rss,
         pss,
+        mapped,
         steps[0] / steps[2] * 1e3 if steps[2] else float("nan"),
         steps[1] / steps[2] * 1e3 if steps[2] else float("nan"),
     )
@@ -285,7 +290,7 @@ def _print(bare: Figures, mine: Figures, read_ns: float, unjudged: Figures | Non
         print(
             f"{f.size:>6} {f.clients:>3} {f.server:<8} {f.rate:8.0f} {f.p50_ms:8.1f} "
             f"{f.p99_ms:8.1f} {f.cpu_ms:8.2f} {f.sys_ms:6.2f} {f.faults:6.1f} "
-            f"{f.others_cpu:7.1f}s {f.rss_mb:6.0f} {f.pss_mb:6.0f}"
+            f"{f.others_cpu:7.1f}s {f.rss_mb:6.0f} {f.pss_mb:6.0f} {f.file_mb:6.0f}"
         )
     print(
         f"{'':>6} {'':>3} {'ratio':<8} {mine.rate / bare.rate:8.2f} "
@@ -407,7 +412,8 @@ def _run(
     )
     print(
         f"{'size':>6} {'cli':>3} {'server':<8} {'msg/s':>8} {'p50 ms':>8} {'p99 ms':>8} "
-        f"{'cpu ms':>8} {'of sys':>6} {'faults':>6} {'others':>8} {'RSS MB':>6} {'PSS MB':>6}"
+        f"{'cpu ms':>8} {'of sys':>6} {'faults':>6} {'others':>8} {'RSS MB':>6} {'PSS MB':>6} "
+        f"{'of file':>7}"
     )
     salt = 0  # each run's new words are new to the daemon too
     pairs: dict[tuple[str, int], list[Round]] = {}

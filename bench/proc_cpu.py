@@ -105,6 +105,13 @@ def pss_bytes(pid: int) -> int:
     return _kib_field(f"/proc/{pid}/smaps_rollup", "Pss:")
 
 
+def pss_file_bytes(pid: int) -> int:
+    """The part of ``pss_bytes`` that maps files (Pss_File): shared libraries, and pages of
+    the SQLite model that its memory map has touched, which the kernel can drop and read
+    again, unlike the process's own (anonymous) memory."""
+    return _kib_field(f"/proc/{pid}/smaps_rollup", "Pss_File:")
+
+
 def _kib_field(path: str, key: str) -> int:
     """Bytes of the first "<key> <n> kB" line of a /proc file, 0 when it is gone."""
     try:
