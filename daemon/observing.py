@@ -37,8 +37,8 @@ class Observing:
     ) -> None:
         engine = store.engine
 
-        def model_tokens() -> int:  # from memory: counting the table reads every row
-            return int(store.vocabulary().size)
+        def model_tokens() -> int:  # from memory, else counted by the database (token_count)
+            return int(store.token_count())
 
         self.metrics = metrics
         self.refresher = ReportRefresher(

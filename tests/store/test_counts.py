@@ -15,6 +15,7 @@ from store_helpers import digest_of, dump_model, hashes_of, vocabulary_parts
 
 from mailweir.model.types import HAM, SPAM, Vocabulary
 from mailweir.store import ModelStore, StoreUnavailable, TrainResult, lookup
+from mailweir.store import counts as counts_module
 from mailweir.store.engine import NO_BEGIN
 
 
@@ -160,6 +161,52 @@ def test_other_store_writes_not_seen_before_staleness(
     writer.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
     # Within the staleness window the cache answers; this is the documented trade-off.
     assert reader.lookup(hashes_of(1)).tolist() == [[0, 0]]
+
+
+def test_token_count_without_the_summary_counts_live_rows(
+    open_store: Callable[..., ModelStore],
+) -> None:
+    # The gauge's count on a model memory has not summarised: the database counts the rows
+    # with a count (an untrained row left at zero is not a token), and no summary is built.
+    writer = open_store()
+    writer.train(hashes_of(1, 2, 3), SPAM, digest=digest_of("a"), source="t")
+    writer.train(hashes_of(3, 4), HAM, digest=digest_of("b"), source="t")
+    writer.untrain(hashes_of(3, 4), digest=digest_of("b"))  # 4 back to (0, 0); 3 keeps spam
+    reader = open_store()
+    assert reader.token_count() == 3
+    assert reader._vocab is None  # nothing read every row
+    assert reader.vocabulary().size == 3  # what the summary says, once built
+
+
+def test_token_count_follows_own_training_and_others_after_their_revision(
+    open_store: Callable[..., ModelStore], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(counts_module, "TOKEN_COUNT_EVERY", 0.0)
+    reader = open_store(staleness_seconds=0.0)
+    writer = open_store()
+    assert reader.token_count() == 0
+    writer.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
+    assert reader.token_count() == 2  # another store's revision: counted again
+    reader.train(hashes_of(2, 5), HAM, digest=digest_of("b"), source="t")
+    assert reader.token_count() == 3
+    reader.vocabulary()
+    reader.train(hashes_of(6), HAM, digest=digest_of("c"), source="t")
+    assert reader.token_count() == 4 == reader.vocabulary().size  # from the summary now
+
+
+def test_token_count_reused_within_its_window(
+    open_store: Callable[..., ModelStore], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The documented lag: within TOKEN_COUNT_EVERY a changed revision does not recount.
+    monkeypatch.setattr(counts_module, "TOKEN_COUNT_EVERY", 3600.0)
+    reader = open_store(staleness_seconds=0.0)
+    writer = open_store()
+    writer.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
+    assert reader.token_count() == 1
+    writer.train(hashes_of(2), SPAM, digest=digest_of("b"), source="t")
+    assert reader.token_count() == 1
+    monkeypatch.setattr(counts_module, "TOKEN_COUNT_EVERY", 0.0)
+    assert reader.token_count() == 2
 
 
 def test_vocabulary_tracks_training(store: ModelStore) -> None:
