@@ -501,7 +501,7 @@ class ModelStore:
 
         From the summary when memory holds it (kept current by this process's training).
         Otherwise the database counts the live rows, in its own code: building the summary
-        reads every row into Python, which for a model of ten million tokens took 15-20 s of
+        reads every row into Python, which for a model of ten million tokens took over 12 s of
         CPU at each start (the model gauge asks at once), contending with mail for the
         interpreter; SQLite counts them in about a second and lets go of the interpreter
         meanwhile.  That count serves while the revision stays the same, or for up to
