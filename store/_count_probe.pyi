@@ -11,3 +11,12 @@ def get(
     out_found: npt.NDArray[np.bool_],
     /,
 ) -> None: ...
+def put_few(
+    hashes: npt.NDArray[np.int64],
+    counts: npt.NDArray[np.int64],
+    table: npt.NDArray[np.int64],
+    spilled: npt.NDArray[np.bool_],
+    fill: npt.NDArray[np.uint8],
+    room: int,
+    /,
+) -> int: ...
