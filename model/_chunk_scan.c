@@ -160,6 +160,24 @@ static int take_chunk(PyObject *text, const void *data, int kind, Py_ssize_t sta
     return failed ? -1 : 0;
 }
 
+/* The arguments (text: str, min_word: int, max_word: int) both functions take; 0, or -1
+ * with an exception set (`signature` names the call in the TypeError). */
+static int text_arguments(PyObject *const *args, Py_ssize_t nargs, const char *signature,
+                          PyObject **text, Py_ssize_t *min_word, Py_ssize_t *max_word) {
+    if (nargs != 3 || !PyUnicode_Check(args[0])) {
+        PyErr_SetString(PyExc_TypeError, signature);
+        return -1;
+    }
+    *text = args[0];
+    *min_word = PyLong_AsSsize_t(args[1]);
+    *max_word = PyLong_AsSsize_t(args[2]);
+    if ((*min_word == -1 || *max_word == -1) && PyErr_Occurred()) return -1;
+#if PY_VERSION_HEX < 0x030C0000
+    if (PyUnicode_READY(*text) < 0) return -1; /* a no-op from 3.12 */
+#endif
+    return 0;
+}
+
 PyDoc_STRVAR(scan_doc,
 "scan(text, min_word, max_word) -> (plain, others, singles, too_long)\n\n"
 "The distinct chunks of text.split(), in order of first appearance: plain words (all\n"
@@ -167,17 +185,11 @@ PyDoc_STRVAR(scan_doc,
 "the chunks one character long as a list, and whether a plain word is longer than max_word.");
 
 static PyObject *scan(PyObject *Py_UNUSED(module), PyObject *const *args, Py_ssize_t nargs) {
-    if (nargs != 3 || !PyUnicode_Check(args[0])) {
-        PyErr_SetString(PyExc_TypeError, "scan(text: str, min_word: int, max_word: int)");
+    PyObject *text;
+    Py_ssize_t min_word, max_word;
+    if (text_arguments(args, nargs, "scan(text: str, min_word: int, max_word: int)", &text,
+                       &min_word, &max_word) < 0)
         return NULL;
-    }
-    PyObject *text = args[0];
-    Py_ssize_t min_word = PyLong_AsSsize_t(args[1]);
-    Py_ssize_t max_word = PyLong_AsSsize_t(args[2]);
-    if ((min_word == -1 || max_word == -1) && PyErr_Occurred()) return NULL;
-#if PY_VERSION_HEX < 0x030C0000
-    if (PyUnicode_READY(text) < 0) return NULL; /* a no-op from 3.12 */
-#endif
     int kind = PyUnicode_KIND(text);
     const void *data = PyUnicode_DATA(text);
     Py_ssize_t length = PyUnicode_GET_LENGTH(text);
@@ -220,17 +232,11 @@ PyDoc_STRVAR(ascii_words_doc,
 
 static PyObject *ascii_words(PyObject *Py_UNUSED(module), PyObject *const *args,
                              Py_ssize_t nargs) {
-    if (nargs != 3 || !PyUnicode_Check(args[0])) {
-        PyErr_SetString(PyExc_TypeError, "ascii_words(text: str, min_word: int, max_word: int)");
+    PyObject *text;
+    Py_ssize_t min_word, max_word;
+    if (text_arguments(args, nargs, "ascii_words(text: str, min_word: int, max_word: int)",
+                       &text, &min_word, &max_word) < 0)
         return NULL;
-    }
-    PyObject *text = args[0];
-    Py_ssize_t min_word = PyLong_AsSsize_t(args[1]);
-    Py_ssize_t max_word = PyLong_AsSsize_t(args[2]);
-    if ((min_word == -1 || max_word == -1) && PyErr_Occurred()) return NULL;
-#if PY_VERSION_HEX < 0x030C0000
-    if (PyUnicode_READY(text) < 0) return NULL;
-#endif
     if (!PyUnicode_IS_ASCII(text)) Py_RETURN_NONE;
     const Py_UCS1 *chars = PyUnicode_1BYTE_DATA(text);
     Py_ssize_t length = PyUnicode_GET_LENGTH(text);

@@ -208,9 +208,8 @@ def _strongest_side(
     keys = weights[side] * sign
     if len(side) > n_evidence:
         # Every position as strong as the n-th strongest (its ties too) goes on to the sort.
-        bound = np.partition(keys, n_evidence - 1)[n_evidence - 1]
-        side = side[keys <= bound]
-        keys = weights[side] * sign
+        within = keys <= np.partition(keys, n_evidence - 1)[n_evidence - 1]
+        side, keys = side[within], keys[within]
     # lexsort keys run last-primary: strongest first, ties broken by hash for a stable list.
     return side[np.lexsort((hashes[side], keys))][:n_evidence]
 

@@ -79,7 +79,11 @@ class CountCache:
     def roomy(self, new: int) -> bool:
         """Whether *new* more entries fit without a rehash or emptying the table (a put that
         does either takes 0.1 s or more for a big table)."""
-        return self._size + new <= min(self.max_tokens, _MAX_LOAD * _BUCKET * len(self._fill))
+        return new <= self._room()
+
+    def _room(self) -> float:
+        """Entries that fit before the token limit or the next rehash."""
+        return min(self.max_tokens, _MAX_LOAD * _BUCKET * len(self._fill)) - self._size
 
     def clear(self) -> None:
         """Forget every entry."""
@@ -145,14 +149,13 @@ class CountCache:
         specification the tests hold the C to)."""
         if compiled_put_few is None:
             return self.python_put_few(hashes, counts)
-        limit = min(self.max_tokens, _MAX_LOAD * _BUCKET * len(self._fill))
         added = compiled_put_few(
             np.ascontiguousarray(hashes, dtype=np.int64),
             np.ascontiguousarray(counts, dtype=np.int64),
             self._table,
             self._spilled,
             self._fill,
-            math.floor(limit) - self._size,  # roomy(): size + new <= limit
+            math.floor(self._room()),  # as roomy() decides
         )
         if added < 0:
             return False  # overflow or growth: the whole-array path's rules
