@@ -1,10 +1,12 @@
 """The compiled modules; everything else about the build is in pyproject.toml.
 
-Both are optional: without a C compiler and Python's headers the install goes on, and the
+Each is optional: without a C compiler and Python's headers the install goes on, and the
 same steps run in Python (daemon/compiled.py says which are built).
 - model/_chunk_scan.c: the tokenizer's chunk scan (model/words.py, ``python_scan``);
 - model/_digest_probe.c: the token digest cache's lookup (model/digest_cache.py,
   ``python_probe``);
+- model/_pair_hashes.c: a message's distinct word-pair hashes (model/pairs.py,
+  ``python_first_pairs``);
 - store/_count_probe.c: the count cache's lookup (store/cache.py, ``python_get``).
 """
 
@@ -14,6 +16,7 @@ setup(
     ext_modules=[
         Extension("mailweir.model._chunk_scan", ["model/_chunk_scan.c"], optional=True),
         Extension("mailweir.model._digest_probe", ["model/_digest_probe.c"], optional=True),
+        Extension("mailweir.model._pair_hashes", ["model/_pair_hashes.c"], optional=True),
         Extension("mailweir.store._count_probe", ["store/_count_probe.c"], optional=True),
     ]
 )

@@ -20,6 +20,13 @@ import numpy.typing as npt
 
 from .types import TokenHashes
 
+try:  # the compiled pair scan, where the build made it (setup.py: optional)
+    from ._pair_hashes import first_pairs as compiled_first_pairs
+except ImportError:  # depends on the build: a C compiler and Python's headers
+    compiled_first_pairs = None
+
+_Index = npt.NDArray[np.intp]
+
 PAIR_PREFIX: Final = "osb:"
 _MASK: Final = (1 << 64) - 1
 # splitmix64's increment and multipliers (constants from memory; tests/model/test_pairs.py
@@ -146,3 +153,70 @@ def osb_pair_hashes(word_hashes: TokenHashes, window: int) -> TokenHashes:
     valid = earlier_at >= 0
     rows, cols = np.nonzero(valid)  # row-major: by later word, then distance
     return pair_hashes(hashes[earlier_at[rows, cols]], hashes[rows], span[cols])
+
+
+def first_pairs(
+    parts: list[TokenHashes], window: int, room: int, per_part: int
+) -> tuple[TokenHashes, _Index, _Index]:
+    """The first ``room`` distinct pairs of a message's text parts, in order of first occurrence.
+
+    Parameters
+    ----------
+    parts : list of TokenHashes
+        Each text part's word hashes in text order (int64, repeats kept).
+    window : int
+        OSB window N >= 2.
+    room : int
+        Most pairs returned.
+    per_part : int
+        Pairs read from each part, its first ones (``osb_pair_hashes`` order).
+
+    Returns
+    -------
+    hashes : TokenHashes, shape (p,), p <= room
+        Distinct pair hashes, in the order the parts' pairs first give them.
+    part, at : ndarray of intp, shape (p,)
+        Each one's part (index into ``parts``) and place among that part's pairs.
+
+    One loop in C where ``_pair_hashes`` was built, else ``python_first_pairs`` (the
+    specification the tests hold the C to): about twenty whole-array calls for a message's
+    few hundred pairs cost three times the loop.
+    """
+    if compiled_first_pairs is None:
+        return python_first_pairs(parts, window, room, per_part)
+    room = max(0, room)
+    hashes = np.empty(room, dtype=np.int64)
+    part = np.empty(room, dtype=np.intp)
+    at = np.empty(room, dtype=np.intp)
+    count = compiled_first_pairs(parts, window, room, per_part, hashes, part, at)
+    return hashes[:count], part[:count], at[:count]
+
+
+def python_first_pairs(
+    parts: list[TokenHashes], window: int, room: int, per_part: int
+) -> tuple[TokenHashes, _Index, _Index]:
+    made = [osb_pair_hashes(words, window)[:per_part] for words in parts]
+    pairs = np.concatenate(made) if made else np.zeros(0, dtype=np.int64)
+    sizes = np.array([len(each) for each in made], dtype=np.intp)
+    chosen = first_occurrences(pairs)[: max(0, room)]
+    ends = np.cumsum(sizes)
+    part = np.searchsorted(ends, chosen, side="right")  # the part each chosen pair is from
+    at = chosen - (ends - sizes)[part]  # and its place among that part's pairs
+    return pairs[chosen], part.astype(np.intp), at.astype(np.intp)
+
+
+def first_occurrences(values: TokenHashes) -> _Index:
+    """Ascending positions of each distinct value's first occurrence (``np.unique``'s
+    ``return_index``, sorted, without its general layer)."""
+    if len(values) < 2:
+        return np.arange(len(values), dtype=np.intp)
+    # The least position in each run of equal values; numpy's quicksort of int64 is far
+    # cheaper than its stable sort (a timsort), and the runs need no order within them.
+    order = values.argsort()
+    ordered = values[order]
+    starts = np.empty(len(values), dtype=np.bool_)
+    starts[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=starts[1:])
+    first = np.minimum.reduceat(order, starts.nonzero()[0])
+    first.sort()
+    return first

@@ -49,7 +49,7 @@ from .header_tokens import (
 from .html_text import parse_html
 from .mime import Limits, Part, Walk, walk
 from .normalize import clean_text
-from .pairs import osb_pair_hashes
+from .pairs import first_pairs
 from .token_texts import TokenTexts
 from .types import OWN_HEADER_PREFIX, TokenHashes
 from .words import osb_pairs, split_words
@@ -174,10 +174,8 @@ def tokenize(raw: bytes, options: TokenizerOptions = DEFAULT_OPTIONS) -> TokenHa
     room = options.max_tokens - len(singles)
     parts = [hash_tokens(singles)]
     if room > 0 and sequences:
-        pairs, chosen, _ = _first_pairs(
-            sequences, options.bigram_window, room, options.max_tokens * 2
-        )
-        parts.append(pairs[chosen])
+        pairs, _, _ = _first_pairs(sequences, options, room)
+        parts.append(pairs)
     return sorted_unique(np.concatenate(parts))
 
 
@@ -203,42 +201,18 @@ def tokens_and_hashes(
     room = options.max_tokens - len(singles)
     if not (options.bigrams and room > 0 and sequences):
         return TokenTexts(singles), hashes
-    pairs, chosen, sizes = _first_pairs(
-        sequences, options.bigram_window, room, options.max_tokens * 2
-    )
-    ends = np.cumsum(sizes)
-    part = np.searchsorted(ends, chosen, side="right")  # the part each chosen pair is from
-    at = chosen - (ends - sizes)[part]  # and its place among that part's pairs
+    pairs, part, at = _first_pairs(sequences, options, room)
     texts = TokenTexts(singles, sequences, options.bigram_window, part, at)
-    return texts, np.concatenate([hashes, pairs[chosen]])
+    return texts, np.concatenate([hashes, pairs])
 
 
 def _first_pairs(
-    sequences: list[list[str]], window: int, room: int, per_part: int
+    sequences: list[list[str]], options: TokenizerOptions, room: int
 ) -> tuple[TokenHashes, npt.NDArray[np.intp], npt.NDArray[np.intp]]:
-    """Every part's pair hashes in order (its first ``per_part``), the positions among them of
-    the first ``room`` distinct ones (the pairs ``tokens`` keeps), and each part's count."""
-    made = [osb_pair_hashes(token_hashes(words), window)[:per_part] for words in sequences]
-    pairs = np.concatenate(made) if len(made) > 1 else made[0]
-    sizes = np.array([len(each) for each in made], dtype=np.intp)
-    return pairs, first_occurrences(pairs)[:room], sizes
-
-
-def first_occurrences(values: TokenHashes) -> npt.NDArray[np.intp]:
-    """Ascending positions of each distinct value's first occurrence (``np.unique``'s
-    ``return_index``, sorted, without its general layer)."""
-    if len(values) < 2:
-        return np.arange(len(values), dtype=np.intp)
-    # The least position in each run of equal values; numpy's quicksort of int64 is far
-    # cheaper than its stable sort (a timsort), and the runs need no order within them.
-    order = values.argsort()
-    ordered = values[order]
-    starts = np.empty(len(values), dtype=np.bool_)
-    starts[0] = True
-    np.not_equal(ordered[1:], ordered[:-1], out=starts[1:])
-    first = np.minimum.reduceat(order, starts.nonzero()[0])
-    first.sort()
-    return first
+    """The pairs ``tokens`` keeps (the first ``room`` distinct ones, each part's first
+    ``2 * max_tokens`` read), with each one's part and place (``pairs.first_pairs``)."""
+    parts = [token_hashes(words) for words in sequences]
+    return first_pairs(parts, options.bigram_window, room, options.max_tokens * 2)
 
 
 def _gather(raw: bytes, options: TokenizerOptions) -> tuple[dict[str, None], list[list[str]]]:

@@ -16,6 +16,7 @@ from hypothesis import strategies as st
 from mailweir.model.hashing import hash_tokens, token_hash, token_hashes
 from mailweir.model.pairs import (
     GOLDEN,
+    first_occurrences,
     mix64,
     mix64_int,
     osb_pair_hashes,
@@ -25,7 +26,6 @@ from mailweir.model.pairs import (
 )
 from mailweir.model.tokenize import (
     TokenizerOptions,
-    first_occurrences,
     tokenize,
     tokens,
     tokens_and_hashes,
