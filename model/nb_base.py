@@ -16,6 +16,7 @@ Conventions shared by all methods
 
 from __future__ import annotations
 
+import math
 from abc import ABC, abstractmethod
 from bisect import bisect_left, bisect_right
 from dataclasses import dataclass, fields
@@ -178,40 +179,24 @@ def strongest_evidence(
     if n_evidence < 0:
         raise ValueError(f"n_evidence must be >= 0, got {n_evidence}")
     hashes = np.asarray(token_hashes, dtype=np.int64)
-    if len(weights) <= _FEW_WEIGHTS:
-        return _few_strongest(hashes, weights, n_evidence)
-    # Each side is ranked apart (zero and NaN weights are on neither, never listed), and
-    # only its strongest: a bigram message uses hundreds of tokens, and sorting them all
-    # cost more than the rest of scoring it.
-    chosen = np.concatenate(
-        [
-            _strongest_side(hashes, weights, np.flatnonzero(weights > 0), n_evidence, -1.0),
-            _strongest_side(hashes, weights, np.flatnonzero(weights < 0), n_evidence, 1.0),
-        ]
-    )
-    return tuple(
-        map(Evidence, hashes[chosen].tolist(), weights[chosen].astype(np.float64).tolist())
-    )
-
-
-def _strongest_side(
-    hashes: npt.NDArray[np.int64],
-    weights: FloatArray,
-    side: npt.NDArray[np.intp],
-    n_evidence: int,
-    sign: float,
-) -> npt.NDArray[np.intp]:
-    """The ``n_evidence`` strongest of the positions ``side`` (weights of one sign; ``sign``
-    makes the strongest the smallest key), ties broken by hash."""
     if n_evidence == 0:
-        return side[:0]
-    keys = weights[side] * sign
-    if len(side) > n_evidence:
-        # Every position as strong as the n-th strongest (its ties too) goes on to the sort.
-        within = keys <= np.partition(keys, n_evidence - 1)[n_evidence - 1]
-        side, keys = side[within], keys[within]
-    # lexsort keys run last-primary: strongest first, ties broken by hash for a stable list.
-    return side[np.lexsort((hashes[side], keys))][:n_evidence]
+        return ()
+    if len(weights) <= max(_FEW_WEIGHTS, 2 * n_evidence):
+        return _few_strongest(hashes, weights, n_evidence)
+    # A bigram message uses hundreds of tokens, and ranking them all cost more than the rest
+    # of scoring it.  One partition finds the n-th weakest and n-th strongest weight; every
+    # weight at least that strong (ties too) is a candidate, and only the candidates are
+    # ranked.  NaN partitions last, among the strongest n, where it would hide a weight that
+    # belongs in: then (never from a scorer's own weights) every weight is ranked.
+    top = len(weights) - n_evidence
+    bounds = np.partition(weights, (n_evidence - 1, top))
+    if math.isnan(np.add.reduce(bounds[top:])):  # NaN, or inf and -inf: ranked in full
+        return _few_strongest(hashes, weights, n_evidence)
+    ham_bound, spam_bound = bounds[n_evidence - 1], bounds[top]
+    spam = weights >= spam_bound if spam_bound > 0 else weights > 0
+    ham = weights <= ham_bound if ham_bound < 0 else weights < 0
+    candidates = np.flatnonzero(spam | ham)
+    return _few_strongest(hashes[candidates], weights[candidates], n_evidence)
 
 
 def _few_strongest(
