@@ -8,6 +8,7 @@ generated 4 KB Harbour Lane messages against a model of at least 500,000 tokens
 
     python bench/bench_scoring.py                  # 2,000 messages, the kept 500k-token model
     python bench/bench_scoring.py --messages 5000 --min-tokens 1000000
+    python bench/bench_scoring.py --bigrams        # a bigram model, tokens and scoring
 
 The generated messages are a hard case for hashing: their invented words are drawn evenly from
 700,000, so about half of a message's tokens were never seen by the process before and miss
@@ -41,9 +42,10 @@ import bench_mail
 import proc_cpu
 
 from mailweir.daemon.judge import N_EVIDENCE, _evidence_text, tokenize_step
+from mailweir.daemon.learning import scorer_for
 from mailweir.daemon.sources import read_corpus
 from mailweir.model.hashing import message_digest
-from mailweir.model.nb import NaiveBayes, make_scorer
+from mailweir.model.nb import NaiveBayes
 from mailweir.model.tokenize import DEFAULT_OPTIONS, TokenizerOptions, tokens
 from mailweir.model.types import HAM, SPAM, UNREAD_VOCABULARY
 from mailweir.store import ModelStore
@@ -84,20 +86,24 @@ def _whole_path(
     _evidence_text(score, hashes, texts)
 
 
-def bench_path(store: ModelStore, messages: list[bytes], rounds: int) -> None:
-    scorer = make_scorer("fisher")
-    tokenized = [tokenize_step(raw, DEFAULT_OPTIONS) for raw in messages]  # warms the cache too
+def bench_path(
+    store: ModelStore, messages: list[bytes], rounds: int, options: TokenizerOptions
+) -> None:
+    scorer = scorer_for("fisher", options)
+    tokenized = [tokenize_step(raw, options) for raw in messages]  # warms the cache too
     for hashes, _ in tokenized:
         store.lookup(hashes)
 
     def whole(raw: bytes) -> None:
-        _whole_path(store, scorer, raw)
+        _whole_path(store, scorer, raw, options)
 
     for raw in messages[:50]:
         whole(raw)  # the first call loads the vocabulary summary (one GROUP BY)
     seconds = _per_message(whole, messages, rounds)
+    # The words' parse and tokens alone: ``tokens`` with bigrams would also make every pair's
+    # text, which the judge never does (``tokenize_step`` mixes pair hashes from word hashes).
     parse = _per_message(lambda raw: tokens(raw, DEFAULT_OPTIONS), messages, rounds)
-    tokenize = _per_message(lambda raw: tokenize_step(raw, DEFAULT_OPTIONS), messages, rounds)
+    tokenize = _per_message(lambda raw: tokenize_step(raw, options), messages, rounds)
     by_hashes = {id(raw): h for raw, (h, _) in zip(messages, tokenized, strict=True)}
     lookup = _per_message(lambda raw: store.lookup(by_hashes[id(raw)]), messages, rounds)
     counts = {key: store.lookup(h) for key, h in by_hashes.items()}
@@ -113,12 +119,15 @@ def bench_path(store: ModelStore, messages: list[bytes], rounds: int) -> None:
         f"({seconds * 1e3:.3f} ms CPU per message, {n_tokens:.0f} tokens each)"
     )
     print(
-        f"  parse+tokenize {parse * 1e3:.3f} ms, +hash {(tokenize - parse) * 1e3:.3f} ms, "
+        f"  parse+tokenize words {parse * 1e3:.3f} ms, "
+        f"+{'pairs and ' if options.bigrams else ''}hash {(tokenize - parse) * 1e3:.3f} ms, "
         f"lookup {lookup * 1e3:.3f} ms, score {score * 1e3:.3f} ms"
     )
 
 
-def bench_corpus_path(corpus: Path, path: Path, rounds: int, preload: bool = True) -> None:
+def bench_corpus_path(
+    corpus: Path, path: Path, rounds: int, options: TokenizerOptions, preload: bool = True
+) -> None:
     """The whole scoring path on real mail, a model trained on the corpus's first 5,000.
 
     "first sight" is one pass over messages this process has not seen, as a running daemon
@@ -135,7 +144,7 @@ def bench_corpus_path(corpus: Path, path: Path, rounds: int, preload: bool = Tru
     store = ModelStore.open(str(path))
     items = []
     for raw, label in zip(messages[:5000], labels, strict=True):
-        hashes, _ = tokenize_step(raw, DEFAULT_OPTIONS)
+        hashes, _ = tokenize_step(raw, options)
         items.append((hashes, label, message_digest(hashes), "bench"))
     store.train_many(items)
     if preload:  # the daemon's default (model.preload): new words cost no read
@@ -143,7 +152,7 @@ def bench_corpus_path(corpus: Path, path: Path, rounds: int, preload: bool = Tru
     else:
         for hashes, *_ in items:
             store.lookup(hashes)  # the count cache a daemon has after judging that mail
-    scorer = make_scorer("fisher")
+    scorer = scorer_for("fisher", options)
     slices = {
         "as they come": messages[5000:7000],
         "of 3-6 KB": [raw for raw in messages[7000:] if 3 * 1024 <= len(raw) < 6 * 1024],
@@ -152,8 +161,8 @@ def bench_corpus_path(corpus: Path, path: Path, rounds: int, preload: bool = Tru
     how = "preloaded" if preload else "read as needed"
     print(f"scoring path, real mail ({corpus.name}, model of {tokens} tokens, {how}):")
     for name, scored in slices.items():
-        first = _per_message(lambda raw: _whole_path(store, scorer, raw), scored, 1)
-        again = _per_message(lambda raw: _whole_path(store, scorer, raw), scored, rounds)
+        first = _per_message(lambda raw: _whole_path(store, scorer, raw, options), scored, 1)
+        again = _per_message(lambda raw: _whole_path(store, scorer, raw, options), scored, rounds)
         kilobytes = np.mean([len(raw) for raw in scored]) / 1024
         print(
             f"  {len(scored):5d} messages {name:12s} (mean {kilobytes:.1f} KB): "
@@ -163,14 +172,14 @@ def bench_corpus_path(corpus: Path, path: Path, rounds: int, preload: bool = Tru
     store.close()
 
 
-def bench_training(count: int) -> None:
+def bench_training(count: int, options: TokenizerOptions) -> None:
     messages = [bench_mail.message(i, 4096, seed=11, rare_share=0.5) for i in range(count)]
     with tempfile.TemporaryDirectory() as folder:
         store = ModelStore.open(str(Path(folder) / "train.sqlite3"))
         started = time.perf_counter()
         items = []
         for i, raw in enumerate(messages):
-            hashes, _ = tokenize_step(raw, DEFAULT_OPTIONS)
+            hashes, _ = tokenize_step(raw, options)
             items.append((hashes, SPAM if i % 4 == 3 else HAM, message_digest(hashes), "bench"))
         tokenized = time.perf_counter()
         store.train_many(items)
@@ -182,7 +191,7 @@ def bench_training(count: int) -> None:
     )
 
 
-def bench_corpus_training(corpus: Path) -> None:
+def bench_corpus_training(corpus: Path, options: TokenizerOptions) -> None:
     """Bulk training on real mail: the corpus's first 5,000 messages, tokenizing included."""
     corpus_messages = read_corpus(str(corpus))[:5000]
     with tempfile.TemporaryDirectory() as folder:
@@ -190,7 +199,7 @@ def bench_corpus_training(corpus: Path) -> None:
         started = time.perf_counter()
         items = []
         for message in corpus_messages:
-            hashes, _ = tokenize_step(message.raw, DEFAULT_OPTIONS)
+            hashes, _ = tokenize_step(message.raw, options)
             items.append((hashes, message.label, message_digest(hashes), "bench"))
         tokenized = time.perf_counter()
         store.train_many(items)
@@ -204,7 +213,7 @@ def bench_corpus_training(corpus: Path) -> None:
     )
 
 
-def bench_train_command(count: int) -> None:
+def bench_train_command(count: int, options: TokenizerOptions) -> None:
     """``mailweir train``'s path (learning.train_from): the ham folder, then the spam folder,
     in one process and with tokenizing processes, with the margin and for every message."""
     from mailweir.daemon import learning
@@ -218,7 +227,7 @@ def bench_train_command(count: int) -> None:
         for margin in (learning.STAMPED, None):
             for workers in (1, learning.default_workers()):
                 target = str(Path(folder) / f"train-{workers}-{margin is None}.sqlite3")
-                model = learning.open_model(target, margin=margin)
+                model = learning.open_model(target, margin=margin, bigrams=options.bigrams)
                 quiet = learning.Progress("trained", enabled=False)
                 started = time.perf_counter()
                 for label, kind in ((HAM, "ham"), (SPAM, "spam")):
@@ -283,8 +292,14 @@ def main() -> None:
     parser.add_argument("--min-tokens", type=int, default=500_000, help="model size")
     parser.add_argument("--rounds", type=int, default=3, help="passes per figure (the best)")
     parser.add_argument("--corpus", type=Path, default=DEV_CORPUS, help="real mail (if present)")
+    parser.add_argument(
+        "--bigrams", action="store_true", help="a model of words and adjacent word pairs"
+    )
     args = parser.parse_args()
-    model = bench_mail.build_model(args.min_tokens)
+    options = bench_mail.BIGRAM_OPTIONS if args.bigrams else DEFAULT_OPTIONS
+    if args.bigrams:
+        print("bigram model: words and adjacent word pairs, Fisher uncapped")
+    model = bench_mail.build_model(args.min_tokens, bigrams=args.bigrams)
     with tempfile.TemporaryDirectory() as folder:
         path = Path(folder) / "model.sqlite3"
         shutil.copyfile(model, path)
@@ -292,17 +307,17 @@ def main() -> None:
             bench_memory(path)
         store = ModelStore.open(str(path))
         messages = [bench_mail.message(i, 4096, seed=7) for i in range(args.messages)]
-        bench_path(store, messages, max(1, args.rounds))
+        bench_path(store, messages, max(1, args.rounds), options)
         store.close()
         if args.corpus.is_file():
             for preload in (True, False):
                 target = Path(folder) / f"corpus-{preload}.sqlite3"
-                bench_corpus_path(args.corpus, target, max(1, args.rounds), preload)
+                bench_corpus_path(args.corpus, target, max(1, args.rounds), options, preload)
     if args.train:
-        bench_training(args.train)
+        bench_training(args.train, options)
         if args.corpus.is_file():
-            bench_corpus_training(args.corpus)
-        bench_train_command(args.train)
+            bench_corpus_training(args.corpus, options)
+        bench_train_command(args.train, options)
 
 
 if __name__ == "__main__":
