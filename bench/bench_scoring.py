@@ -126,14 +126,17 @@ def bench_path(
 
 
 def bench_corpus_path(
-    corpus: Path, path: Path, rounds: int, options: TokenizerOptions, preload: bool = True
+    corpus: Path, path: Path, rounds: int, options: TokenizerOptions, memory: str = "preloaded"
 ) -> None:
     """The whole scoring path on real mail, a model trained on the corpus's first 5,000.
 
     "first sight" is one pass over messages this process has not seen, as a running daemon
-    meets them: their new words miss the digest cache, and with *preload* (the daemon's
-    default) the complete count cache answers them without a read; without it they are read
-    from the file as the judge does, into a cache warm with the model's earlier mail.
+    meets them: their new words miss the digest cache, and with *memory* "preloaded" (the
+    daemon's default) the complete count cache answers them without a read; "read as needed"
+    reads them from the file as the judge does, into a cache warm with the model's earlier
+    mail; "larger than memory" gives the count cache room for half the model's tokens, so
+    ``preload`` builds the presence filter instead, and only tokens it cannot rule out are
+    read (store/presence.py).
     "again" is the best of ``rounds`` more passes, every word cached.  Two slices: the next
     2,000 messages as they come (median 740 bytes), and the messages of 3-6 KB after those
     (mean 4 KB, the size the target names).
@@ -147,7 +150,12 @@ def bench_corpus_path(
         hashes, _ = tokenize_step(raw, options)
         items.append((hashes, label, message_digest(hashes), "bench"))
     store.train_many(items)
-    if preload:  # the daemon's default (model.preload): new words cost no read
+    if memory == "larger than memory":
+        tokens = store.stats().tokens
+        store.close()
+        store = ModelStore.open(str(path), cache_tokens=tokens // 2)
+        assert not store.preload() and store.presence_known, "no presence filter"
+    if memory == "preloaded":  # the daemon's default (model.preload): new words cost no read
         assert store.preload(), "the model did not fit in the count cache"
     else:
         for hashes, *_ in items:
@@ -158,8 +166,7 @@ def bench_corpus_path(
         "of 3-6 KB": [raw for raw in messages[7000:] if 3 * 1024 <= len(raw) < 6 * 1024],
     }
     tokens = store.stats().tokens
-    how = "preloaded" if preload else "read as needed"
-    print(f"scoring path, real mail ({corpus.name}, model of {tokens} tokens, {how}):")
+    print(f"scoring path, real mail ({corpus.name}, model of {tokens} tokens, {memory}):")
     for name, scored in slices.items():
         first = _per_message(lambda raw: _whole_path(store, scorer, raw, options), scored, 1)
         again = _per_message(lambda raw: _whole_path(store, scorer, raw, options), scored, rounds)
@@ -310,9 +317,9 @@ def main() -> None:
         bench_path(store, messages, max(1, args.rounds), options)
         store.close()
         if args.corpus.is_file():
-            for preload in (True, False):
-                target = Path(folder) / f"corpus-{preload}.sqlite3"
-                bench_corpus_path(args.corpus, target, max(1, args.rounds), options, preload)
+            for n, memory in enumerate(("preloaded", "read as needed", "larger than memory")):
+                target = Path(folder) / f"corpus-{n}.sqlite3"
+                bench_corpus_path(args.corpus, target, max(1, args.rounds), options, memory)
     if args.train:
         bench_training(args.train, options)
         if args.corpus.is_file():

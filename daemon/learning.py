@@ -265,11 +265,11 @@ def train_from(
     summary: Counter[str] = Counter()
     failures: Counter[str] = Counter()
     pending = PendingCounts(model.store) if model.margin is not None else None
-    if pending is not None and not model.store.complete:
+    if pending is not None and not model.store.presence_known:
         # Deciding by the margin reads each batch's unseen tokens from the database; with
         # every count in memory (a model within the count cache's limit) it reads none, and
-        # the store's own writes keep memory complete.  A model too big for it is not
-        # preloaded (False), and lookups read the database as before.
+        # the store's own writes keep memory complete.  A model too big for it gets a filter
+        # of the tokens it holds instead, and only those are read.
         model.store.preload()
     chunks = _batches(iter_sources(targets, failures))
     wanted = default_workers() if workers is None else workers

@@ -5,8 +5,10 @@ a message never reads the database: not the few new words of each message, nor t
 every message after a restart.  A background task preloads at start and again, at most once a
 ``PRELOAD_EVERY``, after something ended it: another process's write (``mailweir train`` on
 the same file), or a model grown past ``model.cache_tokens``.  Lookups read through the cache
-meanwhile, as without preloading.  SQLite only; on a shared PostgreSQL model other daemons
-write all the time, so the store declines.
+meanwhile, as without preloading.  A model larger than ``model.cache_tokens`` gets a filter of
+which tokens it holds instead, so that a token it lacks is not read (``store/presence.py``).
+SQLite only; on a shared PostgreSQL model other daemons write all the time, so the store
+declines.
 """
 
 from __future__ import annotations
@@ -43,7 +45,7 @@ class KeepPreloaded:
 
     async def _run(self) -> None:
         while True:
-            if not self._store.complete:
+            if not self._store.presence_known:
                 await self._preload()
             await asyncio.sleep(self._every)
 
@@ -60,3 +62,8 @@ class KeepPreloaded:
                 self._reading = None
         if done:
             log.info("token counts preloaded in %.2fs", time.monotonic() - started)
+        elif self._store.presence_known:
+            log.info(
+                "model larger than model.cache_tokens: its tokens' presence filter built in %.2fs",
+                time.monotonic() - started,
+            )

@@ -30,10 +30,11 @@ from mailweir.store import schema, verdicts
 from mailweir.store.cache import CountCache
 from mailweir.store.engine import NO_BEGIN, READ_ONLY, make_engine
 from mailweir.store.errors import StoreBusy, retryable, store_errors
-from mailweir.store.lookup import CountReader, count_chunks
+from mailweir.store.lookup import CountReader, count_chunks, hash_chunks
 from mailweir.store.memory import release_free_memory
 from mailweir.store.meta import database_bytes, get_meta, row_count, set_meta
 from mailweir.store.migrations import migrate
+from mailweir.store.presence import PresenceFilter
 from mailweir.store.training import (
     Plan,
     TrainItem,
@@ -55,6 +56,9 @@ LOCAL_READ_MAX = 64  # most uncached hashes cached_counts reads itself (real mai
 # token_count on a model whose vocabulary summary memory lacks: the database counts the live
 # rows, and that count serves while the revision stays, or at most this many seconds.
 TOKEN_COUNT_EVERY = 600.0
+# A presence filter is sized for the model's tokens and this share more (own training adds to
+# it; past that it is built anew), at 2 bytes a token (store/presence.py).
+PRESENCE_ROOM = 0.25
 
 
 @dataclass(frozen=True)
@@ -104,6 +108,9 @@ class ModelStore:
         self._idle_reads: collections.deque[tuple[int, Connection]] = collections.deque()
         self._read_generation = 0  # advanced when idle lookup connections are retired
         self._complete = False  # memory holds every token's counts (``preload``)
+        # Or, for a model too large for that, which tokens it holds (``preload``); None when
+        # unknown.  Memory's revision governs it as it governs the cache.
+        self._presence: PresenceFilter | None = None
         postgres = engine.dialect.name == "postgresql"
         self._autocommit: dict[str, Any] = (
             {"isolation_level": "AUTOCOMMIT"} if postgres else {NO_BEGIN: True}
@@ -255,6 +262,7 @@ class ModelStore:
     def _reset(self, revision: int, totals: ClassCounts) -> None:
         self._cache.clear()
         self._complete = False
+        self._presence = None
         self._vocab = None
         self._totals = totals
         self._revision = revision
@@ -279,6 +287,8 @@ class ModelStore:
             self._complete = self._cache.add_or_insert(hashes, delta)
         else:
             self._cache.add(hashes, delta)
+        if self._presence is not None:
+            self._presence_add(hashes[(delta > 0).any(axis=1)])
         self._totals = self._totals + messages
         if self._vocab is not None:
             if old is None:
@@ -296,11 +306,34 @@ class ModelStore:
         with self._lock:
             counts, found = self._cache.get(hashes)
             epoch, writers, complete = self._epoch, self._writers, self._complete
+            found = self._known_absent(hashes, found, complete)
         if complete or found.all():  # complete: what memory lacks has no counts
             return counts
         with store_errors():
             self._fill(hashes, counts, found, self._fetch, epoch, writers)
         return counts
+
+    def _known_absent(
+        self, hashes: TokenHashes, found: npt.NDArray[np.bool_], complete: bool
+    ) -> npt.NDArray[np.bool_]:
+        """*found*, with the hashes memory lacks that the presence filter rules out marked
+        found too (their counts, zeros, are right): only the rest are read.  Lock held."""
+        if self._presence is None or complete or found.all():
+            return found
+        missing = np.flatnonzero(~found)
+        absent = missing[~self._presence.may_hold(hashes[missing])]
+        found[absent] = True
+        return found
+
+    def _presence_add(self, grown: TokenHashes) -> None:
+        """Add the tokens an own write grew to the filter (lock held); those it already
+        reports are not counted, so ``full`` counts new tokens, and a full one is dropped
+        (``preload`` builds it anew)."""
+        assert self._presence is not None
+        new = grown[~self._presence.may_hold(grown)]
+        self._presence.add(new)
+        if self._presence.full:
+            self._presence = None
 
     def _fill(
         self,
@@ -358,6 +391,7 @@ class ModelStore:
             counts, found = self._cache.get(hashes)
             totals = self._totals.copy()
             epoch, writers, complete = self._epoch, self._writers, self._complete
+            found = self._known_absent(hashes, found, complete)
         finally:
             self._lock.release()
         if complete and self._nowait_conns:
@@ -432,43 +466,62 @@ class ModelStore:
         """Whether memory holds every token's counts (``preload``), so a lookup reads nothing."""
         return self._complete
 
+    @property
+    def presence_known(self) -> bool:
+        """Whether memory knows which tokens the model holds: every count (``complete``), or
+        for a model too large for the cache, a presence filter (``preload``)."""
+        return self._complete or self._presence is not None
+
     def preload(self) -> bool:
         """Read every token's counts into memory, so a hash memory lacks is known to have none
         and a lookup never reads the database.  Own writes keep memory complete; another
         process's write (noticed within ``staleness_seconds``) or the token limit ends it, and
         lookups read through again until the next preload.
 
-        SQLite only (on a shared PostgreSQL model other daemons write all the time).  False
-        when the model holds more tokens than the cache may, or a write landed meanwhile."""
+        A model with more tokens than the cache may hold gets a presence filter instead
+        (``store/presence.py``, 2 bytes a token): a token the filter rules out is not read,
+        nor cached; the others are read through as before.  Own writes add to it; another
+        process's write drops it, as it ends a complete memory.
+
+        SQLite only (on a shared PostgreSQL model other daemons write all the time).  True
+        when memory is now complete; False when the model was too large (see
+        ``presence_known``) or a write landed meanwhile."""
         if self._reader.postgres:
             return False
         with self._lock:
             epoch = self._epoch
         cache = CountCache(self._cache.max_tokens)
+        presence: PresenceFilter | None = None
         with self._reading(snapshot=True, whole_table=True) as conn, conn.begin():
             revision, totals = self._read_totals(conn)
             rows = row_count(conn, schema.token)
             if rows > self._cache.max_tokens:
-                return False
-            # Sized once and filled a chunk at a time as it is read: reading the whole table
-            # into arrays first and putting them at once, rehashing as the cache grew, peaked
-            # at 172 MB resident for 521,759 tokens against 96 now, to settle at 83
-            # (bench/bench_scoring.py).
-            cache.reserve(rows)
-            for hashes, counts in count_chunks(conn):
-                cache.put(hashes, counts)
+                presence = PresenceFilter(int(rows * (1 + PRESENCE_ROOM)) + 1)
+                for hashes in hash_chunks(conn):
+                    presence.add(hashes)
+            else:
+                # Sized once and filled a chunk at a time as it is read: reading the whole
+                # table into arrays first and putting them at once, rehashing as the cache
+                # grew, peaked at 172 MB resident for 521,759 tokens against 96 now, to settle
+                # at 83 (bench/bench_scoring.py).
+                cache.reserve(rows)
+                for hashes, counts in count_chunks(conn):
+                    cache.put(hashes, counts)
         with self._lock:
             installed = epoch == self._epoch and not self._writers
             if installed:
                 if revision != self._revision:
                     self._reset(revision, totals)
-                cache, self._cache, self._complete = self._cache, cache, True
-                self._epoch += 1
+                if presence is None:
+                    cache, self._cache, self._complete = self._cache, cache, True
+                    self._epoch += 1
+                else:
+                    self._presence = presence
         del cache  # the one replaced (or the one not installed)
-        if installed:
+        if installed and presence is None:
             self._retire_reads()  # lookups now read nothing; the event loop's goes on its next
         release_free_memory()  # after both are gone: what was read, and the cache replaced
-        return installed
+        return installed and presence is None
 
     def class_count(self) -> ClassCounts:
         """Trained ham and spam messages, shape (2,)."""

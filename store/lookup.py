@@ -109,3 +109,16 @@ def count_chunks(conn: Connection) -> Iterator[tuple[TokenHashes, TokenCounts]]:
             yield np.ascontiguousarray(part[:, 0]), np.ascontiguousarray(part[:, 1:])
     finally:
         result.close()
+
+
+def hash_chunks(conn: Connection) -> Iterator[TokenHashes]:
+    """Every token's hash, ``_CHUNK_ROWS`` at a time (for the presence filter of a model too
+    large to hold: the hashes alone, a third of the rows' tuples)."""
+    result = conn.exec_driver_sql("SELECT hash FROM weir_token")
+    try:
+        while chunk := result.cursor.fetchmany(_CHUNK_ROWS):
+            hashes = np.fromiter((row[0] for row in chunk), dtype=np.int64, count=len(chunk))
+            del chunk
+            yield hashes
+    finally:
+        result.close()

@@ -16,8 +16,10 @@ from mailweir.daemon.preload import KeepPreloaded
 class FakeStore:
     """Stands in for ModelStore.preload/complete; the gate holds a preload in its thread."""
 
-    def __init__(self) -> None:
+    def __init__(self, too_large: bool = False) -> None:
         self.complete = False
+        self.too_large = too_large  # preload builds a presence filter, memory stays partial
+        self.filtered = False
         self.calls = 0
         self.fail_next = 0
         self.gate = threading.Event()
@@ -31,8 +33,15 @@ class FakeStore:
         if self.fail_next:
             self.fail_next -= 1
             raise RuntimeError("database is locked")
+        if self.too_large:
+            self.filtered = True
+            return False
         self.complete = True
         return True
+
+    @property
+    def presence_known(self) -> bool:
+        return self.complete or self.filtered
 
 
 async def test_preloads_at_start_and_again_once_memory_is_no_longer_complete() -> None:
@@ -44,6 +53,23 @@ async def test_preloads_at_start_and_again_once_memory_is_no_longer_complete() -
     assert store.calls == 1  # complete: nothing more to read
     store.complete = False  # another process wrote
     await wait_until(lambda: store.complete)
+    assert store.calls == 2
+    await keeper.stop()
+
+
+async def test_a_model_too_large_is_filtered_once_and_again_after_a_write(
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    caplog.set_level("INFO", logger="mailweir.preload")
+    store = FakeStore(too_large=True)
+    keeper = KeepPreloaded(store, every=0.01)
+    keeper.start()
+    await wait_until(lambda: store.filtered)
+    await asyncio.sleep(0.05)
+    assert store.calls == 1 and not store.complete  # the filter known: nothing more to read
+    assert "presence filter built" in caplog.text
+    store.filtered = False  # another process wrote
+    await wait_until(lambda: store.filtered)
     assert store.calls == 2
     await keeper.stop()
 
