@@ -9,12 +9,14 @@ what the token rows say.
 from __future__ import annotations
 
 from collections.abc import Callable
+from pathlib import Path
 
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from store_helpers import digest_of, dump_model
+from test_preload import resident_kib_of
 
 from mailweir.model.pairs import mix64
 from mailweir.model.types import HAM, SPAM
@@ -184,3 +186,29 @@ def test_lookups_through_the_filter_match_the_database_through_mixed_writes(
         wanted = spread(*range(0, 70))
         assert store.lookup(wanted).tolist() == truth(store, wanted), step
     assert filtered >= 5  # the filter was there for part of the run
+
+
+def test_read_connections_close_once_the_filter_is_built(tmp_path: Path) -> None:
+    """Before the filter is built, mail is looked up through the file, and SQLite keeps every
+    page each connection read mapped.  Once it is built those connections close (the event
+    loop's at its next call, even one that reads nothing), and with them those pages."""
+    path = str(tmp_path / "model.sqlite3")
+    hashes = np.unique(np.random.default_rng(4).integers(-(2**63), 2**63 - 1, 60_000))
+    writer = ModelStore.open(path)
+    writer.train(hashes, SPAM, digest=digest_of("a"), source="t")
+    writer.close()
+    store = ModelStore.open(path, cache_tokens=1_000, staleness_seconds=3600.0)
+    try:
+        for chunk in np.array_split(hashes, 60):  # the whole file read through, piece by piece
+            store.lookup(chunk)
+            assert store.cached_counts(chunk[:3], local_read=True) is not None  # the loop's
+        size_kib = (tmp_path / "model.sqlite3").stat().st_size // 1024
+        assert resident_kib_of(path) > size_kib // 2
+        assert not store.preload() and store.presence_known
+        absent = spread(*range(50))
+        answer = store.cached_counts(absent, local_read=True)
+        assert answer is not None and not answer[1].any()
+        assert store.lookup(hashes[:5]).tolist() == [[0, 1]] * 5
+        assert resident_kib_of(path) < size_kib // 10
+    finally:
+        store.close()
