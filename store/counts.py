@@ -57,7 +57,7 @@ LOCAL_READ_MAX = 64  # most uncached hashes cached_counts reads itself (real mai
 # rows, and that count serves while the revision stays, or at most this many seconds.
 TOKEN_COUNT_EVERY = 600.0
 # A presence filter is sized for the model's tokens and this share more (own training adds to
-# it; past that it is built anew), at 2 bytes a token (store/presence.py).
+# it; past that it is built anew), at 2 bytes a token of that (store/presence.py).
 PRESENCE_ROOM = 0.25
 
 
@@ -493,7 +493,7 @@ class ModelStore:
         lookups read through again until the next preload.
 
         A model with more tokens than the cache may hold gets a presence filter instead
-        (``store/presence.py``, 2 bytes a token): a token the filter rules out is not read,
+        (``store/presence.py``, 2.5 bytes a token): a token the filter rules out is not read,
         nor cached; the others are read through as before.  Own writes add to it; another
         process's write drops it, as it ends a complete memory.
 

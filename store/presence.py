@@ -9,14 +9,15 @@ filter answers "certainly not in the model" for nearly all of them, so only the 
 may be there are read.
 
 It is a register-blocked Bloom filter (Putze, Sanders and Singler, "Cache-, hash- and
-space-efficient Bloom filters", 2007): each token sets ``_BITS_PER_TOKEN`` bits within one
-64-bit word, so a lookup reads one word a token, a handful of whole-array steps for a message.
-Token hashes are BLAKE2b or splitmix64 outputs already, so their own bits choose the word
-(the top 32, scaled to the word count) and the three bits within it (three 6-bit fields of the
-low 18).  With 16 bits of table per token about one absent token in 100-200 passes as
-possibly present (``tests/store/test_presence.py`` measures it); that one is read, as all were
-before.  A token is never reported absent once added: a false "absent" would lose its counts
-from the verdict.
+space-efficient Bloom filters", 2007; title and year from memory): each token sets three bits
+within one 64-bit word, so a lookup reads one word a token, a handful of whole-array steps
+for a message.  Token hashes are BLAKE2b or splitmix64 outputs already, so their own bits
+choose the word (the top 32, scaled to the word count by Lemire's multiply-shift, from
+memory) and the three bits within it (three 6-bit fields of the low 18).  With 16 bits of
+table per token about one absent token in 125 passes as possibly present (0.78-0.82% on
+random hashes; ``tests/store/test_presence.py`` holds it below 1.2%); that one is read, as
+all were before.  A token is never reported absent once added: a false "absent" would lose
+its counts from the verdict.
 
 Deleting from a Bloom filter is not possible; a token whose counts reach zero (untraining,
 pruning) stays "possibly present" and is read, harmlessly, until the filter is next built.
@@ -30,7 +31,6 @@ import numpy.typing as npt
 from mailweir.model.types import TokenHashes
 
 _TABLE_BITS_PER_TOKEN = 16  # of table per token held, at the capacity it is built for
-_BITS_PER_TOKEN = 3  # bits set in the token's word
 _MIN_WORDS = 64
 _LOW6 = np.uint64(63)
 _ONE = np.uint64(1)
