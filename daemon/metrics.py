@@ -174,6 +174,30 @@ class _ConnectionsCollector(Collector):
         )
 
 
+class _ModelMemoryCollector(Collector):
+    """What memory holds of the model (store/counts.py ``preload``), read at scrape time."""
+
+    def __init__(self) -> None:
+        self.source: Any = None  # the ModelStore
+
+    def collect(self) -> Iterator[Metric]:
+        store = self.source
+        complete = bool(store is not None and store.complete)
+        filtered = bool(store is not None and store.presence_known and not complete)
+        held = GaugeMetricFamily(
+            "mailweir_model_in_memory",
+            "1 for what memory holds of the model now: every token's counts (counts; a token "
+            "memory lacks is never read), a filter of which tokens it holds (presence; a model "
+            "larger than model.cache_tokens, only tokens it may hold are read), or neither "
+            "(none: tokens memory lacks are read, e.g. a minute after another process trained).",
+            labels=["state"],
+        )
+        held.add_metric(["counts"], float(complete))
+        held.add_metric(["presence"], float(filtered))
+        held.add_metric(["none"], float(not complete and not filtered))
+        yield held
+
+
 def _version() -> str:
     try:
         return metadata.version("mailweir")
@@ -310,6 +334,8 @@ class Metrics:
         r.register(self._verdict_log)
         self._connections = _ConnectionsCollector()
         r.register(self._connections)
+        self._model_memory = _ModelMemoryCollector()
+        r.register(self._model_memory)
         self._zero_known_series()
 
     def _zero_known_series(self) -> None:
@@ -373,6 +399,11 @@ class Metrics:
         """Export the SMTP side's open connections and refusals (daemon/smtp.py's
         ``Connections``)."""
         self._connections.source = connections
+
+    def watch_store(self, store: Any) -> None:
+        """Export what memory holds of the model (``ModelStore.complete``,
+        ``presence_known``)."""
+        self._model_memory.source = store
 
     # -- periodic refresh from the store -------------------------------------------------
 

@@ -288,6 +288,7 @@ class Service:
         )
         await self.verdict_log.start()  # replays what a killed predecessor left in the journal
         self.metrics.watch_verdict_log(self.verdict_log)
+        self.metrics.watch_store(self.store)
         self.upkeep = Upkeep(self.store, self.settings.upkeep, self.metrics.upkeep)
         await self.upkeep.start()
         if model.preload:

@@ -130,5 +130,41 @@ async def test_the_daemon_holds_its_whole_model_in_memory(tmp_path: Path, preloa
             await asyncio.sleep(0.2)
             assert service.preload is None and not service.store.complete
         assert service.store.lookup(np.array([7, 500])).tolist() == [[0, 1], [0, 0]]
+        held = "counts" if preload else "none"  # /metrics says what memory holds
+        text = service.metrics.render().decode()
+        assert f'mailweir_model_in_memory{{state="{held}"}} 1.0' in text
+    finally:
+        await service.shutdown(grace=1)
+
+
+async def test_the_daemon_keeps_a_presence_filter_of_a_model_too_large(tmp_path: Path) -> None:
+    import numpy as np
+
+    from mailweir.daemon.service import Service
+    from mailweir.daemon.settings import HostPort, Settings, SmtpSettings
+    from mailweir.model.hashing import message_digest
+    from mailweir.model.types import SPAM
+    from mailweir.store import ModelStore
+
+    base = Settings(state_dir=tmp_path)
+    settings = dataclasses.replace(
+        base,
+        smtp=SmtpSettings(listen=HostPort("127.0.0.1", 0), hostname="filter.harbourlane.example"),
+        http=dataclasses.replace(base.http, listen=HostPort("127.0.0.1", 0)),
+        model=dataclasses.replace(base.model, cache_tokens=20),
+    )
+    hashes = np.random.default_rng(8).integers(-(2**63), 2**63 - 1, 50)
+    model = ModelStore.open(str(settings.database))
+    model.train(hashes, SPAM, digest=message_digest(hashes), source="t")
+    model.close()
+    service = Service(settings)
+    await service.startup()
+    try:
+        await wait_until(lambda: service.store.presence_known)
+        assert not service.store.complete
+        wanted = np.sort(hashes[:3])
+        assert service.store.lookup(wanted).tolist() == [[0, 1]] * 3
+        text = service.metrics.render().decode()
+        assert 'mailweir_model_in_memory{state="presence"} 1.0' in text
     finally:
         await service.shutdown(grace=1)

@@ -33,6 +33,7 @@ EXPECTED_FAMILIES = {
     "mailweir_feedback": "counter",
     "mailweir_feedback_refused": "counter",
     "mailweir_model_tokens": "gauge",
+    "mailweir_model_in_memory": "gauge",
     "mailweir_model_messages": "gauge",
     "mailweir_last_training_timestamp_seconds": "gauge",
     "mailweir_false_positive_rate": "gauge",
@@ -270,3 +271,26 @@ async def test_report_refresher_start_stop() -> None:
         await asyncio.sleep(0.01)
     await refresher.stop()
     assert sorted(calls) == sorted(RATE_WINDOWS.values())
+
+
+class FakeStore:
+    def __init__(self) -> None:
+        self.complete = False
+        self.presence_known = False
+
+
+def test_metrics_model_memory_read_at_scrape_time() -> None:
+    m = Metrics()
+    states = ("counts", "presence", "none")
+
+    def held() -> list[float]:
+        return [value(m, "mailweir_model_in_memory", state=state) for state in states]
+
+    assert held() == [0, 0, 1]  # no store yet
+    store = FakeStore()
+    m.watch_store(store)
+    assert held() == [0, 0, 1]
+    store.presence_known = True  # a model larger than the cache: its presence filter
+    assert held() == [0, 1, 0]
+    store.complete = True  # preloaded whole (presence_known stays true)
+    assert held() == [1, 0, 0]
