@@ -21,6 +21,7 @@ import numpy as np
 import numpy.typing as npt
 
 from mailweir.daemon.settings import PolicySettings
+from mailweir.model.hashing import sorted_unique
 from mailweir.model.nb import NaiveBayes
 from mailweir.model.types import (
     SPAM,
@@ -127,7 +128,9 @@ class PendingCounts:
     def prefetch(self, hashes: TokenHashes) -> None:
         """Read the stored counts of ``hashes`` (every token of a batch, repeats allowed) that
         are not held yet, in one lookup."""
-        wanted = np.unique(np.asarray(hashes, dtype=np.int64))
+        # A copy sorted in place: numpy 2's np.unique of a batch's 300,000 hashes takes its
+        # hash-table path, 100 ms against 22 for the sort (it still sorts what it finds).
+        wanted = sorted_unique(np.array(hashes, dtype=np.int64))
         if len(self._keys):
             wanted = wanted[~_held(self._keys, wanted)]
         if not len(wanted):

@@ -25,6 +25,7 @@ import numpy.typing as npt
 from sqlalchemy import Connection, Engine, delete, func, select
 from sqlalchemy import exc as sa_exc
 
+from mailweir.model.hashing import sorted_unique
 from mailweir.model.types import ClassCounts, TokenCounts, TokenHashes, Vocabulary
 from mailweir.store import schema, verdicts
 from mailweir.store.cache import CountCache
@@ -360,7 +361,8 @@ class ModelStore:
         Without *wait* (the event loop) it also gives False, caching nothing, rather than wait
         for the lock or rehash the cache: a worker thread's ``lookup`` does either."""
         missing = hashes[~found]
-        unique = np.unique(missing)
+        # A copy sorted in place: numpy 2's np.unique takes a hash table, slower for this.
+        unique = sorted_unique(missing.copy())
         fetched = fetch(unique)
         counts[~found] = fetched[np.searchsorted(unique, missing)]
         if not self._lock.acquire(blocking=wait):
