@@ -33,6 +33,7 @@ import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import Literal, get_args
 
 import numpy as np
 
@@ -125,8 +126,11 @@ def bench_path(
     )
 
 
+Memory = Literal["preloaded", "read as needed", "larger than memory"]
+
+
 def bench_corpus_path(
-    corpus: Path, path: Path, rounds: int, options: TokenizerOptions, memory: str = "preloaded"
+    corpus: Path, path: Path, rounds: int, options: TokenizerOptions, memory: Memory = "preloaded"
 ) -> None:
     """The whole scoring path on real mail, a model trained on the corpus's first 5,000.
 
@@ -151,9 +155,9 @@ def bench_corpus_path(
         items.append((hashes, label, message_digest(hashes), "bench"))
     store.train_many(items)
     if memory == "larger than memory":
-        tokens = store.stats().tokens
+        size = store.stats().tokens
         store.close()
-        store = ModelStore.open(str(path), cache_tokens=tokens // 2)
+        store = ModelStore.open(str(path), cache_tokens=size // 2)
         assert not store.preload() and store.presence_known, "no presence filter"
     if memory == "preloaded":  # the daemon's default (model.preload): new words cost no read
         assert store.preload(), "the model did not fit in the count cache"
@@ -317,7 +321,7 @@ def main() -> None:
         bench_path(store, messages, max(1, args.rounds), options)
         store.close()
         if args.corpus.is_file():
-            for n, memory in enumerate(("preloaded", "read as needed", "larger than memory")):
+            for n, memory in enumerate(get_args(Memory)):
                 target = Path(folder) / f"corpus-{n}.sqlite3"
                 bench_corpus_path(args.corpus, target, max(1, args.rounds), options, memory)
     if args.train:
