@@ -24,7 +24,7 @@ import logging
 import platform
 from collections.abc import Callable, Iterator
 from importlib import metadata
-from typing import Any, Final, Protocol
+from typing import Any, Final, Protocol, get_args
 
 from prometheus_client import (
     CollectorRegistry,
@@ -42,6 +42,7 @@ from mailweir.daemon import replies
 from mailweir.daemon.background import stop_task
 from mailweir.daemon.compiled import COMPILED
 from mailweir.daemon.errors import NextHopRejected, RelayError
+from mailweir.daemon.preload import MemoryState, memory_state
 from mailweir.daemon.upkeep import UpkeepMetrics
 from mailweir.store.reports import MisfilingRates, ModelSummary
 
@@ -181,9 +182,7 @@ class _ModelMemoryCollector(Collector):
         self.source: Any = None  # the ModelStore
 
     def collect(self) -> Iterator[Metric]:
-        store = self.source
-        complete = bool(store is not None and store.complete)
-        filtered = bool(store is not None and store.presence_known and not complete)
+        state = memory_state(self.source)
         held = GaugeMetricFamily(
             "mailweir_model_in_memory",
             "1 for what memory holds of the model now: every token's counts (counts; a token "
@@ -192,9 +191,8 @@ class _ModelMemoryCollector(Collector):
             "(none: tokens memory lacks are read, e.g. a minute after another process trained).",
             labels=["state"],
         )
-        held.add_metric(["counts"], float(complete))
-        held.add_metric(["presence"], float(filtered))
-        held.add_metric(["none"], float(not complete and not filtered))
+        for name in get_args(MemoryState):
+            held.add_metric([name], float(state == name))
         yield held
 
 

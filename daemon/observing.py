@@ -13,6 +13,7 @@ from typing import Any
 from mailweir.daemon.feedback_types import FeedbackOutcome, FeedbackRequest
 from mailweir.daemon.http_side import FeedbackHandler, HttpSide
 from mailweir.daemon.metrics import Metrics, ReportRefresher
+from mailweir.daemon.preload import memory_state
 from mailweir.daemon.settings import HostPort, PolicySettings, Settings
 from mailweir.daemon.status_page import StatusPage
 from mailweir.store import reports
@@ -46,7 +47,9 @@ class Observing:
             rates=lambda window: reports.misfiling_rates(engine, window),
             model=lambda: reports.model_summary(engine, tokens=model_tokens()),
         )
-        self.page = StatusPage(engine, policy, model_tokens=model_tokens)
+        self.page = StatusPage(
+            engine, policy, model_tokens=model_tokens, memory=lambda: memory_state(store)
+        )
 
         async def store_ready() -> bool:
             return await asyncio.to_thread(reports.ping, engine)

@@ -16,13 +16,27 @@ from __future__ import annotations
 import asyncio
 import logging
 import time
-from typing import Any, Final
+from typing import Any, Final, Literal
 
 from mailweir.daemon.background import stop_task
 
 log = logging.getLogger("mailweir.preload")
 
 PRELOAD_EVERY: Final = 60.0  # seconds between tries while memory is not complete
+
+MemoryState = Literal["counts", "presence", "none"]
+
+
+def memory_state(store: Any) -> MemoryState:
+    """What memory holds of the model: every token's counts, a filter of which tokens it
+    holds (a model larger than ``model.cache_tokens``), or neither (tokens memory lacks are
+    read; with ``model.preload`` off, or until the next preload after another process's
+    write).  The metric and the status page both say it."""
+    if store is None:
+        return "none"
+    if store.complete:
+        return "counts"
+    return "presence" if store.presence_known else "none"
 
 
 class KeepPreloaded:

@@ -29,6 +29,7 @@ from sqlalchemy import Engine
 
 from mailweir.daemon.bar_charts import BarSeries, category_line_chart, stacked_bar_chart
 from mailweir.daemon.metrics import RATE_WINDOWS
+from mailweir.daemon.preload import MemoryState
 from mailweir.daemon.settings import PolicySettings
 from mailweir.store import reports
 from mailweir.store.reports import DayReport, MisfilingRates, ModelSummary, ScoreHistogram
@@ -70,6 +71,7 @@ class StatusData:
     model: ModelSummary | None = None
     rates: dict[str, MisfilingRates] = field(default_factory=dict)
     error: str | None = None
+    memory: MemoryState | None = None  # what memory holds of the model (daemon/preload.py)
 
 
 def collect(
@@ -78,9 +80,11 @@ def collect(
     now: float,
     days: int = DAYS,
     model_tokens: Callable[[], int] | None = None,
+    memory: Callable[[], MemoryState] | None = None,
 ) -> StatusData:
     """Every figure the page shows (blocking: run it in a worker thread).  *model_tokens*
-    gives the model's size from memory; without it the token table is counted."""
+    gives the model's size from memory; without it the token table is counted.  *memory*
+    says what memory holds of the model (left out when not given)."""
     return StatusData(
         generated_at=now,
         policy=policy,
@@ -88,6 +92,7 @@ def collect(
         histogram=reports.score_histogram(engine, days, now),
         model=reports.model_summary(engine, None if model_tokens is None else model_tokens()),
         rates={w: reports.misfiling_rates(engine, s, now) for w, s in RATE_WINDOWS.items()},
+        memory=None if memory is None else memory(),
     )
 
 
@@ -108,9 +113,11 @@ class StatusPage:
         max_age: float = 10.0,
         clock: Callable[[], float] = time.time,
         model_tokens: Callable[[], int] | None = None,
+        memory: Callable[[], MemoryState] | None = None,
     ) -> None:
         self._engine = engine
         self._model_tokens = model_tokens
+        self._memory = memory
         self._policy = policy
         self._days = days
         self._max_age = max_age
@@ -134,7 +141,7 @@ class StatusPage:
         policy = self._policy()
         try:
             return await asyncio.to_thread(
-                collect, self._engine, policy, now, self._days, self._model_tokens
+                collect, self._engine, policy, now, self._days, self._model_tokens, self._memory
             )
         except Exception as exc:
             log.exception("status page: reading the store failed")
@@ -225,7 +232,17 @@ def _policy_card(policy: PolicySettings) -> Markup:
     )
 
 
-def _model_card(model: ModelSummary | None, policy: PolicySettings, now: float) -> Markup:
+# What memory holds of the model, as the page words it (daemon/preload.py memory_state).
+MEMORY_WORDS: dict[MemoryState, str] = {
+    "counts": "all token counts",
+    "presence": "which tokens it holds (larger than model.cache_tokens)",
+    "none": "counts as mail needs them",
+}
+
+
+def _model_card(
+    model: ModelSummary | None, policy: PolicySettings, now: float, memory: MemoryState | None
+) -> Markup:
     if model is None:
         return html('<div class="card"><h2>Model</h2><p class="muted">unavailable</p></div>')
     last = (
@@ -243,11 +260,16 @@ def _model_card(model: ModelSummary | None, policy: PolicySettings, now: float) 
     return html(
         '<div class="card"><h2>Model</h2><dl><dt>tokens</dt><dd>{tokens}</dd>'
         "<dt>ham trained</dt><dd>{ham}</dd><dt>spam trained</dt><dd>{spam}</dd>"
-        "<dt>last training</dt><dd>{last}</dd></dl>{guard}</div>",
+        "<dt>last training</dt><dd>{last}</dd>{held}</dl>{guard}</div>",
         tokens=f"{model.tokens:,}",
         ham=f"{model.ham_messages:,}",
         spam=f"{model.spam_messages:,}",
         last=last,
+        held=(
+            html("<dt>in memory</dt><dd>{words}</dd>", words=MEMORY_WORDS[memory])
+            if memory is not None
+            else Markup("")
+        ),
         guard=guard,
     )
 
@@ -374,7 +396,8 @@ def render_page(data: StatusData) -> str:
     )
     cards = [_policy_card(data.policy)]
     if data.error is None:
-        cards += [_model_card(data.model, data.policy, data.generated_at), _rates_card(data.rates)]
+        model = _model_card(data.model, data.policy, data.generated_at, data.memory)
+        cards += [model, _rates_card(data.rates)]
     return html(
         '<!doctype html>\n<html lang="en"><head><meta charset="utf-8">'
         '<meta name="viewport" content="width=device-width, initial-scale=1">'

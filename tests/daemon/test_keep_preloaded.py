@@ -166,5 +166,8 @@ async def test_the_daemon_keeps_a_presence_filter_of_a_model_too_large(tmp_path:
         assert service.store.lookup(wanted).tolist() == [[0, 1]] * 3
         text = service.metrics.render().decode()
         assert 'mailweir_model_in_memory{state="presence"} 1.0' in text
+        assert service.observing is not None
+        page = await service.observing.page.render()
+        assert "<dt>in memory</dt><dd>which tokens it holds" in page
     finally:
         await service.shutdown(grace=1)

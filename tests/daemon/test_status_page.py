@@ -277,3 +277,17 @@ def test_line_chart_leaves_gaps_for_nan() -> None:
     assert len(list(root.iter(f"{SVG}polyline"))) == 2
     assert len(list(root.iter(f"{SVG}circle"))) == 4
     assert "nan" not in svg.lower()
+
+
+async def test_status_page_says_what_memory_holds_of_the_model(filled_engine) -> None:
+    for state, words in (
+        ("counts", "all token counts"),
+        ("presence", "which tokens it holds (larger than model.cache_tokens)"),
+        ("none", "counts as mail needs them"),
+    ):
+        page = await StatusPage(
+            filled_engine, PolicySettings, clock=lambda: NOW, memory=lambda s=state: s
+        ).render()
+        assert f"<dt>in memory</dt><dd>{words}</dd>" in page
+    page = await StatusPage(filled_engine, PolicySettings, clock=lambda: NOW).render()
+    assert "in memory" not in page  # not told: not shown
