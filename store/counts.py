@@ -31,7 +31,7 @@ from mailweir.store import schema, verdicts
 from mailweir.store.cache import CountCache
 from mailweir.store.engine import NO_BEGIN, READ_ONLY, make_engine
 from mailweir.store.errors import StoreBusy, retryable, store_errors
-from mailweir.store.lookup import CountReader, count_chunks, hash_chunks
+from mailweir.store.lookup import CountReader, hash_chunks, packed_count_chunks
 from mailweir.store.memory import release_free_memory
 from mailweir.store.meta import database_bytes, get_meta, row_count, set_meta
 from mailweir.store.migrations import migrate
@@ -521,7 +521,7 @@ class ModelStore:
                 # grew, peaked at 172 MB resident for 521,759 tokens against 96 now, to settle
                 # at 83 (bench/bench_scoring.py).
                 cache.reserve(rows)
-                for hashes, counts in count_chunks(conn):
+                for hashes, counts in packed_count_chunks(conn):
                     cache.put(hashes, counts)
         with self._lock:
             installed = epoch == self._epoch and not self._writers

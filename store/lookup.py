@@ -13,6 +13,7 @@ from collections.abc import Callable, Iterator
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 from sqlalchemy import Connection
 
 from mailweir.model.types import TokenCounts, TokenHashes
@@ -112,13 +113,42 @@ def count_chunks(conn: Connection) -> Iterator[tuple[TokenHashes, TokenCounts]]:
 
 
 def hash_chunks(conn: Connection) -> Iterator[TokenHashes]:
-    """Every token's hash, ``_CHUNK_ROWS`` at a time (for the presence filter of a model too
-    large to hold: the hashes alone, a third of the rows' tuples)."""
-    result = conn.exec_driver_sql("SELECT hash FROM weir_token")
-    try:
-        while chunk := result.cursor.fetchmany(_CHUNK_ROWS):
-            hashes = np.fromiter((row[0] for row in chunk), dtype=np.int64, count=len(chunk))
-            del chunk
-            yield hashes
-    finally:
-        result.close()
+    """Every token's hash, ``_CHUNK_ROWS`` at a time (the presence filter of a model too large
+    to hold).  SQLite, inside a transaction: see ``packed_chunks``."""
+    for hashes in packed_chunks(conn, "hash", 1):
+        yield hashes.reshape(-1)
+
+
+def packed_count_chunks(conn: Connection) -> Iterator[tuple[TokenHashes, TokenCounts]]:
+    """``count_chunks`` for a caller inside a transaction on SQLite (``preload``): the same
+    rows, read as ``packed_chunks``."""
+    for rows in packed_chunks(conn, "hash || ',' || ham || ',' || spam", 3):
+        yield np.ascontiguousarray(rows[:, 0]), np.ascontiguousarray(rows[:, 1:])
+
+
+def packed_chunks(conn: Connection, columns: str, width: int) -> Iterator[npt.NDArray[np.int64]]:
+    """The token table's rows in chunks of ``_CHUNK_ROWS`` hashes, shape (rows, *width*), each
+    chunk one statement whose single row SQLite packs into text (``group_concat``).
+
+    Row by row, the sqlite3 module lets go of the interpreter lock around every step, and a
+    thread reading ten million rows while the event loop kept the lock busy got it back about
+    once per switch interval: 16,384 rows in 7.5 s, against every row of ten million in 4.6 s
+    this way (1.5 s against 3.5 without the contention).  The chunks are separate statements,
+    so the caller holds a transaction for one snapshot across them.  Each row's values stay
+    together in the text, so the order SQLite concatenates the rows in does not matter."""
+    sql = (
+        f"SELECT group_concat({columns}), max(hash), count(*) FROM "
+        "(SELECT hash, ham, spam FROM weir_token WHERE hash >= ? ORDER BY hash LIMIT ?)"
+    )
+    low = -(2**63)
+    while True:
+        text, top, count = conn.exec_driver_sql(sql, (low, _CHUNK_ROWS)).one()
+        if not count:
+            return
+        values = np.fromstring(text, dtype=np.int64, sep=",")
+        if len(values) != count * width:
+            raise ValueError(f"read {len(values)} values for {count} rows of {width}")
+        yield values.reshape(count, width)
+        if count < _CHUNK_ROWS or top == 2**63 - 1:
+            return
+        low = top + 1

@@ -20,7 +20,7 @@ from test_preload import resident_kib_of
 
 from mailweir.model.pairs import mix64
 from mailweir.model.types import HAM, SPAM
-from mailweir.store import ModelStore
+from mailweir.store import ModelStore, lookup
 from mailweir.store.counts import LOCAL_READ_MAX
 from mailweir.store.presence import PresenceFilter
 
@@ -215,3 +215,25 @@ def test_read_connections_close_once_the_filter_is_built(tmp_path: Path) -> None
         assert resident_kib_of(path) < size_kib // 10
     finally:
         store.close()
+
+
+@pytest.mark.parametrize("cache_tokens", [1000, 20])  # the whole model; a presence filter
+def test_preload_reads_every_row_in_packed_chunks(
+    open_store: Callable[..., ModelStore], monkeypatch: pytest.MonkeyPatch, cache_tokens: int
+) -> None:
+    """Both preloads read the table in chunks of rows that SQLite packs into text: chunk sizes
+    that divide the rows unevenly, and the least and greatest int64 hashes, lose nothing."""
+    store = open_store(cache_tokens=cache_tokens, staleness_seconds=3600.0)
+    if store.engine.dialect.name == "postgresql":
+        pytest.skip("preloading is SQLite only")
+    edges = np.array([-(2**63), -(2**63) + 1, -1, 0, 1, 2**63 - 2, 2**63 - 1], dtype=np.int64)
+    tokens = np.unique(np.concatenate([edges, spread(*range(40))]))
+    store.train(tokens, SPAM, digest=digest_of("a"), source="t")
+    store.train(tokens[::3], HAM, digest=digest_of("b"), source="t")
+    for rows in (3, 7, 47, 48):  # 47 rows in all: a chunk of one, and one left empty
+        monkeypatch.setattr(lookup, "_CHUNK_ROWS", rows)
+        fresh = open_store(cache_tokens=cache_tokens, staleness_seconds=3600.0)
+        assert fresh.preload() == (cache_tokens > len(tokens))
+        assert fresh.presence_known
+        wanted = np.unique(np.concatenate([tokens, spread(*range(100, 140))]))
+        assert fresh.lookup(wanted).tolist() == truth(fresh, wanted)
