@@ -21,7 +21,12 @@ from mailweir.store.engine import sqlite_variable_limit
 
 _SELECT = "SELECT hash, ham, spam FROM weir_token WHERE hash"
 _PG_SQL = f"{_SELECT} = ANY(CAST(%s AS BIGINT[]))"
+# SQLite answers in one row of text (see ``packed_chunks``): a lookup of 300 hashes in a worker
+# thread while the event loop kept the interpreter lock busy took 176 ms row by row, 14 packed
+# (alone 0.53 and 0.44 ms).
+_SQLITE_PACKED = "SELECT group_concat(hash || ',' || ham || ',' || spam) FROM weir_token WHERE hash"
 _MIN_BUCKET = 16
+_NO_ROWS = np.zeros((0, 3), dtype=np.int64)
 
 
 def _sqlite_bucket(n: int, limit: int) -> int:
@@ -60,18 +65,21 @@ class CountReader:
         counts = np.zeros((len(values), 2), dtype=np.int64)
         if not len(values):
             return counts
-        # Plain tuples: numpy would probe each SQLAlchemy Row as a mapping, very slowly.
-        rows: list[tuple[int, int, int]] = []
         if self.postgres:
+            # Plain tuples: numpy would probe each SQLAlchemy Row as a mapping, very slowly.
             rows = rows_of(_PG_SQL, (values.tolist(),))
+            found = np.array(rows, dtype=np.int64).reshape(-1, 3)
         else:
+            packed: list[npt.NDArray[np.int64]] = []
             for start in range(0, len(values), self.limit):
                 part = values[start : start + self.limit].tolist()
                 size = _sqlite_bucket(len(part), self.limit)
                 params = tuple(part + [part[0]] * (size - len(part)))
-                rows += rows_of(self._sqlite_text(size), params)
-        if rows:
-            found = np.array(rows, dtype=np.int64)
+                (text,) = rows_of(self._sqlite_text(size), params)[0]
+                if text:  # NULL when no hash has a row
+                    packed.append(np.fromstring(text, dtype=np.int64, sep=","))
+            found = np.concatenate(packed).reshape(-1, 3) if packed else _NO_ROWS
+        if len(found):
             order = np.argsort(values)
             at = order[np.searchsorted(values, found[:, 0], sorter=order)]
             counts[at] = found[:, 1:]
@@ -80,7 +88,7 @@ class CountReader:
     def _sqlite_text(self, size: int) -> str:
         text = self._texts.get(size)
         if text is None:
-            text = self._texts[size] = f"{_SELECT} IN ({','.join('?' * size)})"
+            text = self._texts[size] = f"{_SQLITE_PACKED} IN ({','.join('?' * size)})"
         return text
 
 
