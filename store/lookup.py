@@ -102,22 +102,7 @@ def _plain_rows(conn: Connection, statement: str, params: tuple[Any, ...]) -> li
         result.close()
 
 
-_CHUNK_ROWS = 8192  # rows read at a time when every count is read: a few MB of row tuples
-
-
-def count_chunks(conn: Connection) -> Iterator[tuple[TokenHashes, TokenCounts]]:
-    """Every token's hash and counts, ``_CHUNK_ROWS`` at a time, for a caller that stores
-    each chunk before the next is read: the driver's row tuples for a model of a million
-    tokens would take over 100 MB, and whole-model arrays and their temporaries as much
-    again (memory freed after a peak mostly stays with the process)."""
-    result = conn.exec_driver_sql(_SELECT.removesuffix(" WHERE hash"))
-    try:
-        while chunk := result.cursor.fetchmany(_CHUNK_ROWS):
-            part = np.array(chunk, dtype=np.int64)
-            del chunk
-            yield np.ascontiguousarray(part[:, 0]), np.ascontiguousarray(part[:, 1:])
-    finally:
-        result.close()
+_CHUNK_ROWS = 8192  # rows read at a time when every count is read: about 200 KB of text
 
 
 def hash_chunks(conn: Connection) -> Iterator[TokenHashes]:
@@ -128,8 +113,11 @@ def hash_chunks(conn: Connection) -> Iterator[TokenHashes]:
 
 
 def packed_count_chunks(conn: Connection) -> Iterator[tuple[TokenHashes, TokenCounts]]:
-    """``count_chunks`` for a caller inside a transaction on SQLite (``preload``): the same
-    rows, read as ``packed_chunks``."""
+    """Every token's hash and counts, ``_CHUNK_ROWS`` at a time, for a caller that stores each
+    chunk before the next is read (``preload``, the vocabulary summary) inside a transaction
+    on SQLite: the driver's row tuples for a model of a million tokens would take over 100 MB,
+    and whole-model arrays and their temporaries as much again (memory freed after a peak
+    mostly stays with the process).  Read as ``packed_chunks``."""
     for rows in packed_chunks(conn, "hash || ',' || ham || ',' || spam", 3):
         yield np.ascontiguousarray(rows[:, 0]), np.ascontiguousarray(rows[:, 1:])
 
