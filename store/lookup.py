@@ -4,7 +4,10 @@ The statement is plain driver SQL (``exec_driver_sql``): it skips SQLAlchemy's c
 which costs about as much as SQLite's own work for this query, yet still passes through the
 engine's cursor events.  SQLite gets ``IN (?, ...)`` with the placeholder count rounded up to
 a power of two (padding repeats a hash), so a handful of statement texts cover every message
-and stay in the driver's prepared-statement cache.  PostgreSQL gets one array parameter.
+and stay in the driver's prepared-statement cache, and answers in one row of text
+(``group_concat``), which a thread reads without giving up the interpreter lock at every row
+(``packed_chunks``).  PostgreSQL gets one array parameter.  Whole-table reads (preload, the
+presence filter, the vocabulary summary) come in packed chunks too.
 """
 
 from __future__ import annotations
