@@ -15,8 +15,18 @@ from setuptools import Extension, setup
 setup(
     ext_modules=[
         Extension("mailweir.model._chunk_scan", ["model/_chunk_scan.c"], optional=True),
-        Extension("mailweir.model._digest_probe", ["model/_digest_probe.c"], optional=True),
-        Extension("mailweir.model._pair_hashes", ["model/_pair_hashes.c"], optional=True),
+        Extension(
+            "mailweir.model._digest_probe",
+            ["model/_digest_probe.c"],
+            depends=["model/_int64_buffer.h"],
+            optional=True,
+        ),
+        Extension(
+            "mailweir.model._pair_hashes",
+            ["model/_pair_hashes.c"],
+            depends=["model/_int64_buffer.h"],
+            optional=True,
+        ),
         Extension("mailweir.store._count_probe", ["store/_count_probe.c"], optional=True),
     ]
 )

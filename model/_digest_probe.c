@@ -19,23 +19,11 @@
 #include <stdint.h>
 #include <string.h>
 
+#include "_int64_buffer.h"
+
 #define WAYS 8
 
 static PyObject *pair_prefix; /* "osb:": pairs are mixed from word hashes (pairs.py) */
-
-/* A C-contiguous buffer of int64 (the formats numpy gives int64 on LP64 systems). */
-static int int64_buffer(PyObject *array, Py_buffer *view, int writable, const char *name) {
-    int flags = PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0);
-    if (PyObject_GetBuffer(array, view, flags) < 0) return -1;
-    const char *format = view->format == NULL ? "B" : view->format;
-    if (format[0] == '<' || format[0] == '=' || format[0] == '@') format++;
-    if (view->itemsize != 8 || (strcmp(format, "q") != 0 && strcmp(format, "l") != 0)) {
-        PyErr_Format(PyExc_TypeError, "%s must hold int64", name);
-        PyBuffer_Release(view);
-        return -1;
-    }
-    return 0;
-}
 
 PyDoc_STRVAR(probe_doc,
 "probe(tokens, keys, values, mask, out_keys, out_values) -> missing\n\n"

@@ -20,6 +20,8 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "_int64_buffer.h"
+
 #define GOLDEN 0x9E3779B97F4A7C15ULL
 #define MIX1 0xBF58476D1CE4E5B9ULL
 #define MIX2 0x94D049BB133111EBULL
@@ -29,20 +31,6 @@ static inline uint64_t mix64(uint64_t z) {
     z = (z ^ (z >> 30)) * MIX1;
     z = (z ^ (z >> 27)) * MIX2;
     return z ^ (z >> 31);
-}
-
-/* A C-contiguous buffer of int64 (the formats numpy gives int64 on LP64 systems). */
-static int int64_buffer(PyObject *array, Py_buffer *view, int writable, const char *name) {
-    int flags = PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0);
-    if (PyObject_GetBuffer(array, view, flags) < 0) return -1;
-    const char *format = view->format == NULL ? "B" : view->format;
-    if (format[0] == '<' || format[0] == '=' || format[0] == '@') format++;
-    if (view->itemsize != 8 || (strcmp(format, "q") != 0 && strcmp(format, "l") != 0)) {
-        PyErr_Format(PyExc_TypeError, "%s must hold int64", name);
-        PyBuffer_Release(view);
-        return -1;
-    }
-    return 0;
 }
 
 /* The set: slots hold 1 + the output position of a kept pair, 0 when empty; the hash itself

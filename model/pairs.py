@@ -202,7 +202,7 @@ def python_first_pairs(
     ends = np.cumsum(sizes)
     part = np.searchsorted(ends, chosen, side="right")  # the part each chosen pair is from
     at = chosen - (ends - sizes)[part]  # and its place among that part's pairs
-    return pairs[chosen], part.astype(np.intp), at.astype(np.intp)
+    return pairs[chosen], part, at
 
 
 def first_occurrences(values: TokenHashes) -> _Index:

@@ -6,7 +6,9 @@ import asyncio
 import dataclasses
 import threading
 from pathlib import Path
+from typing import Any
 
+import numpy as np
 import pytest
 from smtp_helpers import wait_until
 
@@ -100,10 +102,9 @@ async def test_stop_waits_for_a_preload_in_its_thread() -> None:
     await asyncio.wait_for(stopping, 10)
 
 
-@pytest.mark.parametrize("preload", [True, False])
-async def test_the_daemon_holds_its_whole_model_in_memory(tmp_path: Path, preload: bool) -> None:
-    import numpy as np
-
+async def _daemon_on(tmp_path: Path, hashes: np.ndarray, **model: object) -> Any:
+    """A started daemon (``Service``) on a model that has trained *hashes* as spam once,
+    with *model* settings changed; the caller shuts it down."""
     from mailweir.daemon.service import Service
     from mailweir.daemon.settings import HostPort, Settings, SmtpSettings
     from mailweir.model.hashing import message_digest
@@ -115,14 +116,19 @@ async def test_the_daemon_holds_its_whole_model_in_memory(tmp_path: Path, preloa
         base,
         smtp=SmtpSettings(listen=HostPort("127.0.0.1", 0), hostname="filter.harbourlane.example"),
         http=dataclasses.replace(base.http, listen=HostPort("127.0.0.1", 0)),
-        model=dataclasses.replace(base.model, preload=preload),
+        model=dataclasses.replace(base.model, **model),
     )
-    hashes = np.arange(1, 50, dtype=np.int64)
-    model = ModelStore.open(str(settings.database))
-    model.train(hashes, SPAM, digest=message_digest(hashes), source="t")
-    model.close()
+    store = ModelStore.open(str(settings.database))
+    store.train(hashes, SPAM, digest=message_digest(hashes), source="t")
+    store.close()
     service = Service(settings)
     await service.startup()
+    return service
+
+
+@pytest.mark.parametrize("preload", [True, False])
+async def test_the_daemon_holds_its_whole_model_in_memory(tmp_path: Path, preload: bool) -> None:
+    service = await _daemon_on(tmp_path, np.arange(1, 50, dtype=np.int64), preload=preload)
     try:
         if preload:
             await wait_until(lambda: service.store.complete)
@@ -138,27 +144,8 @@ async def test_the_daemon_holds_its_whole_model_in_memory(tmp_path: Path, preloa
 
 
 async def test_the_daemon_keeps_a_presence_filter_of_a_model_too_large(tmp_path: Path) -> None:
-    import numpy as np
-
-    from mailweir.daemon.service import Service
-    from mailweir.daemon.settings import HostPort, Settings, SmtpSettings
-    from mailweir.model.hashing import message_digest
-    from mailweir.model.types import SPAM
-    from mailweir.store import ModelStore
-
-    base = Settings(state_dir=tmp_path)
-    settings = dataclasses.replace(
-        base,
-        smtp=SmtpSettings(listen=HostPort("127.0.0.1", 0), hostname="filter.harbourlane.example"),
-        http=dataclasses.replace(base.http, listen=HostPort("127.0.0.1", 0)),
-        model=dataclasses.replace(base.model, cache_tokens=20),
-    )
     hashes = np.random.default_rng(8).integers(-(2**63), 2**63 - 1, 50)
-    model = ModelStore.open(str(settings.database))
-    model.train(hashes, SPAM, digest=message_digest(hashes), source="t")
-    model.close()
-    service = Service(settings)
-    await service.startup()
+    service = await _daemon_on(tmp_path, hashes, cache_tokens=20)
     try:
         await wait_until(lambda: service.store.presence_known)
         assert not service.store.complete

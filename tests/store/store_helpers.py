@@ -94,3 +94,37 @@ def migrate_first(engine: Engine, count: int, monkeypatch: pytest.MonkeyPatch) -
         return migrations.migrate(engine)
     finally:
         monkeypatch.undo()
+
+
+def truth(store: ModelStore, hashes: np.ndarray) -> list[list[int]]:
+    """The counts the token rows hold for *hashes* (zero where there is no row): the oracle
+    every lookup through memory must match."""
+    rows = {h: [ham, spam] for h, ham, spam in dump_model(store)["tokens"]}  # type: ignore[misc]
+    return [rows.get(int(h), [0, 0]) for h in hashes]
+
+
+def random_write(
+    store: ModelStore,
+    other: ModelStore,
+    rng: np.random.Generator,
+    tokens: np.ndarray,
+    step: int,
+    trained: list[tuple[np.ndarray, bytes]],
+    action: int,
+) -> None:
+    """One seeded step of the mixed-writes tests, by *action* (0-5, drawn by the caller
+    before *tokens*): *store* trains (0, 1) or untrains (2), *other* (another process)
+    trains (3), *store* preloads (4) or prunes (5)."""
+    if action <= 1:
+        digest = digest_of(f"m{step}")
+        store.train(tokens, int(rng.integers(0, 2)), digest=digest, source="t")
+        trained.append((tokens, digest))
+    elif action == 2 and trained:
+        tokens, digest = trained.pop(int(rng.integers(0, len(trained))))
+        store.untrain(tokens, digest=digest)
+    elif action == 3:
+        other.train(tokens, 1, digest=digest_of(f"o{step}"), source="t")  # spam
+    elif action == 4:
+        store.preload()
+    else:
+        store.prune(max_count=1, unseen_days=0, today=10**6)

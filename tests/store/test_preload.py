@@ -14,15 +14,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 from sqlalchemy import event
-from store_helpers import digest_of, dump_model, hashes_of
+from store_helpers import digest_of, hashes_of, random_write, truth
 
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore, lookup
-
-
-def truth(store: ModelStore, hashes: np.ndarray) -> list[list[int]]:
-    rows = {h: [ham, spam] for h, ham, spam in dump_model(store)["tokens"]}  # type: ignore[misc]
-    return [rows.get(int(h), [0, 0]) for h in hashes]
 
 
 def selects_during(store: ModelStore, action: Callable[[], object]) -> int:
@@ -159,19 +154,7 @@ def test_preloaded_lookups_match_the_database_through_mixed_writes(
     for step in range(60):
         action = rng.integers(0, 6)
         tokens = hashes_of(*rng.integers(0, 40, rng.integers(1, 6)).tolist())
-        if action <= 1:
-            digest = digest_of(f"m{step}")
-            store.train(tokens, int(rng.integers(0, 2)), digest=digest, source="t")
-            trained.append((tokens, digest))
-        elif action == 2 and trained:
-            tokens, digest = trained.pop(int(rng.integers(0, len(trained))))
-            store.untrain(tokens, digest=digest)
-        elif action == 3:
-            other.train(tokens, SPAM, digest=digest_of(f"o{step}"), source="t")
-        elif action == 4:
-            store.preload()
-        else:
-            store.prune(max_count=1, unseen_days=0, today=10**6)
+        random_write(store, other, rng, tokens, step, trained, action)
         wanted = hashes_of(*range(0, 40))
         assert store.lookup(wanted).tolist() == truth(store, wanted), step
 

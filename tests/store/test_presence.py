@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from store_helpers import digest_of, dump_model
+from store_helpers import digest_of, random_write, truth
 from test_preload import resident_kib_of
 
 from mailweir.model.pairs import mix64
@@ -31,11 +31,6 @@ def spread(*tokens: int) -> np.ndarray:
     """Token hashes as the tokenizer makes them (well mixed 64-bit values), sorted unique."""
     values = np.array(tokens, dtype=np.uint64) + np.uint64(1)
     return np.unique(mix64(values).view(np.int64))
-
-
-def truth(store: ModelStore, hashes: np.ndarray) -> list[list[int]]:
-    rows = {h: [ham, spam] for h, ham, spam in dump_model(store)["tokens"]}  # type: ignore[misc]
-    return [rows.get(int(h), [0, 0]) for h in hashes]
 
 
 class Reads:
@@ -169,19 +164,7 @@ def test_lookups_through_the_filter_match_the_database_through_mixed_writes(
     for step in range(80):
         action = rng.integers(0, 6)
         tokens = spread(*rng.integers(0, 60, rng.integers(1, 12)).tolist())
-        if action <= 1:
-            digest = digest_of(f"m{step}")
-            store.train(tokens, int(rng.integers(0, 2)), digest=digest, source="t")
-            trained.append((tokens, digest))
-        elif action == 2 and trained:
-            tokens, digest = trained.pop(int(rng.integers(0, len(trained))))
-            store.untrain(tokens, digest=digest)
-        elif action == 3:
-            other.train(tokens, SPAM, digest=digest_of(f"o{step}"), source="t")
-        elif action == 4:
-            store.preload()
-        else:
-            store.prune(max_count=1, unseen_days=0, today=10**6)
+        random_write(store, other, rng, tokens, step, trained, action)
         filtered += store.presence_known and not store.complete
         wanted = spread(*range(0, 70))
         assert store.lookup(wanted).tolist() == truth(store, wanted), step
