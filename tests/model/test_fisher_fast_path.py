@@ -310,9 +310,21 @@ def test_strongest_evidence_few_and_many_equal_reference(
 )
 def test_chi2_log_survival_batch_equals_one_at_a_time(statistics: list[float], terms: int) -> None:
     # H and S are computed in one call; each must equal the reference alone.
-    assert _log_survivals_even(statistics, 2 * terms) == [
-        _reference_log_survival(statistic, 2 * terms) for statistic in statistics
-    ]
+    found = _log_survivals_even(statistics, 2 * terms)
+    for got, statistic in zip(found, statistics, strict=True):
+        _assert_same_log_survival(got, statistic, 2 * terms)
+
+
+def _assert_same_log_survival(got: float, statistic: float, dof: int) -> None:
+    """Below m = 700 the product sums the terms as the reference does: the same float.  From
+    m = 700 it sums them pairwise in numpy where the reference takes math.fsum (correctly
+    rounded), so the two may part in the last place or two (hypothesis found statistic
+    7632.678087237001, dof 1030: -2275.7553063384403 against ...407, one ulp)."""
+    want = _reference_log_survival(statistic, dof)
+    if statistic / 2.0 < 700.0:
+        assert got == want
+    else:
+        assert abs(got - want) <= 4 * math.ulp(want), (got, want)
 
 
 def test_chi2_reference_matches_scipy() -> None:
@@ -339,9 +351,7 @@ def test_chi2_reference_matches_scipy() -> None:
 def test_chi2_log_survival_few_terms_equals_reference(half: float, terms: int) -> None:
     # The capped path's sizes, whole and fractional m, summed directly below m = 700 and in
     # log space above (whole m put two equal terms at the peak, m^m / m! = m^(m-1) / (m-1)!).
-    assert chi2_log_survival_even(2.0 * half, 2 * terms) == _reference_log_survival(
-        2.0 * half, 2 * terms
-    )
+    _assert_same_log_survival(chi2_log_survival_even(2.0 * half, 2 * terms), 2.0 * half, 2 * terms)
 
 
 @settings(max_examples=300, deadline=None)
