@@ -46,6 +46,7 @@ from sqlalchemy import exc as sa_exc
 
 from mailweir.model.types import HAM, LABELS, SPAM
 from mailweir.store import schema
+from mailweir.store.bulk import insert_rows
 from mailweir.store.engine import READ_ONLY
 from mailweir.store.errors import StoreError, store_errors
 
@@ -292,28 +293,8 @@ COLUMNS = {
 
 
 def _flush(conn: Connection, table: Table, rows: list[tuple[Any, ...]]) -> None:
-    """Write one batch.  Bulk paths skip SQLAlchemy's per-row parameter handling, which
-    otherwise costs more than the database's own work."""
-    if not rows:
-        return
-    names = ", ".join(COLUMNS[table])
-    if conn.dialect.name == "sqlite":
-        marks = ", ".join("?" for _ in COLUMNS[table])
-        conn.exec_driver_sql(f"INSERT INTO {table.name} ({names}) VALUES ({marks})", rows)
-    elif conn.dialect.name == "postgresql" and conn.dialect.driver == "psycopg":
-        dbapi = conn.dialect.loaded_dbapi
-        try:
-            with (
-                conn.connection.dbapi_connection.cursor() as cursor,  # type: ignore[union-attr]
-                cursor.copy(f"COPY {table.name} ({names}) FROM STDIN") as copy,
-            ):
-                for row in rows:
-                    copy.write_row(row)
-        except dbapi.Error as exc:
-            # Raised by the driver itself, outside SQLAlchemy: wrap it the same way.
-            raise sa_exc.DBAPIError.instance(f"COPY {table.name}", None, exc, dbapi.Error) from exc
-    else:
-        conn.execute(insert(table), [dict(zip(COLUMNS[table], row, strict=True)) for row in rows])
+    """Write one batch (``bulk.insert_rows``) and empty it."""
+    insert_rows(conn, table, COLUMNS[table], rows)
     rows.clear()
 
 
