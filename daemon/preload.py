@@ -7,8 +7,8 @@ every message after a restart.  A background task preloads at start and again, a
 the same file), or a model grown past ``model.cache_tokens``.  Lookups read through the cache
 meanwhile, as without preloading.  A model larger than ``model.cache_tokens`` gets a filter of
 which tokens it holds instead, so that a token it lacks is not read (``store/presence.py``).
-SQLite only; on a shared PostgreSQL model other daemons write all the time, so the store
-declines.
+On a PostgreSQL model that several daemons share, each holds it and preloads again after
+another's training (a correction, ``mailweir train``): daemons write only when they learn.
 """
 
 from __future__ import annotations

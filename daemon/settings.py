@@ -107,7 +107,7 @@ class ModelSettings:
     database: str = ""  # URL or SQLite path; empty: <state_dir>/model.sqlite3
     method: str = "fisher"
     cache_tokens: int = 1_000_000
-    preload: bool = True  # every token's counts in memory at start (SQLite; daemon/preload.py)
+    preload: bool = True  # every token's counts in memory at start (daemon/preload.py)
     staleness_seconds: float = 5.0
     scoring_workers: int = 2
     # True: large messages are tokenized in worker processes; False (the default): in threads

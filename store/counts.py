@@ -499,11 +499,11 @@ class ModelStore:
         nor cached; the others are read through as before.  Own writes add to it; another
         process's write drops it, as it ends a complete memory.
 
-        SQLite only (on a shared PostgreSQL model other daemons write all the time).  True
-        when memory is now complete; False when the model was too large (see
-        ``presence_known``) or a write landed meanwhile."""
-        if self._reader.postgres:
-            return False
+        On PostgreSQL too: the daemons sharing a model write only when they learn (a
+        correction, ``mailweir train``), so memory stays complete between those writes, and a
+        lookup there is a network round trip in a worker thread (``bench/bench_relay.py
+        --postgres``).  True when memory is now complete; False when the model was too large
+        (see ``presence_known``) or a write landed meanwhile."""
         with self._lock:
             epoch = self._epoch
         cache = CountCache(self._cache.max_tokens)

@@ -10,13 +10,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from smtp_helpers import NextHop, free_port
+from smtp_helpers import POSTGRES_ENV, NextHop, empty_postgres_database, free_port
 
 from mailweir.daemon import cli
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore, VerdictRecord
-
-POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
 
 
 def check(capsys: pytest.CaptureFixture[str], *args: str) -> tuple[int, dict]:
@@ -154,7 +152,7 @@ async def test_check_connect_greets_the_next_hop(
 @pytest.mark.postgres
 @pytest.mark.skipif(not os.environ.get(POSTGRES_ENV), reason=f"{POSTGRES_ENV} is not set")
 def test_check_postgresql(capsys: pytest.CaptureFixture[str]) -> None:
-    url = os.environ[POSTGRES_ENV]
+    url = empty_postgres_database()  # another test's rows would be another model's
     ModelStore.open(url).close()
     status, report = check(capsys, "--db", url)
     assert status == 0, report

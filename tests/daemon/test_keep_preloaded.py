@@ -4,13 +4,14 @@ from __future__ import annotations
 
 import asyncio
 import dataclasses
+import os
 import threading
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
-from smtp_helpers import wait_until
+from smtp_helpers import POSTGRES_ENV, empty_postgres_database, wait_until
 
 from mailweir.daemon.preload import KeepPreloaded
 
@@ -118,7 +119,7 @@ async def _daemon_on(tmp_path: Path, hashes: np.ndarray, **model: object) -> Any
         http=dataclasses.replace(base.http, listen=HostPort("127.0.0.1", 0)),
         model=dataclasses.replace(base.model, **model),
     )
-    store = ModelStore.open(str(settings.database))
+    store = ModelStore.open(settings.database)
     store.train(hashes, SPAM, digest=message_digest(hashes), source="t")
     store.close()
     service = Service(settings)
@@ -158,3 +159,61 @@ async def test_the_daemon_keeps_a_presence_filter_of_a_model_too_large(tmp_path:
         assert "<dt>in memory</dt><dd>which tokens it holds" in page
     finally:
         await service.shutdown(grace=1)
+
+
+@pytest.mark.parametrize(
+    "backend",
+    [
+        "sqlite",
+        pytest.param(
+            "postgresql",
+            marks=[
+                pytest.mark.postgres,
+                pytest.mark.skipif(
+                    not os.environ.get(POSTGRES_ENV), reason=f"{POSTGRES_ENV} unset"
+                ),
+            ],
+        ),
+    ],
+)
+async def test_a_preloaded_daemon_reads_no_token_until_another_process_writes(
+    tmp_path: Path, backend: str
+) -> None:
+    # On PostgreSQL too, where several daemons share the model: between writes, a message's
+    # unknown tokens are known from memory to have no counts; another daemon's write is seen
+    # within model.staleness_seconds and its counts are read.
+    from sqlalchemy import event
+
+    from mailweir.model.types import HAM
+    from mailweir.store import ModelStore
+
+    database = empty_postgres_database() if backend == "postgresql" else ""
+    service = await _daemon_on(
+        tmp_path, np.arange(1, 50, dtype=np.int64), database=database, staleness_seconds=0.2
+    )
+    token_reads: list[str] = []
+
+    def seen(_conn: object, _cursor: object, statement: str, *_args: object) -> None:
+        if "weir_token" in statement:
+            token_reads.append(statement)
+
+    event.listen(service.store.engine, "before_cursor_execute", seen)
+    try:
+        await wait_until(lambda: service.store.complete)
+        token_reads.clear()
+        unknown = np.array([7, 500, 501, 502])
+        assert service.store.lookup(unknown).tolist() == [[0, 1], [0, 0], [0, 0], [0, 0]]
+        answer = service.store.cached_counts(unknown)  # the event loop's own call
+        assert answer is not None and answer[1].tolist() == [[0, 1], [0, 0], [0, 0], [0, 0]]
+        assert token_reads == []
+        other = ModelStore.open(service.settings.database)  # another daemon learns
+        other.train(np.array([500]), HAM, digest=b"\x01" * 16, source="t")
+        other.close()
+        await asyncio.sleep(0.3)  # past the staleness bound
+        assert service.store.lookup(unknown).tolist() == [[0, 1], [1, 0], [0, 0], [0, 0]]
+        assert token_reads and not service.store.complete
+    finally:
+        event.remove(service.store.engine, "before_cursor_execute", seen)
+        await service.shutdown(grace=1)
+        if backend == "postgresql":
+            empty_postgres_database()  # an unstamped model would look damaged to other tests

@@ -16,8 +16,8 @@ from typing import Any
 import numpy as np
 import pytest
 from prometheus_client import CollectorRegistry
-from smtp_helpers import LOCAL, NextHop, daemon_settings
-from sqlalchemy import create_engine, inspect, text
+from smtp_helpers import LOCAL, POSTGRES_ENV, NextHop, daemon_settings, empty_postgres_database
+from sqlalchemy import text
 
 from mailweir.daemon import cli, upkeep
 from mailweir.daemon.service import Service
@@ -25,17 +25,7 @@ from mailweir.daemon.settings import HostPort, HttpSettings, ModelSettings, Upke
 from mailweir.model.types import HAM, SPAM
 from mailweir.store import ModelStore, VerdictRecord, maintenance
 
-POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
 DAY = 86400.0
-
-
-def _drop_weir_tables(url: str) -> None:
-    engine = create_engine(url)
-    with engine.begin() as conn:
-        for name in inspect(conn).get_table_names():
-            if name.startswith("weir_"):
-                conn.execute(text(f'DROP TABLE "{name}" CASCADE'))
-    engine.dispose()
 
 
 @pytest.fixture(
@@ -56,8 +46,7 @@ def store(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[ModelStore
     if request.param == "sqlite":
         url = str(tmp_path / "model.sqlite3")
     else:
-        url = os.environ[POSTGRES_ENV]
-        _drop_weir_tables(url)
+        url = empty_postgres_database()
     opened = ModelStore.open(url)
     yield opened
     opened.close()

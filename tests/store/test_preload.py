@@ -34,12 +34,6 @@ def selects_during(store: ModelStore, action: Callable[[], object]) -> int:
     return sum(1 for s in seen if "weir_token" in s)
 
 
-def sqlite_only(store: ModelStore) -> None:
-    if store.engine.dialect.name == "postgresql":
-        assert not store.preload() and not store.complete  # other daemons write all the time
-        pytest.skip("preloading is SQLite only")
-
-
 def test_preload_answers_every_lookup_from_memory(
     open_store: Callable[..., ModelStore],
 ) -> None:
@@ -47,7 +41,6 @@ def test_preload_answers_every_lookup_from_memory(
     writer.train(hashes_of(1, 2, 3), SPAM, digest=digest_of("a"), source="t")
     writer.train(hashes_of(3, 4), HAM, digest=digest_of("b"), source="t")
     store = open_store(staleness_seconds=3600.0)
-    sqlite_only(store)
     assert store.preload() and store.complete
     wanted = hashes_of(1, 3, 4, 99, -5)
     assert selects_during(store, lambda: store.lookup(wanted)) == 0
@@ -66,7 +59,6 @@ def test_preload_reads_the_table_in_chunks_and_misses_none(
         tokens = hashes_of(*range(10 * n, 10 * n + 7))
         writer.train(tokens, n % 2, digest=digest_of(f"m{n}"), source="t")
     store = open_store(staleness_seconds=3600.0)
-    sqlite_only(store)
     monkeypatch.setattr(lookup, "_CHUNK_ROWS", 5)  # 84 rows: 16 chunks of 5, then 4
     assert store.preload() and store.complete
     wanted = hashes_of(*range(-3, 125))
@@ -76,7 +68,6 @@ def test_preload_reads_the_table_in_chunks_and_misses_none(
 
 def test_own_writes_keep_memory_complete(open_store: Callable[..., ModelStore]) -> None:
     store = open_store(staleness_seconds=3600.0)
-    sqlite_only(store)
     store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
     assert store.preload()
     store.train(hashes_of(2, 5, 6), HAM, digest=digest_of("b"), source="t")  # 5, 6 are new
@@ -93,7 +84,6 @@ def test_another_process_writing_ends_completeness(
     open_store: Callable[..., ModelStore],
 ) -> None:
     store = open_store(staleness_seconds=0.0)  # notices other writers at once
-    sqlite_only(store)
     other = open_store()
     store.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
     assert store.preload()
@@ -109,7 +99,6 @@ def test_preload_declines_a_model_over_the_token_limit(
     open_store: Callable[..., ModelStore],
 ) -> None:
     store = open_store(cache_tokens=3, staleness_seconds=3600.0)
-    sqlite_only(store)
     store.train(hashes_of(1, 2, 3, 4), SPAM, digest=digest_of("a"), source="t")
     assert not store.preload() and not store.complete
     assert store.lookup(hashes_of(1, 4, 9)).tolist() == [[0, 1], [0, 1], [0, 0]]
@@ -119,7 +108,6 @@ def test_training_past_the_token_limit_ends_completeness(
     open_store: Callable[..., ModelStore],
 ) -> None:
     store = open_store(cache_tokens=4, staleness_seconds=3600.0)
-    sqlite_only(store)
     store.train(hashes_of(1, 2), SPAM, digest=digest_of("a"), source="t")
     assert store.preload()
     store.train(hashes_of(3, 4, 5), HAM, digest=digest_of("b"), source="t")  # 5 tokens > 4
@@ -130,7 +118,6 @@ def test_training_past_the_token_limit_ends_completeness(
 
 def test_preload_gives_way_to_a_write_in_flight(open_store: Callable[..., ModelStore]) -> None:
     store = open_store(staleness_seconds=3600.0)
-    sqlite_only(store)
     store.train(hashes_of(1), SPAM, digest=digest_of("a"), source="t")
     results: list[bool] = []
     with store.transaction():  # a write of ours between its read and its commit
@@ -147,7 +134,6 @@ def test_preloaded_lookups_match_the_database_through_mixed_writes(
     # Random own and foreign writes, preloads now and then; every lookup checked against the
     # rows (seeded, bounded: 60 steps over 40 token values).
     store = open_store(cache_tokens=30, staleness_seconds=0.0)
-    sqlite_only(store)
     other = open_store()
     rng = np.random.default_rng(11)
     trained: list[tuple[np.ndarray, bytes]] = []
