@@ -47,6 +47,16 @@ row's), against ``bench_scoring.py``'s figure for the scoring path alone.
     python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9   # the target's spread
     python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9 --without-judging
     python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 9 --bigrams  # a bigram model
+    python bench/bench_relay.py --sizes 4KB --clients 8 --rounds 5 \
+        --postgres postgresql+psycopg://mailweir@127.0.0.1:54329/postgres
+
+``--postgres URL`` puts the daemon's model on a PostgreSQL server, as when several daemons
+share one: the bench makes a database of its own there (``CREATE DATABASE``, so the role needs
+CREATEDB), imports the same model into it (``store/exchange.py``) and drops it at the end.
+The daemon preloads it from there as from a SQLite file; the server still gets the verdict
+log's batches and the revision check every ``model.staleness_seconds``.  A line under each
+pair gives the database server's CPU per message: its postmaster's process tree, read from
+/proc, so the server must run on this machine.
 
 With more than one round, a last table gives each pair's median and range over the rounds.
 
@@ -68,7 +78,8 @@ import threading
 import time
 import tomllib
 import urllib.request
-from contextlib import ExitStack
+from collections.abc import Iterator
+from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -137,13 +148,15 @@ class Figures:
     # mailweir_scoring_seconds histograms: wall time on the event loop), nan for other servers.
     parse_ms: float = float("nan")
     score_ms: float = float("nan")
+    db_cpu_ms: float = float("nan")  # the PostgreSQL server's CPU per message (--postgres)
 
     @property
     def rate(self) -> float:
         return self.sent / self.seconds
 
 
-Server = tuple[int, int, str | None]  # pid, port, the daemon's /metrics address (None: none)
+# pid, port, the daemon's /metrics address (None: none), its database server's pid (None: none)
+Server = tuple[int, int, str | None, int | None]
 Round = tuple[Figures, Figures, Figures | None]  # bare, mailweir, mailweir without judging
 
 
@@ -183,15 +196,24 @@ def _greets(port: int) -> bool:
 
 
 def _mailweir_config(
-    folder: Path, model: Path, sink_port: int, port: int, model_keys: str = "", log_keys: str = ""
+    folder: Path,
+    model: Path,
+    sink_port: int,
+    port: int,
+    model_keys: str = "",
+    log_keys: str = "",
+    database_url: str | None = None,
 ) -> Path:
-    """The daemon's configuration; *model_keys*, *log_keys*: more lines for those tables.
+    """The daemon's configuration; *model_keys*, *log_keys*: more lines for those tables;
+    *database_url*: the model there (already imported) instead of a copy of *model*.
 
     Upkeep is off: its tasks, overdue on a fresh copy of the model, ran 60 s after the daemon
     started (0.11 s of CPU together) and added to whichever round was running then;
     ``bench/bench_upkeep.py`` measures them."""
-    database = folder / "model.sqlite3"
-    shutil.copyfile(model, database)
+    database: Path | str | None = database_url
+    if database is None:
+        database = folder / "model.sqlite3"
+        shutil.copyfile(model, database)
     config = folder / "mailweir.toml"
     config.write_text(
         f'state_dir = "{folder / "state"}"\n'
@@ -213,12 +235,14 @@ def _measure(
     pid: int,
     port: int,
     metrics: str | None,
+    db_pid: int | None,
     messages: list[bytes],
     clients: int,
     size: str,
 ) -> Figures:
     asyncio.run(push(port, messages[: clients * 4], clients))  # warm-up: connections, caches
     steps_before = _judge_steps(metrics)
+    db_before = proc_cpu.tree_seconds(db_pid) if db_pid is not None else {}
     server_before = proc_cpu.tree_seconds(pid)
     kernel_before = proc_cpu.tree_counts(pid, proc_cpu.system_seconds)
     faults_before = proc_cpu.tree_counts(pid, proc_cpu.minor_faults)
@@ -232,6 +256,7 @@ def _measure(
     busy = proc_cpu.machine_busy_seconds() - busy_before
     ours = proc_cpu.used(ours_before, proc_cpu.tree_seconds(os.getpid()))
     server = proc_cpu.used(server_before, proc_cpu.tree_seconds(pid))
+    db = proc_cpu.used(db_before, proc_cpu.tree_seconds(db_pid)) if db_pid is not None else math.nan
     kernel = proc_cpu.used(kernel_before, proc_cpu.tree_counts(pid, proc_cpu.system_seconds))
     faults = proc_cpu.used(faults_before, proc_cpu.tree_counts(pid, proc_cpu.minor_faults))
     latencies = sorted(results.latencies) or [float("nan")]
@@ -260,6 +285,7 @@ def _measure(
         mapped,
         steps[0] / steps[2] * 1e3 if steps[2] else float("nan"),
         steps[1] / steps[2] * 1e3 if steps[2] else float("nan"),
+        db / max(sent, 1) * 1e3,
     )
 
 
@@ -307,6 +333,12 @@ def _print(bare: Figures, mine: Figures, read_ns: float, unjudged: Figures | Non
         f"{'':>6} {'':>3} {'':<8} {'':>35} the daemon's judge: parse {mine.parse_ms:.2f}, "
         f"look up and score {mine.score_ms:.2f} ms a message"
     )
+    if not math.isnan(mine.db_cpu_ms):
+        print(
+            f"{'':>6} {'':>3} {'':<8} {'':>35} its PostgreSQL server: {mine.db_cpu_ms:.2f} ms "
+            f"of CPU a message, {(mine.cpu_ms + mine.db_cpu_ms) / bare.cpu_ms:.2f} times the "
+            "bare relay's with the daemon's"
+        )
 
 
 def main() -> None:
@@ -338,6 +370,12 @@ def main() -> None:
         action="store_true",
         help="the daemon's model counts adjacent word pairs too (mailweir train --bigrams)",
     )
+    parser.add_argument(
+        "--postgres",
+        metavar="URL",
+        help="the daemon's model in a database of its own made on this PostgreSQL server "
+        "(module docstring)",
+    )
     args = parser.parse_args()
     model = bench_mail.build_model(args.min_tokens, bigrams=args.bigrams)
     with tempfile.TemporaryDirectory(prefix="mailweir-bench-relay-") as tmp, ExitStack() as stop:
@@ -352,7 +390,10 @@ def main() -> None:
         )
         stop.callback(_stop, bare)
         port = _free_port()
-        config = _mailweir_config(folder, model, sink_port, port)
+        database_url, db_pid = None, None
+        if args.postgres:
+            database_url, db_pid = stop.enter_context(_postgres_model(args.postgres, model))
+        config = _mailweir_config(folder, model, sink_port, port, database_url=database_url)
         daemon, _ = _start([MAILWEIR, "run", "--config", str(config)], None, port)
         stop.callback(_stop, daemon)
         daemon_metrics = _metrics_url(config)
@@ -364,8 +405,53 @@ def main() -> None:
             argv = [PYTHON, "-c", _UNJUDGED_DAEMON, "run", "--config", str(config)]
             other, _ = _start(argv, None, other_port)
             stop.callback(_stop, other)
-            unjudged = (other.pid, other_port, None)
-        _run(args, (bare.pid, bare_port, None), (daemon.pid, port, daemon_metrics), unjudged)
+            unjudged = (other.pid, other_port, None, None)
+        _run(
+            args,
+            (bare.pid, bare_port, None, None),
+            (daemon.pid, port, daemon_metrics, db_pid),
+            unjudged,
+        )
+
+
+@contextmanager
+def _postgres_model(server_url: str, model: Path) -> Iterator[tuple[str, int]]:
+    """A database of its own on *server_url*'s server holding *model*: its URL and the
+    server's postmaster pid (whose process tree is every backend); dropped at the end."""
+    from sqlalchemy import create_engine, text
+    from sqlalchemy.engine import make_url
+
+    from mailweir.store import ModelStore
+    from mailweir.store.exchange import ModelExport, import_model
+
+    name = f"mailweir_bench_relay_{os.getpid()}"
+    admin = create_engine(server_url, isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as conn:
+            backend = conn.execute(text("SELECT pg_backend_pid()")).scalar_one()
+            conn.execute(text(f'CREATE DATABASE "{name}"'))
+        postmaster = proc_cpu.parent_pid(int(backend))
+        if postmaster is None:
+            raise SystemExit("bench: --postgres needs the server on this machine (its CPU)")
+        url = make_url(server_url).set(database=name).render_as_string(hide_password=False)
+        try:
+            source, target = ModelStore.open(str(model), create=False), ModelStore.open(url)
+            try:
+                started = time.perf_counter()
+                summary = import_model(target, ModelExport(source))
+                print(
+                    f"model imported into PostgreSQL database {name}: {summary.tokens} tokens "
+                    f"in {time.perf_counter() - started:.1f} s"
+                )
+            finally:
+                source.close()
+                target.close()
+            yield url, postmaster
+        finally:
+            with admin.connect() as conn:
+                conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+    finally:
+        admin.dispose()
 
 
 def _metrics_url(config: Path) -> str:

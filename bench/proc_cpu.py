@@ -43,6 +43,12 @@ def tree_pids(root: int) -> list[int]:
     return pids
 
 
+def parent_pid(pid: int) -> int | None:
+    """*pid*'s parent, None if *pid* is not a live process here."""
+    fields = _stat_fields(pid)
+    return None if fields is None else int(fields[1])
+
+
 def process_seconds(pid: int) -> float:
     """CPU seconds used so far by one process (all its threads), 0 when it is gone."""
     fields = _stat_fields(pid)
