@@ -7,6 +7,9 @@ same steps run in Python (daemon/compiled.py says which are built).
   ``python_probe``);
 - model/_pair_hashes.c: a message's distinct word-pair hashes (model/pairs.py,
   ``python_first_pairs``);
+- model/_fisher_pick.c: Robinson's f of a message's tokens and Fisher's choice among them
+  (model/fisher.py, ``RobinsonFisher.python_pick``); built without contracting a product and
+  a sum into one fused step, so its floats are numpy's bit for bit;
 - store/_count_probe.c: the count cache's lookup (store/cache.py, ``python_get``).
 """
 
@@ -25,6 +28,13 @@ setup(
             "mailweir.model._pair_hashes",
             ["model/_pair_hashes.c"],
             depends=["model/_int64_buffer.h"],
+            optional=True,
+        ),
+        Extension(
+            "mailweir.model._fisher_pick",
+            ["model/_fisher_pick.c"],
+            depends=["model/_int64_buffer.h"],
+            extra_compile_args=["-ffp-contract=off"],
             optional=True,
         ),
         Extension("mailweir.store._count_probe", ["store/_count_probe.c"], optional=True),

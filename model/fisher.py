@@ -26,6 +26,11 @@ from mailweir.model.nb_base import (
 )
 from mailweir.model.types import HAM, SPAM, ClassCounts, TokenCounts, TokenHashes, Vocabulary
 
+try:
+    from ._fisher_pick import pick as compiled_pick
+except ImportError:  # depends on the build: a C compiler and Python's headers
+    compiled_pick = None
+
 # The least positive double: stands in for a zero denominator (see _checked_f).
 _LEAST_DOUBLE = 5e-324
 # Counts below this convert to float exactly, and so does the sum of two (below 2**53).
@@ -253,6 +258,50 @@ class RobinsonFisher(NaiveBayes):
             )
         return f
 
+    def _picked(
+        self, counts: npt.NDArray[np.int64], classes: npt.NDArray[np.int64]
+    ) -> tuple[FloatArray, npt.NDArray[np.intp]]:
+        """`pick` of counts already checked (``check_counts``, trained); a count out of range
+        is an error, as in `_probability`."""
+        picked = self.pick(counts, classes.tolist())
+        if picked is None:
+            raise ValueError(
+                "fisher: a token is counted in more messages than were trained "
+                f"(class_count={classes.tolist()})"
+            )
+        return picked
+
+    def pick(
+        self, counts: npt.NDArray[np.int64], totals: list[int]
+    ) -> tuple[FloatArray, npt.NDArray[np.intp]] | None:
+        """f of every token, shape (n,), and the indices of the tokens used (`_selected`);
+        None when a count is negative or above its class count.  int64 counts of shape (n, 2)
+        and positive class totals.
+
+        One loop in C where ``_fisher_pick`` was built, else `python_pick` (the specification
+        the tests hold the C to): its twenty-odd whole-array calls cost a 4 KB message about
+        a third of its scoring."""
+        if (
+            compiled_pick is None
+            or max(totals) >= _EXACT_COUNTS
+            or not counts.flags.c_contiguous
+            or counts.shape[1:] != (2,)
+        ):
+            return self.python_pick(counts, totals)
+        f = np.empty(len(counts))
+        chosen = np.empty(len(counts), dtype=np.intp)
+        cap = -1 if self.max_tokens is None else self.max_tokens
+        args = (self.strength, self.assumed, self.min_deviation, cap)
+        kept = compiled_pick(counts, totals[HAM], totals[SPAM], *args, f, chosen)
+        return None if kept < 0 else (f, chosen[:kept])
+
+    def python_pick(
+        self, counts: npt.NDArray[np.int64], totals: list[int]
+    ) -> tuple[FloatArray, npt.NDArray[np.intp]] | None:
+        """`pick` in numpy: `_checked_f`, then `_selected`."""
+        f = self._checked_f(counts, totals)
+        return None if f is None else (f, self._selected(f))
+
     def _checked_f(self, counts: npt.NDArray[np.int64], totals: list[int]) -> FloatArray | None:
         """Shape (n,): f of int64 counts, shape (n, 2), and positive class counts; None when
         a count is negative or above its class count."""
@@ -316,10 +365,11 @@ class RobinsonFisher(NaiveBayes):
             return candidates[within[key[within].argsort(kind="stable")[:cap]]]
         return candidates[key.argsort(kind="stable")[:cap]]
 
-    def _used(self, f: FloatArray) -> tuple[npt.NDArray[np.intp], FloatArray]:
-        """The tokens used, most extreme first, and `_logs` of their f."""
-        chosen = self._selected(f)
-        used = f[chosen]
+    def _used(
+        self, f: FloatArray, chosen: npt.NDArray[np.intp]
+    ) -> tuple[npt.NDArray[np.intp], FloatArray]:
+        """The tokens used (*chosen*, `_selected`), and `_logs` of their f."""
+        used = f.take(chosen)
         # Only a token at |f - 0.5| >= 0.5 can lie outside (0, 1), and with a cap the first
         # is the most extreme: one comparison usually clears them all.
         if self.max_tokens is None or (len(used) and not abs(used[0] - 0.5) < 0.5):
@@ -357,7 +407,7 @@ class RobinsonFisher(NaiveBayes):
         counts, classes = check_counts(token_count, class_count)
         if not is_trained(classes):
             return UNTRAINED_PROBABILITY
-        _, logs = self._used(self._probability(counts, classes))
+        _, logs = self._used(*self._picked(counts, classes))
         return _posterior(_combined(logs))
 
     def probability_and_weights(
@@ -367,7 +417,7 @@ class RobinsonFisher(NaiveBayes):
         tokens used worked out once."""
         counts, classes = check_counts(token_count, class_count)
         require_trained(classes, self.name)
-        chosen, logs = self._used(self._probability(counts, classes))
+        chosen, logs = self._used(*self._picked(counts, classes))
         weights = np.zeros(len(counts))
         weights[chosen] = logs[0] - logs[1]
         return _posterior(_combined(logs)), weights
@@ -394,20 +444,26 @@ class RobinsonFisher(NaiveBayes):
         count on the rates it needs anyway and ranking evidence among the tokens used alone."""
         counts, classes = count_arrays(token_count, class_count)
         totals = classes.tolist()
-        f = None
+        picked = None
         if counts.dtype == _INT64 and classes.dtype == _INT64 and min(totals) > 0:
-            f = self._checked_f(counts, totals)
-        if f is None:
+            picked = self.pick(counts, totals)
+        if picked is None:
             # Untrained, another integer type or a bound broken: the base class answers, or
             # names the error, in its own order of checks.
             return super().score(token_hashes, token_count, class_count, vocabulary, n_evidence)
         hashes = check_score_inputs(token_hashes, len(counts), n_evidence)
-        return self._scored(hashes, f, n_evidence)
+        return self._scored(hashes, *picked, n_evidence)
 
-    def _scored(self, token_hashes: TokenHashes, f: FloatArray, n_evidence: int) -> Score:
+    def _scored(
+        self,
+        token_hashes: TokenHashes,
+        f: FloatArray,
+        chosen: npt.NDArray[np.intp],
+        n_evidence: int,
+    ) -> Score:
         """Every other token's weight is 0 and never listed, so evidence is ranked among the
         tokens used alone."""
-        chosen, logs = self._used(f)
+        chosen, logs = self._used(f, chosen)
         evidence: tuple[Evidence, ...] = ()
         if n_evidence and len(chosen):
             weights = np.subtract.reduce(logs, axis=0)  # ln f - ln(1 - f), in one call
