@@ -276,6 +276,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--sgd-batch", type=int, default=1)
     parser.add_argument("--warmup", type=int, default=1000)
     parser.add_argument("--limit", type=int, default=0)
+    parser.add_argument(
+        "--order-seed",
+        type=int,
+        help="replay in this seeded shuffle of the corpus order, not index.tsv's: how much of "
+        "a difference between settings one order alone gives",
+    )
     parser.add_argument("--cutoff", type=float, default=PolicySettings().spam_threshold)
     parser.add_argument("--cache", type=Path, default=Path("/tmp/mailweir-bench-tokens"))
     parser.add_argument("--json", type=Path, help="also write the figures here")
@@ -292,6 +298,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         DEFAULT_OPTIONS, bigrams=args.bigrams, bigram_window=args.bigram_window
     )
     hashes, tokenize_seconds = tokenized(corpus, options, args.cache)
+    if args.order_seed is not None:  # after tokenizing: the token cache is kept in corpus order
+        order = np.random.default_rng(args.order_seed).permutation(len(corpus))
+        corpus, hashes = [corpus[i] for i in order], [hashes[i] for i in order]
+        labels = labels[order]
     plan = ReplayPlan(methods=(), train_margin=args.margin)
     # Without --variant, the scorer the product gives a model with these options.
     scorers = (
@@ -306,6 +316,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     regime = f"{'osb' + str(args.bigram_window) if args.bigrams else 'words'}" + (
         f", margin {args.margin:g}" if args.margin is not None else ", every message"
     )
+    if args.order_seed is not None:
+        regime += f", order {args.order_seed}"
     product = options == DEFAULT_OPTIONS and args.margin == DEFAULT_TRAIN_MARGIN
     cutoff = args.cutoff
     if args.log_odds:  # the cut-off is a probability; compare log-odds with its logit
