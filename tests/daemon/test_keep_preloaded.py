@@ -203,8 +203,10 @@ async def test_a_preloaded_daemon_reads_no_token_until_another_process_writes(
         token_reads.clear()
         unknown = np.array([7, 500, 501, 502])
         assert service.store.lookup(unknown).tolist() == [[0, 1], [0, 0], [0, 0], [0, 0]]
-        answer = service.store.cached_counts(unknown)  # the event loop's own call
-        assert answer is not None and answer[1].tolist() == [[0, 1], [0, 0], [0, 0], [0, 0]]
+        # The event loop's own call; None only if the 0.2 s bound passed since the lookup
+        # (a slow machine), when it leaves the freshness check to the worker thread.
+        answer = service.store.cached_counts(unknown)
+        assert answer is None or answer[1].tolist() == [[0, 1], [0, 0], [0, 0], [0, 0]]
         assert token_reads == []
         other = ModelStore.open(service.settings.database)  # another daemon learns
         other.train(np.array([500]), HAM, digest=b"\x01" * 16, source="t")
