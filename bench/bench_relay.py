@@ -60,6 +60,13 @@ pair gives the database server's CPU per message: its postmaster's process tree,
 
 With more than one round, a last table gives each pair's median and range over the rounds.
 
+``--interleave N`` cuts each round's messages into N slices and sends them to the servers in
+turn, slice by slice (the bare relay first in even slices, mailweir first in odd ones), each
+server's figures summed over its slices: the machine's speed, which drifts over seconds on
+this shared host, then weighs on both servers alike, where a round of two whole runs in a
+row puts a drift between them.  Each server's connections stay open from slice to slice, so
+a message carries the same share of connection set-up as in a whole run.
+
 Everything listens on 127.0.0.1; counts are bounded.
 """
 
@@ -78,9 +85,9 @@ import threading
 import time
 import tomllib
 import urllib.request
-from collections.abc import Iterator
-from contextlib import ExitStack, contextmanager
-from dataclasses import dataclass
+from collections.abc import Callable, Iterator
+from contextlib import AsyncExitStack, ExitStack, contextmanager
+from dataclasses import dataclass, field
 from pathlib import Path
 
 BENCH = Path(__file__).resolve().parent
@@ -89,7 +96,7 @@ sys.path.insert(0, str(BENCH))
 import bench_mail  # noqa: E402
 import proc_cpu  # noqa: E402
 from machine_probe import random_read_ns  # noqa: E402
-from relay_parts import LOCAL, push  # noqa: E402
+from relay_parts import LOCAL, Results, Sessions, push  # noqa: E402
 
 PYTHON = sys.executable
 MAILWEIR = str(Path(PYTHON).with_name("mailweir"))
@@ -149,6 +156,7 @@ class Figures:
     parse_ms: float = float("nan")
     score_ms: float = float("nan")
     db_cpu_ms: float = float("nan")  # the PostgreSQL server's CPU per message (--postgres)
+    latencies: list[float] = field(default_factory=list, repr=False)  # seconds, sorted
 
     @property
     def rate(self) -> float:
@@ -240,52 +248,117 @@ def _measure(
     clients: int,
     size: str,
 ) -> Figures:
-    asyncio.run(push(port, messages[: clients * 4], clients))  # warm-up: connections, caches
-    steps_before = _judge_steps(metrics)
-    db_before = proc_cpu.tree_seconds(db_pid) if db_pid is not None else {}
-    server_before = proc_cpu.tree_seconds(pid)
-    kernel_before = proc_cpu.tree_counts(pid, proc_cpu.system_seconds)
-    faults_before = proc_cpu.tree_counts(pid, proc_cpu.minor_faults)
-    ours_before = proc_cpu.tree_seconds(os.getpid())
-    busy_before = proc_cpu.machine_busy_seconds()
+    """One whole run: a warm-up (connections, caches), then every message, over connections
+    opened for it."""
+    asyncio.run(push(port, messages[: clients * 4], clients))
+    before = _Counters.read(pid, metrics, db_pid)
     started = time.perf_counter()
     results = asyncio.run(push(port, messages, clients))
     seconds = time.perf_counter() - started
-    steps_after = _judge_steps(metrics)
-    steps = [after - before for before, after in zip(steps_before, steps_after, strict=True)]
-    busy = proc_cpu.machine_busy_seconds() - busy_before
-    ours = proc_cpu.used(ours_before, proc_cpu.tree_seconds(os.getpid()))
-    server = proc_cpu.used(server_before, proc_cpu.tree_seconds(pid))
-    db = proc_cpu.used(db_before, proc_cpu.tree_seconds(db_pid)) if db_pid is not None else math.nan
-    kernel = proc_cpu.used(kernel_before, proc_cpu.tree_counts(pid, proc_cpu.system_seconds))
-    faults = proc_cpu.used(faults_before, proc_cpu.tree_counts(pid, proc_cpu.minor_faults))
-    latencies = sorted(results.latencies) or [float("nan")]
-    sent = len(results.latencies)
-    if results.failures:
-        print(f"  {name}: {len(results.failures)} failures, first: {results.failures[0]}")
-    tree = proc_cpu.tree_pids(pid)
-    rss = sum(proc_cpu.rss_bytes(p) for p in tree) / 2**20
-    pss = sum(proc_cpu.pss_bytes(p) for p in tree) / 2**20
-    mapped = sum(proc_cpu.pss_file_bytes(p) for p in tree) / 2**20
+    return before.figures(name, size, clients, results, seconds)
+
+
+@dataclass
+class _Counters:
+    """What a server's figures are differences of, read before and after its messages."""
+
+    pid: int
+    metrics: str | None
+    db_pid: int | None
+    steps: tuple[float, ...]
+    db: dict[int, float]
+    server: dict[int, float]
+    kernel: dict[int, float]
+    faults: dict[int, float]
+    ours: dict[int, float]
+    busy: float
+
+    @classmethod
+    def read(cls, pid: int, metrics: str | None, db_pid: int | None) -> _Counters:
+        return cls(
+            pid,
+            metrics,
+            db_pid,
+            _judge_steps(metrics),
+            proc_cpu.tree_seconds(db_pid) if db_pid is not None else {},
+            proc_cpu.tree_seconds(pid),
+            proc_cpu.tree_counts(pid, proc_cpu.system_seconds),
+            proc_cpu.tree_counts(pid, proc_cpu.minor_faults),
+            proc_cpu.tree_seconds(os.getpid()),
+            proc_cpu.machine_busy_seconds(),
+        )
+
+    def figures(
+        self, name: str, size: str, clients: int, results: Results, seconds: float
+    ) -> Figures:
+        """The figures of the messages sent since this was read."""
+        after = _Counters.read(self.pid, self.metrics, self.db_pid)
+        steps = [b - a for a, b in zip(self.steps, after.steps, strict=True)]
+        busy = after.busy - self.busy
+        ours = proc_cpu.used(self.ours, after.ours)
+        server = proc_cpu.used(self.server, after.server)
+        db = proc_cpu.used(self.db, after.db) if self.db_pid is not None else math.nan
+        kernel = proc_cpu.used(self.kernel, after.kernel)
+        faults = proc_cpu.used(self.faults, after.faults)
+        latencies = sorted(results.latencies) or [float("nan")]
+        sent = len(results.latencies)
+        if results.failures:
+            print(f"  {name}: {len(results.failures)} failures, first: {results.failures[0]}")
+        tree = proc_cpu.tree_pids(self.pid)
+        return Figures(
+            name,
+            size,
+            clients,
+            sent,
+            len(results.failures),
+            seconds,
+            statistics.median(latencies) * 1e3,
+            latencies[min(len(latencies) - 1, int(0.99 * len(latencies)))] * 1e3,
+            server / max(sent, 1) * 1e3,
+            kernel / max(sent, 1) * 1e3,
+            faults / max(sent, 1),
+            max(0.0, busy - ours),
+            sum(proc_cpu.rss_bytes(p) for p in tree) / 2**20,
+            sum(proc_cpu.pss_bytes(p) for p in tree) / 2**20,
+            sum(proc_cpu.pss_file_bytes(p) for p in tree) / 2**20,
+            steps[0] / steps[2] * 1e3 if steps[2] else float("nan"),
+            steps[1] / steps[2] * 1e3 if steps[2] else float("nan"),
+            db / max(sent, 1) * 1e3,
+            sorted(results.latencies),
+        )
+
+
+def _merged(parts: list[Figures]) -> Figures:
+    """One server's figures over the slices of an interleaved round: per-message figures
+    weighted by the messages of each slice, latencies pooled, memory as the last slice left
+    it."""
+    sent = sum(p.sent for p in parts) or 1
+    latencies = sorted(x for p in parts for x in p.latencies) or [float("nan")]
+
+    def per_message(value: Callable[[Figures], float]) -> float:
+        return sum(value(p) * p.sent for p in parts) / sent
+
+    last = parts[-1]
     return Figures(
-        name,
-        size,
-        clients,
-        sent,
-        len(results.failures),
-        seconds,
+        last.server,
+        last.size,
+        last.clients,
+        sum(p.sent for p in parts),
+        sum(p.failed for p in parts),
+        sum(p.seconds for p in parts),
         statistics.median(latencies) * 1e3,
         latencies[min(len(latencies) - 1, int(0.99 * len(latencies)))] * 1e3,
-        server / max(sent, 1) * 1e3,
-        kernel / max(sent, 1) * 1e3,
-        faults / max(sent, 1),
-        max(0.0, busy - ours),
-        rss,
-        pss,
-        mapped,
-        steps[0] / steps[2] * 1e3 if steps[2] else float("nan"),
-        steps[1] / steps[2] * 1e3 if steps[2] else float("nan"),
-        db / max(sent, 1) * 1e3,
+        per_message(lambda p: p.cpu_ms),
+        per_message(lambda p: p.sys_ms),
+        per_message(lambda p: p.faults),
+        sum(p.others_cpu for p in parts),
+        last.rss_mb,
+        last.pss_mb,
+        last.file_mb,
+        per_message(lambda p: p.parse_ms),
+        per_message(lambda p: p.score_ms),
+        per_message(lambda p: p.db_cpu_ms),
+        latencies,
     )
 
 
@@ -369,6 +442,13 @@ def main() -> None:
         "--bigrams",
         action="store_true",
         help="the daemon's model counts adjacent word pairs too (mailweir train --bigrams)",
+    )
+    parser.add_argument(
+        "--interleave",
+        type=int,
+        default=1,
+        metavar="N",
+        help="send each round's messages in N slices, to the servers in turn (module docstring)",
     )
     parser.add_argument(
         "--postgres",
@@ -524,15 +604,62 @@ def _run(
                     for i, raw in enumerate(messages)
                 ]
                 read_ns = random_read_ns()
-                bare = _measure("bare", *bare_relay, fresh, clients, label)
-                mine = _measure("mailweir", *daemon, fresh, clients, label)
-                other = None
+                servers = [("bare", bare_relay), ("mailweir", daemon)]
                 if unjudged is not None:
-                    other = _measure("no-judge", *unjudged, fresh, clients, label)
+                    servers.append(("no-judge", unjudged))
+                found = _measure_round(servers, fresh, clients, label, args.interleave)
+                bare, mine = found[0], found[1]
+                other = found[2] if unjudged is not None else None
                 _print(bare, mine, read_ns, other)
                 pairs.setdefault((label, clients), []).append((bare, mine, other))
     if args.rounds > 1:
         _summarize(pairs)
+
+
+def _measure_round(
+    servers: list[tuple[str, Server]],
+    messages: list[bytes],
+    clients: int,
+    label: str,
+    slices: int,
+) -> list[Figures]:
+    """Each server's figures for one round: one whole run after another, or with *slices*
+    above one, the messages' slices to each in turn (``--interleave``)."""
+    if slices <= 1:
+        return [_measure(name, *server, messages, clients, label) for name, server in servers]
+    return asyncio.run(_interleaved(servers, messages, clients, label, slices))
+
+
+async def _interleaved(
+    servers: list[tuple[str, Server]],
+    messages: list[bytes],
+    clients: int,
+    label: str,
+    slices: int,
+) -> list[Figures]:
+    """``--interleave``: each server's connections stay open across the slices, so each
+    message carries the same share of connection set-up as in a whole run."""
+    parts: list[list[Figures]] = [[] for _ in servers]
+    async with AsyncExitStack() as stack:
+        sessions = [
+            await stack.enter_async_context(Sessions(port, clients))
+            for _, (_, port, _, _) in servers
+        ]
+        for session in sessions:  # the warm-up, as a whole run has
+            await session.push(messages[: clients * 4])
+        for i in range(slices):
+            chunk = messages[i * len(messages) // slices : (i + 1) * len(messages) // slices]
+            order = list(range(len(servers)))
+            if i % 2:
+                order.reverse()
+            for k in order:
+                name, (pid, _, metrics, db_pid) = servers[k]
+                before = _Counters.read(pid, metrics, db_pid)
+                started = time.perf_counter()
+                results = await sessions[k].push(chunk)
+                seconds = time.perf_counter() - started
+                parts[k].append(before.figures(name, label, clients, results, seconds))
+    return [_merged(p) for p in parts]
 
 
 def _summarize(pairs: dict[tuple[str, int], list[Round]]) -> None:

@@ -115,12 +115,22 @@ async def _reply(reader: asyncio.StreamReader) -> bytes:
             return line
 
 
-async def _client(port: int, queue: asyncio.Queue[bytes], results: Results) -> None:
-    """A lean SMTP client (no pipelining), so the load generator costs little CPU."""
+Connection = tuple[asyncio.StreamReader, asyncio.StreamWriter]
+
+
+async def _connect(port: int) -> Connection:
     reader, writer = await asyncio.open_connection(LOCAL, port)
     await _reply(reader)
     writer.write(b"EHLO load.mail.example\r\n")
     await _reply(reader)
+    return reader, writer
+
+
+async def _send_queue(
+    connection: Connection, queue: asyncio.Queue[bytes], results: Results
+) -> None:
+    """A lean SMTP client (no pipelining), so the load generator costs little CPU."""
+    reader, writer = connection
     while not queue.empty():
         raw = queue.get_nowait()
         started = time.perf_counter()
@@ -139,22 +149,50 @@ async def _client(port: int, queue: asyncio.Queue[bytes], results: Results) -> N
                 break
         else:
             results.latencies.append(time.perf_counter() - started)
+
+
+async def _quit(connection: Connection) -> None:
+    reader, writer = connection
     writer.write(b"QUIT\r\n")
     await _reply(reader)
     writer.close()
     await writer.wait_closed()
 
 
+class Sessions:
+    """``clients`` SMTP connections to one server, kept open from one ``push`` to the next
+    (bench_relay.py's interleaved rounds send slice after slice over the same connections,
+    as a whole run does)."""
+
+    def __init__(self, port: int, clients: int) -> None:
+        self.port = port
+        self.clients = clients
+        self._open: list[Connection] = []
+
+    async def __aenter__(self) -> Sessions:
+        self._open = [await _connect(self.port) for _ in range(self.clients)]
+        return self
+
+    async def __aexit__(self, *exc: object) -> None:
+        await asyncio.gather(*(_quit(connection) for connection in self._open))
+        self._open = []
+
+    async def push(self, messages: list[bytes]) -> Results:
+        """Send every message once over the open connections."""
+        queue: asyncio.Queue[bytes] = asyncio.Queue()
+        for raw in messages:
+            queue.put_nowait(raw)
+        results = Results()
+        await asyncio.gather(*(_send_queue(c, queue, results) for c in self._open))
+        return results
+
+
 async def push(port: int, messages: list[bytes], clients: int) -> Results:
     """Send every message once over ``clients`` connections; returns latencies and failures.
 
     Messages must end in CRLF and have no line starting with a dot (none of ours does)."""
-    queue: asyncio.Queue[bytes] = asyncio.Queue()
-    for raw in messages:
-        queue.put_nowait(raw)
-    results = Results()
-    await asyncio.gather(*(_client(port, queue, results) for _ in range(clients)))
-    return results
+    async with Sessions(port, clients) as sessions:
+        return await sessions.push(messages)
 
 
 def main(argv: list[str]) -> None:
