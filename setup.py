@@ -21,19 +21,19 @@ setup(
         Extension(
             "mailweir.model._digest_probe",
             ["model/_digest_probe.c"],
-            depends=["model/_int64_buffer.h"],
+            depends=["model/_typed_buffer.h"],
             optional=True,
         ),
         Extension(
             "mailweir.model._pair_hashes",
             ["model/_pair_hashes.c"],
-            depends=["model/_int64_buffer.h"],
+            depends=["model/_typed_buffer.h"],
             optional=True,
         ),
         Extension(
             "mailweir.model._fisher_pick",
             ["model/_fisher_pick.c"],
-            depends=["model/_int64_buffer.h"],
+            depends=["model/_typed_buffer.h"],
             extra_compile_args=["-ffp-contract=off"],
             optional=True,
         ),

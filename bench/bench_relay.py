@@ -300,8 +300,9 @@ class _Counters:
         db = proc_cpu.used(self.db, after.db) if self.db_pid is not None else math.nan
         kernel = proc_cpu.used(self.kernel, after.kernel)
         faults = proc_cpu.used(self.faults, after.faults)
-        latencies = sorted(results.latencies) or [float("nan")]
-        sent = len(results.latencies)
+        ordered = sorted(results.latencies)
+        latencies = ordered or [float("nan")]
+        sent = len(ordered)
         if results.failures:
             print(f"  {name}: {len(results.failures)} failures, first: {results.failures[0]}")
         tree = proc_cpu.tree_pids(self.pid)
@@ -324,7 +325,7 @@ class _Counters:
             steps[0] / steps[2] * 1e3 if steps[2] else float("nan"),
             steps[1] / steps[2] * 1e3 if steps[2] else float("nan"),
             db / max(sent, 1) * 1e3,
-            sorted(results.latencies),
+            ordered,
         )
 
 

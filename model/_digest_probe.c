@@ -19,7 +19,7 @@
 #include <stdint.h>
 #include <string.h>
 
-#include "_int64_buffer.h"
+#include "_typed_buffer.h"
 
 #define WAYS 8
 

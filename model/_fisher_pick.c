@@ -19,7 +19,7 @@
 #include <math.h>
 #include <stdint.h>
 
-#include "_int64_buffer.h"
+#include "_typed_buffer.h"
 
 /* Writes f of every token to ``f``; returns 0, or -1 when a count is negative or above its
  * class count (read as unsigned and divided, as the numpy code checks, a rate above 1). */
@@ -73,20 +73,6 @@ static Py_ssize_t choose(const double *f, Py_ssize_t n, double min_deviation, Py
     return kept;
 }
 
-/* A C-contiguous, writable buffer of float64. */
-static int float64_buffer(PyObject *array, Py_buffer *view, const char *name) {
-    if (PyObject_GetBuffer(array, view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_WRITABLE) < 0)
-        return -1;
-    const char *format = view->format == NULL ? "B" : view->format;
-    if (format[0] == '<' || format[0] == '=' || format[0] == '@') format++;
-    if (view->itemsize != 8 || strcmp(format, "d") != 0) {
-        PyErr_Format(PyExc_TypeError, "%s must hold float64", name);
-        PyBuffer_Release(view);
-        return -1;
-    }
-    return 0;
-}
-
 PyDoc_STRVAR(pick_doc,
 "pick(counts, ham_total, spam_total, strength, assumed, min_deviation, cap, out_f, out_chosen)\n"
 "-> count\n\n"
@@ -118,7 +104,7 @@ static PyObject *pick(PyObject *Py_UNUSED(module), PyObject *const *args, Py_ssi
     if (int64_buffer(args[0], &counts, 0, "counts") < 0) return NULL;
     PyObject *result = NULL;
     double *keys = NULL;
-    if (float64_buffer(args[7], &out_f, "out_f") < 0) goto release_counts;
+    if (float64_buffer(args[7], &out_f, 1, "out_f") < 0) goto release_counts;
     if (int64_buffer(args[8], &out_chosen, 1, "out_chosen") < 0) goto release_f;
     Py_ssize_t n = counts.len / 16;
     if (counts.len % 16 || out_f.len < n * 8 || out_chosen.len < n * 8) {

@@ -20,7 +20,7 @@
 #include <stdlib.h>
 #include <string.h>
 
-#include "_int64_buffer.h"
+#include "_typed_buffer.h"
 
 #define GOLDEN 0x9E3779B97F4A7C15ULL
 #define MIX1 0xBF58476D1CE4E5B9ULL

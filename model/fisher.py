@@ -252,10 +252,7 @@ class RobinsonFisher(NaiveBayes):
         """`token_probability` of counts already checked (``check_counts``, trained)."""
         f = self._checked_f(counts, classes.tolist())
         if f is None:
-            raise ValueError(
-                "fisher: a token is counted in more messages than were trained "
-                f"(class_count={classes.tolist()})"
-            )
+            raise _counted_beyond(classes)
         return f
 
     def _picked(
@@ -265,10 +262,7 @@ class RobinsonFisher(NaiveBayes):
         is an error, as in `_probability`."""
         picked = self.pick(counts, classes.tolist())
         if picked is None:
-            raise ValueError(
-                "fisher: a token is counted in more messages than were trained "
-                f"(class_count={classes.tolist()})"
-            )
+            raise _counted_beyond(classes)
         return picked
 
     def pick(
@@ -469,6 +463,13 @@ class RobinsonFisher(NaiveBayes):
             weights = np.subtract.reduce(logs, axis=0)  # ln f - ln(1 - f), in one call
             evidence = strongest_evidence(token_hashes[chosen], weights, n_evidence)
         return Score(_posterior(_combined(logs)), evidence)
+
+
+def _counted_beyond(classes: npt.NDArray[np.int64]) -> ValueError:
+    return ValueError(
+        "fisher: a token is counted in more messages than were trained "
+        f"(class_count={classes.tolist()})"
+    )
 
 
 def _check_open_interval(f: FloatArray) -> None:

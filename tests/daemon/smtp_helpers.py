@@ -389,25 +389,3 @@ async def running_service(settings: Settings) -> AsyncIterator[HostPort]:
         yield service.smtp_address
     finally:
         await service.shutdown(grace=5)
-
-
-POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
-
-
-def empty_postgres_database() -> str:
-    """The URL in ``MAILWEIR_TEST_POSTGRES_URL`` with every weir_ table dropped (the caller
-    skips when it is unset)."""
-    import os
-
-    from sqlalchemy import create_engine, inspect, text
-
-    url = os.environ[POSTGRES_ENV]
-    engine = create_engine(url)
-    try:
-        with engine.begin() as conn:
-            for name in inspect(conn).get_table_names():
-                if name.startswith("weir_"):
-                    conn.execute(text(f'DROP TABLE "{name}" CASCADE'))
-    finally:
-        engine.dispose()
-    return url

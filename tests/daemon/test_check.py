@@ -10,7 +10,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from smtp_helpers import POSTGRES_ENV, NextHop, empty_postgres_database, free_port
+from postgres_helpers import POSTGRES_ENV, empty_postgres_database
+from smtp_helpers import NextHop, free_port
 
 from mailweir.daemon import cli
 from mailweir.model.types import HAM, SPAM

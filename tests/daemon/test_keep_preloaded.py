@@ -4,14 +4,14 @@ from __future__ import annotations
 
 import asyncio
 import dataclasses
-import os
 import threading
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
-from smtp_helpers import POSTGRES_ENV, empty_postgres_database, wait_until
+from postgres_helpers import BACKENDS, empty_postgres_database
+from smtp_helpers import wait_until
 
 from mailweir.daemon.preload import KeepPreloaded
 
@@ -161,21 +161,7 @@ async def test_the_daemon_keeps_a_presence_filter_of_a_model_too_large(tmp_path:
         await service.shutdown(grace=1)
 
 
-@pytest.mark.parametrize(
-    "backend",
-    [
-        "sqlite",
-        pytest.param(
-            "postgresql",
-            marks=[
-                pytest.mark.postgres,
-                pytest.mark.skipif(
-                    not os.environ.get(POSTGRES_ENV), reason=f"{POSTGRES_ENV} unset"
-                ),
-            ],
-        ),
-    ],
-)
+@pytest.mark.parametrize("backend", BACKENDS)
 async def test_a_preloaded_daemon_reads_no_token_until_another_process_writes(
     tmp_path: Path, backend: str
 ) -> None:

@@ -6,7 +6,6 @@ import asyncio
 import concurrent.futures
 import dataclasses
 import json
-import os
 import threading
 import time
 from collections.abc import Iterator
@@ -15,8 +14,9 @@ from typing import Any
 
 import numpy as np
 import pytest
+from postgres_helpers import BACKENDS, empty_postgres_database
 from prometheus_client import CollectorRegistry
-from smtp_helpers import LOCAL, POSTGRES_ENV, NextHop, daemon_settings, empty_postgres_database
+from smtp_helpers import LOCAL, NextHop, daemon_settings
 from sqlalchemy import text
 
 from mailweir.daemon import cli, upkeep
@@ -28,20 +28,7 @@ from mailweir.store import ModelStore, VerdictRecord, maintenance
 DAY = 86400.0
 
 
-@pytest.fixture(
-    params=[
-        "sqlite",
-        pytest.param(
-            "postgresql",
-            marks=[
-                pytest.mark.postgres,
-                pytest.mark.skipif(
-                    not os.environ.get(POSTGRES_ENV), reason=f"{POSTGRES_ENV} unset"
-                ),
-            ],
-        ),
-    ]
-)
+@pytest.fixture(params=BACKENDS)
 def store(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[ModelStore]:
     if request.param == "sqlite":
         url = str(tmp_path / "model.sqlite3")

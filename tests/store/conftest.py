@@ -7,53 +7,20 @@ postgresql+psycopg://mailweir@127.0.0.1:5432/mailweir_test.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
-from sqlalchemy import create_engine, inspect, text
+from postgres_helpers import BACKENDS, empty_postgres_database
 
 from mailweir.store import ModelStore
 
-POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
 
-
-def _backends() -> list:
-    params = [pytest.param("sqlite", id="sqlite")]
-    params.append(
-        pytest.param(
-            "postgresql",
-            id="postgresql",
-            marks=[
-                pytest.mark.postgres,
-                pytest.mark.skipif(
-                    not os.environ.get(POSTGRES_ENV), reason=f"{POSTGRES_ENV} is not set"
-                ),
-            ],
-        )
-    )
-    return params
-
-
-def drop_weir_tables(url: str) -> None:
-    engine = create_engine(url)
-    try:
-        with engine.begin() as conn:
-            for name in inspect(conn).get_table_names():
-                if name.startswith("weir_"):
-                    conn.execute(text(f'DROP TABLE "{name}" CASCADE'))
-    finally:
-        engine.dispose()
-
-
-@pytest.fixture(params=_backends())
+@pytest.fixture(params=BACKENDS)
 def store_url(request: pytest.FixtureRequest, tmp_path: Path) -> str:
     if request.param == "sqlite":
         return f"sqlite:///{tmp_path / 'model.db'}"
-    url = os.environ[POSTGRES_ENV]
-    drop_weir_tables(url)
-    return url
+    return empty_postgres_database()
 
 
 @pytest.fixture

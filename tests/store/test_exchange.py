@@ -17,6 +17,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from postgres_helpers import POSTGRES_ENV
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 
@@ -32,8 +33,6 @@ from mailweir.store.exchange import (
     export_model,
     import_model,
 )
-
-POSTGRES_ENV = "MAILWEIR_TEST_POSTGRES_URL"
 
 HAM_MESSAGES = [
     (
